@@ -1,0 +1,84 @@
+"""Error classes: each carries its exit code and a one-paragraph message.
+
+Exit codes (DESIGN.md): 0 passed; 1 a check failed; 2 bad usage or bad input file;
+3 a model seqgate cannot export. Messages read: what failed, what was expected, what was
+received, what to do. The CLI prints ``str(error)`` and exits with ``error.exit_code``;
+it never shows a traceback for these.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+EXIT_PASSED = 0
+EXIT_CHECK_FAILED = 1
+EXIT_BAD_INPUT = 2
+EXIT_UNSUPPORTED = 3
+
+
+class SeqgateError(Exception):
+    """Base class: a user-facing failure with a one-paragraph message."""
+
+    exit_code: int = EXIT_BAD_INPUT
+
+
+class BadInputError(SeqgateError):
+    """A file or argument is missing, unreadable, corrupt or of the wrong kind (exit 2)."""
+
+    exit_code = EXIT_BAD_INPUT
+
+
+class UnsafeSourceError(BadInputError):
+    """Loading the artifact would execute code from the file (exit 2)."""
+
+
+class CheckFailedError(SeqgateError):
+    """A check ran and did not hold (exit 1)."""
+
+    exit_code = EXIT_CHECK_FAILED
+
+
+@dataclass(frozen=True)
+class Unsupported:
+    """One reason a model cannot be exported exactly.
+
+    ``where`` names the layer or module (``"lstm_1 (LSTM)"``), ``what`` the option and its
+    value, ``hint`` what the user can change.
+    """
+
+    where: str
+    what: str
+    hint: str = ""
+
+    def line(self) -> str:
+        tail = f" — {self.hint}" if self.hint else ""
+        return f"{self.where}: {self.what}{tail}"
+
+
+class UnsupportedModelError(SeqgateError):
+    """The model holds layers or options seqgate cannot export exactly (exit 3).
+
+    The message lists every problem at once, so a user fixes them in one round.
+    """
+
+    exit_code = EXIT_UNSUPPORTED
+
+    def __init__(self, source: str, problems: list[Unsupported]) -> None:
+        self.source = source
+        self.problems = list(problems)
+        n = len(self.problems)
+        lines = "\n".join(f"  - {p.line()}" for p in self.problems)
+        super().__init__(
+            f"cannot export {source}: {n} unsupported layer option{'s' if n != 1 else ''} "
+            f"(seqgate refuses what it cannot export exactly rather than approximate it):\n"
+            f"{lines}"
+        )
+
+
+class Refusal(Exception):
+    """Raised by one layer mapping; the walker collects these into UnsupportedModelError."""
+
+    def __init__(self, what: str, hint: str = "") -> None:
+        super().__init__(what)
+        self.what = what
+        self.hint = hint

@@ -1,0 +1,216 @@
+"""Keras 3 capture: walk a Functional/Sequential graph and map each layer through a table.
+
+Contract:
+- Graph inputs keep the Keras input names and order; outputs keep ``model.output_names``.
+- Batch is the symbolic dim ``batch`` and an unknown time axis ``time`` (``<input>_time``
+  when several inputs have one), unless the model fixed them.
+- Each operation is mapped by ``LAYERS[class name]`` (see ``keras_layers`` and
+  ``keras_recurrent``); only classes defined inside Keras itself are looked up.
+- Every refusal is collected: the walk goes on with placeholder values so that one
+  :class:`UnsupportedModelError` lists every unsupported layer at once.
+- Nested models (a Sequential used as a layer) are walked in place; their layer names get the
+  nested model's name as a prefix (``encoder/lstm``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from seqgate.errors import BadInputError, Refusal, Unsupported, UnsupportedModelError
+from seqgate.export.builder import DimSpec, GraphBuilder, np_to_onnx_type
+
+
+@dataclass
+class KV:
+    """A value in the graph being built: ONNX name, Keras static shape, dtype name."""
+
+    name: str
+    shape: tuple[int | None, ...]
+    dtype: str = "float32"
+
+    @property
+    def rank(self) -> int:
+        return len(self.shape)
+
+
+@dataclass
+class KerasCall:
+    """What a layer mapping receives: the layer, its tensor inputs, call kwargs, outputs."""
+
+    layer: Any
+    name: str  # full name incl. nested-model prefix
+    inputs: list[KV]
+    kwargs: dict[str, Any]
+    outputs: list[Any]  # KerasTensors this call produced (shapes, dtypes)
+    args: tuple[Any, ...] = ()
+    values: dict[int, KV] = field(default_factory=dict)  # id(KerasTensor) → KV
+
+    def value_of(self, tensor: Any) -> KV:
+        return self.values[id(tensor)]
+
+    def out_shape(self, i: int = 0) -> tuple[int | None, ...]:
+        return tuple(self.outputs[i].shape)
+
+
+def export_keras_model(model: Any, opset: int, metadata: dict[str, str]) -> Any:
+    """Build the ONNX ModelProto of a loaded Keras model (see module docstring)."""
+    from seqgate.export.keras_layers import LAYERS
+
+    graph = _functional_of(model)
+    b = GraphBuilder(opset, graph_name=model.name, framework="keras")
+    values: dict[int, KV] = {}
+    dims = _input_dims(graph.inputs)
+    for t, d in zip(graph.inputs, dims, strict=True):
+        dtype = str(t.dtype)
+        name = b.input(t.name, np_to_onnx_type(np.dtype(dtype)), d)
+        values[id(t)] = KV(name, tuple(t.shape), dtype)
+    problems: list[Unsupported] = []
+    _walk(b, graph, values, prefix="", problems=problems, table=LAYERS)
+    if problems:
+        raise UnsupportedModelError(metadata.get("seqgate.source.file", model.name), problems)
+    out_names = list(getattr(model, "output_names", None) or [t.name for t in graph.outputs])
+    for t, oname in zip(graph.outputs, out_names, strict=True):
+        v = values[id(t)]
+        b.output(v.name, oname, np_to_onnx_type(np.dtype(v.dtype)), _output_dims(v.shape))
+    return b.build(metadata)
+
+
+def _functional_of(model: Any) -> Any:
+    if type(model).__name__ == "Sequential":
+        f = getattr(model, "_functional", None)
+        if f is None:
+            raise BadInputError(
+                f"Sequential model {model.name!r} has no Input, so its input shape is unknown. "
+                f"Rebuild it with keras.Input(shape=...) as its first entry (or call "
+                f"model.build(input_shape)) and save it again."
+            )
+        return f
+    if not hasattr(model, "_nodes_by_depth"):
+        raise UnsupportedModelError(
+            model.name,
+            [Unsupported(f"{model.name} ({type(model).__name__})", "subclassed Keras model",
+                         "seqgate reads Functional and Sequential graphs; rebuild the model "
+                         "with the Functional API")],
+        )
+    return model
+
+
+def _input_dims(inputs: list[Any]) -> list[list[DimSpec]]:
+    dynamic_time = [t for t in inputs if len(t.shape) >= 2 and t.shape[1] is None]
+    out: list[list[DimSpec]] = []
+    for t in inputs:
+        dims: list[DimSpec] = []
+        for axis, d in enumerate(t.shape):
+            if d is not None:
+                dims.append(int(d))
+            elif axis == 0:
+                dims.append("batch")
+            elif axis == 1:
+                dims.append("time" if len(dynamic_time) == 1 else f"{t.name}_time")
+            else:
+                dims.append(f"{t.name}_dim{axis}")
+        out.append(dims)
+    return out
+
+
+def _output_dims(shape: tuple[int | None, ...]) -> list[DimSpec]:
+    return ["batch" if (i == 0 and d is None) else d for i, d in enumerate(shape)]
+
+
+def _walk(
+    b: GraphBuilder,
+    graph: Any,
+    values: dict[int, KV],
+    prefix: str,
+    problems: list[Unsupported],
+    table: dict[str, Any],
+) -> None:
+    """Visit ``graph``'s nodes in dependency order, mapping each through ``table``."""
+    for depth in sorted(graph._nodes_by_depth, reverse=True):
+        for node in graph._nodes_by_depth[depth]:
+            layer = node.operation
+            cls = type(layer).__name__
+            if cls == "InputLayer" or getattr(node, "is_input", False):
+                continue
+            full = f"{prefix}{layer.name}"
+            ins = [values[id(t)] for t in node.input_tensors]
+            if hasattr(layer, "_nodes_by_depth") or cls == "Sequential":
+                _walk_nested(b, layer, node, ins, values, full, problems, table)
+                continue
+            call = KerasCall(
+                layer=layer,
+                name=full,
+                inputs=ins,
+                kwargs=dict(node.arguments.kwargs),
+                outputs=list(node.outputs),
+                args=tuple(node.arguments.args),
+                values=values,
+            )
+            names = _map_one(b, call, cls, problems, table)
+            for t, n in zip(node.outputs, names, strict=True):
+                values[id(t)] = KV(n, tuple(t.shape), str(t.dtype))
+
+
+def _walk_nested(
+    b: GraphBuilder,
+    layer: Any,
+    node: Any,
+    ins: list[KV],
+    values: dict[int, KV],
+    full: str,
+    problems: list[Unsupported],
+    table: dict[str, Any],
+) -> None:
+    inner = _functional_of(layer)
+    if len(inner.inputs) != len(ins):
+        problems.append(Unsupported(f"{full} ({type(layer).__name__})",
+                                    "nested model called with a different number of inputs"))
+        return
+    for t, v in zip(inner.inputs, ins, strict=True):
+        values[id(t)] = v
+    _walk(b, inner, values, prefix=f"{full}/", problems=problems, table=table)
+    for t, outer in zip(inner.outputs, node.outputs, strict=True):
+        v = values[id(t)]
+        values[id(outer)] = KV(v.name, tuple(outer.shape), v.dtype)
+
+
+def _map_one(
+    b: GraphBuilder, call: KerasCall, cls: str, problems: list[Unsupported], table: dict[str, Any]
+) -> list[str]:
+    where = f"{call.name} ({cls})"
+    fn = table.get(cls)
+    module = type(call.layer).__module__
+    if fn is None or not module.startswith("keras."):
+        problems.append(Unsupported(where, f"layer class {cls} is not supported",
+                                    "see DEVELOPERS.md for the supported layers"))
+        return _placeholders(b, call)
+    try:
+        _check_dtype_policy(call.layer)
+        with b.layer(call.name, cls):
+            names = fn(b, call)
+    except Refusal as r:
+        problems.append(Unsupported(where, r.what, r.hint))
+        return _placeholders(b, call)
+    if len(names) != len(call.outputs):
+        raise AssertionError(f"mapping for {cls} returned {len(names)} values for {len(call.outputs)} outputs")
+    return names
+
+
+def _placeholders(b: GraphBuilder, call: KerasCall) -> list[str]:
+    return [b.fresh(f"{call.name}/unsupported_{i}") for i in range(len(call.outputs))]
+
+
+def _check_dtype_policy(layer: Any) -> None:
+    policy = getattr(layer, "dtype_policy", None)
+    compute = getattr(policy, "compute_dtype", "float32")
+    if compute not in ("float32", None):
+        raise Refusal(f"dtype policy computes in {compute}",
+                      "seqgate exports float32 models; set the policy to float32 and save again")
+
+
+def layer_weights(layer: Any) -> dict[str, np.ndarray[Any, Any]]:
+    """The layer's weights by their short Keras names (``kernel``, ``bias``…), as NumPy."""
+    return {w.name.split("/")[-1]: np.asarray(w.numpy()) for w in layer.weights}

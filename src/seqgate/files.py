@@ -1,0 +1,58 @@
+"""File helpers: atomic writes (temp file + rename) and content hashes."""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import tempfile
+from pathlib import Path
+
+from seqgate.errors import BadInputError
+
+
+def sha256_file(path: str | os.PathLike[str]) -> str:
+    """Hex sha256 of a file's bytes, read in 1 MiB chunks."""
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def check_writable(path: Path, force: bool) -> None:
+    """Refuse to overwrite an existing file unless ``force``; refuse a missing directory."""
+    if path.exists() and not force:
+        raise BadInputError(
+            f"output file {path} already exists; seqgate does not overwrite files unless asked. "
+            f"Pass --force to replace it, or choose another path with -o."
+        )
+    if path.is_dir():
+        raise BadInputError(f"output path {path} is a directory; give a file name such as {path}/model.onnx.")
+    if not path.parent.exists():
+        raise BadInputError(
+            f"output directory {path.parent} does not exist; create it first or choose another path."
+        )
+
+
+def write_atomic(path: str | os.PathLike[str], data: bytes) -> None:
+    """Write ``data`` to ``path`` so that readers see the old file or the whole new one.
+
+    The bytes go to a temp file in the same directory, are flushed and fsynced, then renamed
+    over the target (atomic on POSIX). On any failure the temp file is removed.
+    """
+    target = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def write_text_atomic(path: str | os.PathLike[str], text: str) -> None:
+    """Text form of :func:`write_atomic` (UTF-8)."""
+    write_atomic(path, text.encode("utf-8"))

@@ -1,0 +1,41 @@
+"""CLI basics: help text, version, and that --help imports no heavy framework."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+from typer.testing import CliRunner
+
+from seqgate import __version__
+from seqgate.cli import app
+
+runner = CliRunner()
+
+
+def test_help_lists_commands() -> None:
+    r = runner.invoke(app, ["--help"])
+    assert r.exit_code == 0
+    for cmd in ("export", "inspect"):
+        assert cmd in r.output
+
+
+def test_version() -> None:
+    r = runner.invoke(app, ["--version"])
+    assert r.exit_code == 0
+    assert __version__ in r.output
+
+
+def test_help_imports_no_framework() -> None:
+    code = (
+        "import sys\n"
+        "from seqgate.cli import app\n"
+        "from typer.testing import CliRunner\n"
+        "CliRunner().invoke(app, ['--help'])\n"
+        "CliRunner().invoke(app, ['export', '--help'])\n"
+        "heavy = [m for m in ('tensorflow', 'keras', 'torch', 'matplotlib', 'onnxruntime') "
+        "if m in sys.modules]\n"
+        "print(','.join(heavy))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == ""
