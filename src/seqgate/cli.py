@@ -6,6 +6,7 @@ No framework is imported until a command needs it, so ``seqgate --help`` is fast
 
 from __future__ import annotations
 
+import importlib
 import json
 import sys
 from pathlib import Path
@@ -121,6 +122,14 @@ def _print_inspection(info: dict) -> None:  # type: ignore[type-arg]
     for k, v in sorted(info["metadata"].items()):
         mt.add_row(k, v)
     c.print(mt)
+
+
+# Each command module defines ``register(app)``; list it here so ``seqgate --help`` shows it.
+# Command modules must import no framework at module level.
+COMMAND_MODULES: tuple[str, ...] = ()
+
+for _module in COMMAND_MODULES:
+    importlib.import_module(_module).register(app)
 
 
 def main() -> None:
