@@ -1,0 +1,1 @@
+"""Report writers (JSON, Markdown, JUnit XML, HTML)."""

@@ -1,0 +1,212 @@
+"""The gate's self-contained HTML report: inline CSS, charts as inline PNG data URIs, no network.
+
+Order, for a release reviewer: the verdict and the table of checks; the first divergence if
+verification failed; a chart of per-step error for each time-indexed probe; the latency-vs-
+sequence-length chart with budgets; the tensor and latency tables; provenance (hashes,
+versions, CPU). Input is the gate report dict (``schema: "seqgate.gate/1"``).
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+from typing import Any
+
+_CSS = """
+body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:2rem auto;max-width:72rem;
+color:#1d232a;line-height:1.45;padding:0 1rem}
+h1{font-size:1.6rem;margin-bottom:.2rem}h2{font-size:1.2rem;margin-top:2rem;border-bottom:1px solid #dde}
+.verdict{display:inline-block;padding:.35rem .9rem;border-radius:.4rem;font-weight:700;font-size:1.3rem}
+.pass{background:#dcf5e3;color:#0d5b26}.fail{background:#fde2e1;color:#8a1610}
+table{border-collapse:collapse;margin:.6rem 0;font-size:.9rem}
+th,td{border:1px solid #d6d9de;padding:.25rem .55rem;text-align:left;vertical-align:top}
+th{background:#f3f5f7}td.num{text-align:right;font-variant-numeric:tabular-nums}
+.ok{color:#0d5b26;font-weight:600}.bad{color:#8a1610;font-weight:600}
+.note{color:#555;font-size:.9rem}img{max-width:100%;border:1px solid #e3e5e8}
+code{background:#f3f5f7;padding:0 .25rem;border-radius:.2rem}
+"""
+
+
+def _e(x: Any) -> str:
+    return html.escape(str(x), quote=True)
+
+
+def _fmt(x: Any) -> str:
+    if isinstance(x, float):
+        return f"{x:.3g}"
+    return _e(x)
+
+
+def _mark(ok: bool | None) -> str:
+    if ok is None:
+        return '<span class="note">not run</span>'
+    return '<span class="ok">pass</span>' if ok else '<span class="bad">FAIL</span>'
+
+
+def _png(fig: Any) -> str:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=110, bbox_inches="tight")
+    import matplotlib.pyplot as plt
+
+    plt.close(fig)
+    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _pyplot() -> Any:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def drift_chart(tensors: list[dict[str, Any]], title: str) -> str | None:
+    """Per-step max |error| for every time-indexed tensor of one recording (log scale)."""
+    curves = [t for t in tensors if t.get("per_step_max_abs")]
+    if not curves:
+        return None
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(8.5, 3.6))
+    for t in curves:
+        ys = [max(float(v), 1e-12) for v in t["per_step_max_abs"]]
+        ax.plot(range(len(ys)), ys, lw=1.2, label=t["name"])
+    atol = min(float(t.get("atol", 0) or 0) for t in curves)
+    if atol > 0:
+        ax.axhline(atol, color="#8a1610", ls="--", lw=1, label=f"atol {atol:g}")
+    ax.set_yscale("log")
+    ax.set_xlabel("time step")
+    ax.set_ylabel("max |onnx − source|")
+    ax.set_title(title)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7, ncol=2, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    return _png(fig)
+
+
+def latency_chart(profile: dict[str, Any], percentile: int) -> str | None:
+    """Latency at the budget percentile against sequence length, one line per series."""
+    points = profile.get("points") or []
+    if not points:
+        return None
+    plt = _pyplot()
+    key = f"p{percentile}_ms"
+    series: dict[tuple[Any, ...], list[tuple[int, float]]] = {}
+    for p in points:
+        series.setdefault((p["runtime"], p["threads"], p["batch"]), []).append((p["seq_len"], p[key]))
+    fig, ax = plt.subplots(figsize=(8.5, 3.8))
+    for (rt, th, bs), pts in sorted(series.items()):
+        pts.sort()
+        ax.plot([a for a, _ in pts], [b for _, b in pts], marker="o", lw=1.4,
+                label=f"{rt}, {th} thread{'s' if th != 1 else ''}, batch {bs}")
+    for b in profile.get("budgets") or []:
+        ax.scatter([b["seq_len"]], [b["ms"]], marker="_", s=500, color="#8a1610", zorder=5)
+        ax.annotate(f"budget {b['ms']:g} ms", (b["seq_len"], b["ms"]), textcoords="offset points",
+                    xytext=(6, 4), fontsize=8, color="#8a1610")
+    ax.set_xscale("log", base=2)
+    ax.set_yscale("log")
+    ax.set_xlabel("sequence length (steps)")
+    ax.set_ylabel(f"p{percentile} latency (ms)")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    return _png(fig)
+
+
+def _table(headers: list[str], rows: list[list[str]], numeric: set[int] | None = None) -> str:
+    numeric = numeric or set()
+    head = "".join(f"<th>{_e(h)}</th>" for h in headers)
+    body = "".join(
+        "<tr>" + "".join(f'<td class="num">{c}</td>' if i in numeric else f"<td>{c}</td>"
+                         for i, c in enumerate(r)) + "</tr>"
+        for r in rows
+    )
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _checks(report: dict[str, Any]) -> str:
+    rows = [[_e(c["name"]), _mark(c.get("passed")), _e(c.get("detail", ""))] for c in report.get("checks", [])]
+    return _table(["check", "verdict", "detail"], rows)
+
+
+def _divergence(verify: dict[str, Any] | None) -> str:
+    fd = (verify or {}).get("first_divergence")
+    if not fd:
+        return ""
+    items = "".join(f"<tr><th>{_e(k)}</th><td>{_fmt(v)}</td></tr>" for k, v in fd.items())
+    return ("<h2>First divergence</h2><p>The earliest tensor, in graph order, that leaves tolerance. "
+            "Later tensors usually diverge because this one did.</p>" f"<table>{items}</table>")
+
+
+def _verify_section(verify: dict[str, Any] | None) -> str:
+    if not verify:
+        return ""
+    parts = ["<h2>Verification</h2>"]
+    by_rec: dict[str, list[dict[str, Any]]] = {}
+    for t in verify.get("tensors", []):
+        by_rec.setdefault(str(t.get("recording", "all windows")), []).append(t)
+    for rec, tensors in by_rec.items():
+        chart = drift_chart(tensors, f"per-step error — {rec}")
+        if chart:
+            parts.append(f'<p><img alt="per-step error, {_e(rec)}" src="{chart}"></p>')
+        rows = [[_e(t["name"]), _e(t.get("kind", "")), _fmt(t.get("max_abs")), _fmt(t.get("max_rel")),
+                 _fmt(t.get("p99_abs")), _fmt(t.get("outside", t.get("n_outside", ""))),
+                 _fmt(t.get("atol")), _fmt(t.get("rtol")), _mark(t.get("passed"))] for t in tensors]
+        parts.append(f"<h3>{_e(rec)}</h3>")
+        parts.append(_table(["tensor", "kind", "max abs", "max rel", "p99 abs", "outside", "atol", "rtol",
+                             "verdict"], rows, {2, 3, 4, 5, 6, 7}))
+    return "".join(parts)
+
+
+def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
+    if not profile:
+        return ""
+    parts = ["<h2>Latency</h2>"]
+    chart = latency_chart(profile, percentile)
+    if chart:
+        parts.append(f'<p><img alt="latency against sequence length" src="{chart}"></p>')
+    brows = [[_e(b["seq_len"]), _fmt(b["ms"]), _fmt(b.get("measured_ms")), _e(b.get("runtime", "onnxruntime")),
+              _mark(b.get("passed"))] for b in profile.get("budgets") or []]
+    if brows:
+        parts.append(_table(["seq len", "budget ms", f"p{percentile} ms", "runtime", "verdict"], brows, {0, 1, 2}))
+    rows = [[_e(p["runtime"]), _e(p["seq_len"]), _e(p["batch"]), _e(p["threads"]), _fmt(p.get("p50_ms")),
+             _fmt(p.get("p90_ms")), _fmt(p.get("p99_ms")), _e(p.get("runs")), _fmt(p.get("speedup", ""))]
+            for p in profile.get("points") or []]
+    parts.append(_table(["runtime", "seq len", "batch", "threads", "p50 ms", "p90 ms", "p99 ms", "runs",
+                         "speed-up"], rows, {1, 2, 3, 4, 5, 6, 7, 8}))
+    return "".join(parts)
+
+
+def _provenance(report: dict[str, Any]) -> str:
+    prov = report.get("provenance", {})
+    env = report.get("environment", {})
+    rows = [[_e(k), f"<code>{_e(v)}</code>"] for k, v in sorted(prov.get("files", {}).items())]
+    parts = ["<h2>Provenance</h2>", _table(["file", "sha256"], rows)]
+    erows = [[_e(k), _e(v)] for k, v in env.items() if k != "libraries"]
+    erows += [[_e(k), _e(v)] for k, v in sorted((env.get("libraries") or {}).items())]
+    parts.append(_table(["environment", "value"], erows))
+    return "".join(parts)
+
+
+def render_gate_html(report: dict[str, Any]) -> str:
+    """The whole HTML document for a gate report dict."""
+    passed = bool(report.get("passed"))
+    verdict = f'<span class="verdict {"pass" if passed else "fail"}">{"PASSED" if passed else "FAILED"}</span>'
+    title = f"seqgate release gate — {report.get('model_name', '')}"
+    pct = int((report.get("config") or {}).get("percentile", 99))
+    body = [
+        f"<h1>{_e(title)}</h1>",
+        f"<p>{verdict} <span class='note'>config {_e(report.get('config_path', ''))} · "
+        f"seqgate {_e(report.get('tool_version', ''))} · {_e(report.get('created', ''))}</span></p>",
+        _checks(report),
+        _divergence(report.get("verify")),
+        _verify_section(report.get("verify")),
+        _profile_section(report.get("profile"), pct),
+        _provenance(report),
+        "<h2>What this report shows</h2><p class='note'>Passing shows that the exported ONNX graph computes "
+        "what the trained model computes within the stated tolerances on the windows checked, and that it "
+        "met the stated latency budgets on the machine measured. It does not show that the model is fit "
+        "for any purpose, in particular a safety-relevant one: follow the applicable standards and get "
+        "qualified review. Measure latency on the target hardware.</p>",
+    ]
+    return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+            f"<title>{_e(title)}</title><style>{_CSS}</style></head><body>" + "".join(body) + "</body></html>")
