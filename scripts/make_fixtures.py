@@ -40,7 +40,8 @@ def simulate_network(days: int, rng: np.random.Generator) -> tuple[np.ndarray, n
     pump = np.clip(55 + 30 * (daily - 1.0) + rng.normal(0, 2.0, n), 20, 100)
     for i in range(1, n):
         inflow = 0.011 * pump[i - 1]
-        level[i] = np.clip(level[i - 1] + 0.05 * (inflow - 0.012 * flow[i - 1]) + rng.normal(0, 0.005), 2.5, 6.0)
+        step = 0.05 * (inflow - 0.012 * flow[i - 1]) + rng.normal(0, 0.005)
+        level[i] = np.clip(level[i - 1] + step, 2.5, 6.0)
     head = 2.1 * level + 0.09 * pump - 0.0009 * flow**2
     pressure = np.convolve(head, np.ones(3) / 3, mode="same") + rng.normal(0, 0.05, n)
     sensors = np.stack([flow, level, pump], axis=1).astype(np.float32)

@@ -12,6 +12,10 @@ Cost per sequence is linear in the length: ``macs(T) = per_sequence + per_step Â
 are found by shape-inferring the graph at batch 1 with the time dims set to two lengths and
 differencing, so dense heads after the last state count per sequence and time-distributed
 layers per step, with no per-op special cases.
+
+A time dim is a symbolic input dim whose name contains ``time``, or one at axis 1 of an input
+(the ``[batch, time, ...]`` convention) unless its name contains ``batch``; every other
+symbolic dim is set to 1.
 """
 
 from __future__ import annotations
@@ -39,14 +43,28 @@ class NodeCost:
     macs_per_step: int
 
 
+def time_dim_names(model: onnx.ModelProto) -> set[str]:
+    """Names of the symbolic input dims that are time (see the module docstring)."""
+    names: set[str] = set()
+    for vi in model.graph.input:
+        dims = vi.type.tensor_type.shape.dim
+        for axis, d in enumerate(dims):
+            if not d.HasField("dim_param") or "batch" in d.dim_param:
+                continue
+            if "time" in d.dim_param or axis == 1:
+                names.add(d.dim_param)
+    return names
+
+
 def _fixed_dims(model: onnx.ModelProto, t: int) -> onnx.ModelProto:
     m = copy.deepcopy(model)
+    time_names = time_dim_names(model)
     for vi in m.graph.input:
         for d in vi.type.tensor_type.shape.dim:
             if d.HasField("dim_param"):
                 name = d.dim_param
                 d.Clear()
-                d.dim_value = t if "time" in name else 1
+                d.dim_value = t if name in time_names else 1
     del m.graph.value_info[:]
     for o in m.graph.output:
         for d in o.type.tensor_type.shape.dim:
@@ -102,11 +120,7 @@ def _params(model: onnx.ModelProto) -> dict[str, int]:
 
 def has_dynamic_time(model: onnx.ModelProto) -> bool:
     """True when some graph input has a symbolic time dim."""
-    return any(
-        d.HasField("dim_param") and "time" in d.dim_param
-        for vi in model.graph.input
-        for d in vi.type.tensor_type.shape.dim
-    )
+    return bool(time_dim_names(model))
 
 
 def node_costs(model: onnx.ModelProto) -> list[NodeCost]:

@@ -244,7 +244,7 @@ def _assemble(c: _Checker, p: Path, data: dict[str, Any], model: dict[str, Any],
     if not recordings and not verify["synthetic"]:
         c.problems.append("[verify] needs recordings, or synthetic = true, or both")
     if verify["task"] not in ("auto", "classify", "regress"):
-        c.problems.append(f"[verify] task must be \"auto\", \"classify\" or \"regress\", got {verify['task']!r}")
+        c.problems.append(f"[verify] task must be 'auto', 'classify' or 'regress', got {verify['task']!r}")
     if verify["batch_size"] < 1:
         c.problems.append(f"[verify] batch_size must be ≥ 1, got {verify['batch_size']}")
     for k in ("atol", "rtol"):

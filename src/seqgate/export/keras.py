@@ -1,7 +1,8 @@
 """Keras 3 capture: walk a Functional/Sequential graph and map each layer through a table.
 
 Contract:
-- Graph inputs keep the Keras input names and order; outputs keep ``model.output_names``.
+- Graph inputs keep the Keras input names and order; outputs keep ``model.output_names``
+  (a layer's second and later outputs become ``<layer>:<index>``, since Keras repeats the name).
 - Batch is the symbolic dim ``batch`` and an unknown time axis ``time`` (``<input>_time``
   when several inputs have one), unless the model fixed them.
 - Each operation is mapped by ``LAYERS[class name]`` (see ``keras_layers`` and
@@ -71,11 +72,32 @@ def export_keras_model(model: Any, opset: int, metadata: dict[str, str]) -> Any:
     _walk(b, graph, values, prefix="", problems=problems, table=LAYERS)
     if problems:
         raise UnsupportedModelError(metadata.get("seqgate.source.file", model.name), problems)
-    out_names = list(getattr(model, "output_names", None) or [t.name for t in graph.outputs])
-    for t, oname in zip(graph.outputs, out_names, strict=True):
+    for t, oname in zip(graph.outputs, _output_names(model, graph), strict=True):
         v = values[id(t)]
         b.output(v.name, oname, np_to_onnx_type(np.dtype(v.dtype)), _output_dims(v.shape))
     return b.build(metadata)
+
+
+def _output_names(model: Any, graph: Any) -> list[str]:
+    """``model.output_names``, made unique: Keras repeats a layer's name for each of its outputs
+    (an LSTM with ``return_state`` gives ``['lstm', 'lstm', 'lstm']``). A repeat is named
+    ``<layer>:<output index>`` (``lstm:1``, ``lstm:2``); ':' never occurs in Keras layer names.
+    """
+    names = list(getattr(model, "output_names", None) or [t.name for t in graph.outputs])
+    seen: set[str] = set()
+    out: list[str] = []
+    for t, name in zip(graph.outputs, names, strict=True):
+        unique = name
+        if unique in seen:
+            history = getattr(t, "_keras_history", None)
+            index = int(history.tensor_index) if history is not None else len(out)
+            unique, k = f"{name}:{index}", 0
+            while unique in seen:
+                k += 1
+                unique = f"{name}:{index}_{k}"
+        seen.add(unique)
+        out.append(unique)
+    return out
 
 
 def _functional_of(model: Any) -> Any:

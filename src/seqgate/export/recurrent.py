@@ -169,10 +169,24 @@ ACTIVATION_DEFAULTS: dict[str, tuple[float, float]] = {
 }
 
 
+# Which activations take alpha / beta inside the recurrent ops (ONNX spec activation table).
+TAKES_ALPHA = frozenset({"Affine", "LeakyRelu", "ThresholdedRelu", "ScaledTanh", "HardSigmoid", "Elu"})
+TAKES_BETA = frozenset({"Affine", "ScaledTanh", "HardSigmoid"})
+
+
 def activation_attrs(slots: list[CellActivation]) -> dict[str, Any]:
-    """``activations``, ``activation_alpha``, ``activation_beta`` for a recurrent node."""
-    return {
-        "activations": [s.name for s in slots],
-        "activation_alpha": [float(s.alpha) for s in slots],
-        "activation_beta": [float(s.beta) for s in slots],
-    }
+    """``activations``, ``activation_alpha``, ``activation_beta`` for a recurrent node.
+
+    The alpha/beta lists are consumed in slot order *only by the activations that take the
+    parameter* (how onnxruntime 1.32 reads them, measured): ``[Sigmoid, LeakyRelu(0.2)]`` is
+    written ``activation_alpha=[0.2]``. Writing one value per slot would hand LeakyRelu the
+    Sigmoid's placeholder. An empty list is omitted (no activation takes that parameter).
+    """
+    attrs: dict[str, Any] = {"activations": [s.name for s in slots]}
+    alpha = [float(s.alpha) for s in slots if s.name in TAKES_ALPHA]
+    beta = [float(s.beta) for s in slots if s.name in TAKES_BETA]
+    if alpha:
+        attrs["activation_alpha"] = alpha
+    if beta:
+        attrs["activation_beta"] = beta
+    return attrs

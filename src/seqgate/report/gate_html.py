@@ -167,7 +167,8 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
     brows = [[_e(b["seq_len"]), _fmt(b["ms"]), _fmt(b.get("measured_ms")), _e(b.get("runtime", "onnxruntime")),
               _mark(b.get("passed"))] for b in profile.get("budgets") or []]
     if brows:
-        parts.append(_table(["seq len", "budget ms", f"p{percentile} ms", "runtime", "verdict"], brows, {0, 1, 2}))
+        heads = ["seq len", "budget ms", f"p{percentile} ms", "runtime", "verdict"]
+        parts.append(_table(heads, brows, {0, 1, 2}))
     rows = [[_e(p["runtime"]), _e(p["seq_len"]), _e(p["batch"]), _e(p["threads"]), _fmt(p.get("p50_ms")),
              _fmt(p.get("p90_ms")), _fmt(p.get("p99_ms")), _e(p.get("runs")), _fmt(p.get("speedup", ""))]
             for p in profile.get("points") or []]
