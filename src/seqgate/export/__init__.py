@@ -8,7 +8,6 @@ run under onnxruntime 1.32 by the tests.
 
 from __future__ import annotations
 
-import sys
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -97,5 +96,8 @@ def export_source(
     return ExportResult(out_path, model, src, len(read_probe_map(model)), opset)
 
 
-def _python_version() -> str:
-    return sys.version.split()[0]
+
+
+from seqgate._callable import make_callable  # noqa: E402
+
+make_callable(__name__, "export_source")
