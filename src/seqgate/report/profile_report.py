@@ -1,0 +1,93 @@
+"""Writers for a profile report (``schema: "seqgate.profile/1"``): JSON, CSV of points, PNG plot.
+
+Every writer takes the report dict (``ProfileReport.to_dict()``), so other reports (the gate's)
+can reuse them on the profile section they embed. Files are written atomically.
+
+The plot: latency (the report's percentile, p50 dashed beside it) against sequence length on
+log–log axes, one line per runtime/threads/batch, each budget a red cross at (T, MS) with a
+short horizontal bar. matplotlib (Agg backend) is imported only here.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import os
+from typing import Any
+
+from seqgate.files import write_atomic, write_text_atomic
+
+CSV_COLUMNS = (
+    "seq_len", "batch", "threads", "runtime", "p50_ms", "p90_ms", "p99_ms", "min_ms", "max_ms",
+    "mean_ms", "std_ms", "runs", "sequences_per_s", "steps_per_s", "us_per_step",
+    "macs_per_sequence", "gflops", "speedup", "framework_threads",
+)
+
+
+def write_json(report: dict[str, Any], path: str | os.PathLike[str]) -> None:
+    """The report as sorted, indented JSON."""
+    import json
+
+    write_text_atomic(path, json.dumps(report, indent=2, sort_keys=True) + "\n")
+
+
+def points_csv(report: dict[str, Any]) -> str:
+    """One CSV row per point, columns ``CSV_COLUMNS``; empty cells for absent figures."""
+    buf = io.StringIO()
+    w = csv.DictWriter(buf, fieldnames=CSV_COLUMNS, extrasaction="ignore", lineterminator="\n")
+    w.writeheader()
+    for p in report["points"]:
+        w.writerow({k: ("" if p.get(k) is None else p.get(k)) for k in CSV_COLUMNS})
+    return buf.getvalue()
+
+
+def write_csv(report: dict[str, Any], path: str | os.PathLike[str]) -> None:
+    write_text_atomic(path, points_csv(report))
+
+
+def plot_png(report: dict[str, Any]) -> bytes:
+    """PNG bytes of latency against sequence length (see the module docstring)."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    from matplotlib.figure import Figure
+
+    q = report["options"]["percentile"]
+    fig = Figure(figsize=(7.5, 4.8), dpi=110)
+    ax = fig.add_subplot(1, 1, 1)
+    series: dict[tuple[str, int, int], list[dict[str, Any]]] = {}
+    for p in report["points"]:
+        series.setdefault((p["runtime"], p["threads"], p["batch"]), []).append(p)
+    for (runtime, threads, batch), pts in sorted(series.items()):
+        pts = sorted(pts, key=lambda p: p["seq_len"])
+        ts = [p["seq_len"] for p in pts]
+        line = ax.plot(ts, [p[f"p{q}_ms"] for p in pts], marker="o",
+                       label=f"{runtime} threads={threads} batch={batch} (p{q})")[0]
+        if q != 50:
+            ax.plot(ts, [p["p50_ms"] for p in pts], linestyle="--", color=line.get_color(), alpha=0.6)
+    seen: set[tuple[int, float]] = set()
+    for b in report["budgets"]:
+        key = (b["seq_len"], b["budget_ms"])
+        if key in seen:
+            continue
+        seen.add(key)
+        ax.plot([b["seq_len"]], [b["budget_ms"]], marker="x", color="red", markersize=10, linestyle="")
+        ax.hlines(b["budget_ms"], b["seq_len"] / 1.4, b["seq_len"] * 1.4, colors="red", linewidth=1.5)
+        ax.annotate(f"budget {b['budget_ms']:g} ms", (b["seq_len"], b["budget_ms"]),
+                    textcoords="offset points", xytext=(6, 6), color="red", fontsize=8)
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    ax.set_xlabel("sequence length T (steps)")
+    ax.set_ylabel("latency (ms)")
+    verdict = "" if not report["budgets"] else (" — budgets hold" if report["passed"] else " — budget missed")
+    ax.set_title(f"latency vs sequence length (p{q}; dashed p50){verdict}", fontsize=10)
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=7, loc="upper left")
+    fig.tight_layout()
+    out = io.BytesIO()
+    fig.savefig(out, format="png")
+    return out.getvalue()
+
+
+def write_plot(report: dict[str, Any], path: str | os.PathLike[str]) -> None:
+    write_atomic(path, plot_png(report))
