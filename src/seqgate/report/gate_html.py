@@ -80,7 +80,7 @@ def drift_chart(tensors: list[dict[str, Any]], title: str) -> str | None:
     ax.set_ylabel("max |onnx − source|")
     ax.set_title(title)
     ax.grid(alpha=0.3)
-    ax.legend(fontsize=7, ncol=2, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    ax.legend(fontsize=7, ncol=1 + len(curves) // 14, loc="upper left", bbox_to_anchor=(1.01, 1.0))
     return _png(fig)
 
 
@@ -100,8 +100,8 @@ def latency_chart(profile: dict[str, Any], percentile: int) -> str | None:
         ax.plot([a for a, _ in pts], [b for _, b in pts], marker="o", lw=1.4,
                 label=f"{rt}, {th} thread{'s' if th != 1 else ''}, batch {bs}")
     for b in profile.get("budgets") or []:
-        ax.scatter([b["seq_len"]], [b["ms"]], marker="_", s=500, color="#8a1610", zorder=5)
-        ax.annotate(f"budget {b['ms']:g} ms", (b["seq_len"], b["ms"]), textcoords="offset points",
+        ax.scatter([b["seq_len"]], [b["budget_ms"]], marker="_", s=500, color="#8a1610", zorder=5)
+        ax.annotate(f"budget {b['budget_ms']:g} ms", (b["seq_len"], b["budget_ms"]), textcoords="offset points",
                     xytext=(6, 4), fontsize=8, color="#8a1610")
     ax.set_xscale("log", base=2)
     ax.set_yscale("log")
@@ -140,20 +140,29 @@ def _divergence(verify: dict[str, Any] | None) -> str:
 def _verify_section(verify: dict[str, Any] | None) -> str:
     if not verify:
         return ""
-    parts = ["<h2>Verification</h2>"]
-    by_rec: dict[str, list[dict[str, Any]]] = {}
-    for t in verify.get("tensors", []):
-        by_rec.setdefault(str(t.get("recording", "all windows")), []).append(t)
-    for rec, tensors in by_rec.items():
-        chart = drift_chart(tensors, f"per-step error — {rec}")
+    parts = ["<h2>Verification</h2>", f"<p>{_e(verify.get('headline', ''))}</p>"]
+    for rec in verify.get("recordings", []):
+        label = rec["label"]
+        curves = [{"name": t["name"], "atol": t["atol"], **t["by_recording"][label]}
+                  for t in verify.get("tensors", []) if label in t.get("by_recording", {})]
+        chart = drift_chart(curves, f"per-step error — {label}")
+        parts.append(f"<h3>{_e(label)} <span class='note'>({_e(rec.get('kind', ''))}, "
+                     f"{_e(rec.get('windows', ''))} windows)</span></h3>")
         if chart:
-            parts.append(f'<p><img alt="per-step error, {_e(rec)}" src="{chart}"></p>')
-        rows = [[_e(t["name"]), _e(t.get("kind", "")), _fmt(t.get("max_abs")), _fmt(t.get("max_rel")),
-                 _fmt(t.get("p99_abs")), _fmt(t.get("outside", t.get("n_outside", ""))),
-                 _fmt(t.get("atol")), _fmt(t.get("rtol")), _mark(t.get("passed"))] for t in tensors]
-        parts.append(f"<h3>{_e(rec)}</h3>")
-        parts.append(_table(["tensor", "kind", "max abs", "max rel", "p99 abs", "outside", "atol", "rtol",
-                             "verdict"], rows, {2, 3, 4, 5, 6, 7}))
+            parts.append(f'<p><img alt="per-step error, {_e(label)}" src="{chart}"></p>')
+    rows = []
+    for t in verify.get("tensors", []):
+        m = t.get("metrics", {})
+        top1 = m.get("top1_agreement")
+        rows.append([_e(t["name"]), _e(t.get("kind", "")), _e(t.get("layer") or ""), _fmt(m.get("max_abs")),
+                     _fmt(m.get("max_rel")), _fmt(m.get("p99_abs")), _fmt(m.get("outside")),
+                     _fmt(top1) if top1 is not None else "", _fmt(t.get("atol")), _fmt(t.get("rtol")),
+                     _mark(t.get("passed"))])
+    parts.append("<h3>Every tensor, all window sets</h3>")
+    parts.append(_table(["tensor", "kind", "layer", "max abs", "max rel", "p99 abs", "outside", "top-1",
+                         "atol", "rtol", "verdict"], rows, {3, 4, 5, 6, 7, 8, 9}))
+    for w in verify.get("warnings", []):
+        parts.append(f"<p class='note'>warning: {_e(w)}</p>")
     return "".join(parts)
 
 
@@ -164,11 +173,13 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
     chart = latency_chart(profile, percentile)
     if chart:
         parts.append(f'<p><img alt="latency against sequence length" src="{chart}"></p>')
-    brows = [[_e(b["seq_len"]), _fmt(b["ms"]), _fmt(b.get("measured_ms")), _e(b.get("runtime", "onnxruntime")),
-              _mark(b.get("passed"))] for b in profile.get("budgets") or []]
+    brows = [[_e(b["seq_len"]), _e(b["batch"]), _e(b["threads"]), _fmt(b["budget_ms"]), _fmt(b.get("measured_ms")),
+              _e(b.get("predicted_longest_seq_len")), _mark(b.get("passed"))] for b in profile.get("budgets") or []]
     if brows:
-        heads = ["seq len", "budget ms", f"p{percentile} ms", "runtime", "verdict"]
-        parts.append(_table(heads, brows, {0, 1, 2}))
+        heads = ["seq len", "batch", "threads", "budget ms", f"p{percentile} ms", "longest T predicted", "verdict"]
+        parts.append(_table(heads, brows, {0, 1, 2, 3, 4, 5}))
+    for n in profile.get("notes") or []:
+        parts.append(f"<p class='note'>{_e(n)}</p>")
     rows = [[_e(p["runtime"]), _e(p["seq_len"]), _e(p["batch"]), _e(p["threads"]), _fmt(p.get("p50_ms")),
              _fmt(p.get("p90_ms")), _fmt(p.get("p99_ms")), _e(p.get("runs")), _fmt(p.get("speedup", ""))]
             for p in profile.get("points") or []]
