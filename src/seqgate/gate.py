@@ -10,7 +10,8 @@ Contract:
 - The config is validated in full before any heavy work (``seqgate.gate_config``): every
   problem in one message, exit 2.
 - Export writes ``model.onnx`` into the output directory; an unsupported model stops the gate
-  with exit 3, and the reports still record why.
+  with exit 3, and the reports still record why. With ``[model] onnx = FILE`` the gate checks
+  that file (the artifact that ships) against the source instead of exporting a new one.
 - Budgets at lengths the exported model cannot take (a fixed time dim) are refused (exit 2)
   before verification and profiling start.
 - Checks: ``export``, ``verify`` (every output and hidden state within tolerance on every
@@ -112,12 +113,24 @@ def _sha(path: Path) -> str:
 
 
 def _run_checks(report: GateReport, progress: bool) -> None:
+    cfg = report.config
+    model_path = report.out_dir / "model.onnx"
+    weights = str(cfg.weights) if cfg.weights else None
+    if cfg.onnx is not None:
+        model = _adopt_onnx(report, model_path)
+    else:
+        model = _export(report, model_path, weights)
+    _check_lengths(cfg, model)
+    _verify(report, model_path, weights, progress)
+    if cfg.profile_enabled:
+        _profile(report, model_path, weights)
+
+
+def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
     from seqgate.export import export_source
 
     cfg = report.config
-    model_path = report.out_dir / "model.onnx"
     options = {"inputs": cfg.inputs} if cfg.inputs else {}
-    weights = str(cfg.weights) if cfg.weights else None
     try:
         res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, **options)
     except SeqgateError as e:
@@ -129,10 +142,24 @@ def _run_checks(report: GateReport, progress: bool) -> None:
     report.checks.append({"name": "export", "passed": True,
                           "detail": f"{len(res.model.graph.node)} ONNX nodes, {res.probes} probes, "
                                     f"opset {res.opset}"})
-    _check_lengths(cfg, res.model)
-    _verify(report, model_path, weights, progress)
-    if cfg.profile_enabled:
-        _profile(report, model_path, weights)
+    return res.model
+
+
+def _adopt_onnx(report: GateReport, model_path: Path) -> Any:
+    """Gate a given ONNX file (the artifact that ships) instead of exporting: copy it into the output dir."""
+    from seqgate.files import write_atomic
+    from seqgate.inspection import load_onnx
+    from seqgate.probes import read_probe_map
+
+    cfg = report.config
+    assert cfg.onnx is not None
+    model = load_onnx(cfg.onnx)
+    write_atomic(model_path, cfg.onnx.read_bytes())
+    report.files[str(cfg.onnx)] = _sha(cfg.onnx)
+    report.checks.append({"name": "export", "passed": True,
+                          "detail": f"given ONNX file {cfg.onnx.name} (not exported here): "
+                                    f"{len(model.graph.node)} nodes, {len(read_probe_map(model))} probes"})
+    return model
 
 
 def _check_lengths(cfg: GateConfig, model: Any) -> None:

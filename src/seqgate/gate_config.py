@@ -6,6 +6,7 @@ Layout (every key; ``fixtures/gate_example.toml`` is the commented reference)::
     source = "forecaster.keras"        # Keras file, or "FILE.py:FACTORY" for PyTorch
     weights = "model.pt"               # PyTorch state dict (PyTorch sources only)
     inputs = ["x:batch,time,3"]        # PyTorch input spec, NAME:DIM,... (optional)
+    onnx = "shipped.onnx"              # gate this ONNX file instead of exporting one (optional)
 
     [export]
     opset = 17
@@ -17,11 +18,11 @@ Layout (every key; ``fixtures/gate_example.toml`` is the commented reference)::
     batch_size = 64
     states = true                      # compare every hidden state, not only outputs
     task = "auto"                      # "auto" | "classify" | "regress"
-    atol = 1e-5
-    rtol = 1e-4
+    atol = 1e-5                        # defaults: seqgate.compare.DEFAULT_ATOL / DEFAULT_RTOL
+    rtol = 1e-5
     oracle = false                     # third opinion from onnx.reference on the worst windows
 
-    [[verify.tolerance]]               # per-tensor override, first match wins
+    [[verify.tolerance]]               # per-tensor override; later matches win per field
     match = "head*"                    # fnmatch pattern on the tensor name
     atol = 1e-4
     rtol = 1e-3
@@ -57,7 +58,7 @@ from typing import Any
 from seqgate.errors import BadInputError
 
 _SCHEMA: dict[str, dict[str, tuple[type | tuple[type, ...], Any]]] = {
-    "model": {"source": (str, None), "weights": (str, None), "inputs": (list, None)},
+    "model": {"source": (str, None), "weights": (str, None), "inputs": (list, None), "onnx": (str, None)},
     "export": {"opset": (int, 17)},
     "verify": {
         "recordings": (list, []), "synthetic": (bool, True), "seed": (int, 0),
@@ -117,6 +118,7 @@ class GateConfig:
     compare_source: bool
     budgets: list[Budget] = field(default_factory=list)
     profile_enabled: bool = True
+    onnx: Path | None = None
 
     @property
     def base(self) -> Path:
@@ -276,6 +278,7 @@ def _assemble(c: _Checker, p: Path, data: dict[str, Any], model: dict[str, Any],
         percentile=profile["percentile"], warmup=profile["warmup"], min_runs=profile["min_runs"],
         min_time=float(profile["min_time"]), compare_source=profile["compare_source"], budgets=budgets,
         profile_enabled="profile" in data,
+        onnx=c.file(model["onnx"], "[model] onnx") if model.get("onnx") else None,
     )
 
 
