@@ -94,9 +94,9 @@ def load_keras(path: Path) -> Any:
         msg = str(e)
         if "Could not locate" in msg or "custom" in msg.lower() or "register" in msg:
             raise UnsafeSourceError(
-                f"{path}: the model uses a custom class that Keras cannot build without running "
-                f"your code ({_first_line(msg)}). seqgate loads only Keras's own layers; rebuild "
-                f"the model from built-in layers."
+                f"{path}: {_custom_class_what(msg)} that is not part of Keras; building it would run "
+                f"code from outside Keras, so safe loading refuses it. seqgate loads only Keras's own "
+                f"layers: rebuild the model from built-in layers and save it again."
             ) from e
         raise BadInputError(f"{path}: Keras could not load the model: {_first_line(msg)}") from e
     except (OSError, KeyError, AttributeError, IndexError) as e:
@@ -106,13 +106,31 @@ def load_keras(path: Path) -> Any:
         ) from e
 
 
+def _custom_class_what(msg: str) -> str:
+    """'layer 'doubler' uses the custom class Doubler' from Keras's TypeError text, when present."""
+    import re
+
+    cls = re.search(r"Could not locate (?:class|function) '([^']+)'", msg)
+    name = re.search(r"Full object config: \{.*?'name': '([^']+)'", msg)
+    if cls and name:
+        return f"layer {name.group(1)!r} uses the custom class {cls.group(1)}"
+    if cls:
+        return f"the model uses the custom class {cls.group(1)}"
+    return f"the model uses a custom class ({_first_line(msg)})"
+
+
 def _check_container(path: Path) -> None:
-    """A .keras file is a zip archive; an .h5 file has the HDF5 signature."""
+    """A .keras file is a complete zip archive; an .h5 file has the HDF5 signature."""
+    import zipfile
+
     with open(path, "rb") as f:
         head = f.read(8)
     if path.suffix.lower() == ".keras" and not head.startswith(b"PK"):
         raise BadInputError(f"{path}: not a Keras archive (a .keras file is a zip file; this one "
                             f"is not). It may be truncated or of another format.")
+    if path.suffix.lower() == ".keras" and not zipfile.is_zipfile(path):
+        raise BadInputError(f"{path}: the Keras archive is incomplete (its zip directory is missing); "
+                            f"the file is probably truncated. Copy or save the model again.")
     if path.suffix.lower() in (".h5", ".hdf5") and head != b"\x89HDF\r\n\x1a\n":
         raise BadInputError(f"{path}: not an HDF5 file (wrong signature). It may be truncated or "
                             f"of another format.")

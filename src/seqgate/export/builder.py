@@ -97,8 +97,12 @@ class GraphBuilder:
         return name
 
     @contextmanager
-    def layer(self, name: str, kind: str) -> Iterator[None]:
-        """Scope for one source layer: names get its prefix, nodes its doc_string."""
+    def layer(self, name: str, kind: str, record_empty: bool = True) -> Iterator[None]:
+        """Scope for one source layer: names get its prefix, nodes its doc_string.
+
+        ``record_empty=False`` leaves the scope out of ``seqgate.layers`` when it made no node
+        (a traced function that only reads a size or picks a tuple element).
+        """
         outer = self._scope
         self._scope = _Scope(name, kind, self.framework)
         try:
@@ -106,7 +110,8 @@ class GraphBuilder:
         finally:
             s = self._scope
             self._scope = outer
-            self._layers.append(LayerRecord(s.name, s.kind, tuple(s.nodes)))
+            if s.nodes or record_empty:
+                self._layers.append(LayerRecord(s.name, s.kind, tuple(s.nodes)))
 
     # ----- graph pieces ------------------------------------------------------------------
     def input(self, name: str, elem_type: int, dims: Sequence[DimSpec]) -> str:
@@ -118,7 +123,9 @@ class GraphBuilder:
     def const(self, array: np.ndarray[Any, Any], hint: str) -> str:
         """Add an initializer (kept in its dtype) and return its name."""
         name = self.fresh(hint)
-        self._inits[name] = numpy_helper.from_array(np.ascontiguousarray(array), name)
+        # np.ascontiguousarray would turn a 0-d array into shape [1]; keep scalars scalar.
+        data = np.array(array, copy=True, order="C")
+        self._inits[name] = numpy_helper.from_array(data, name)
         return name
 
     def ints(self, values: Sequence[int], hint: str = "shape") -> str:

@@ -80,8 +80,9 @@ def export_keras_model(model: Any, opset: int, metadata: dict[str, str]) -> Any:
 
 def _output_names(model: Any, graph: Any) -> list[str]:
     """``model.output_names``, made unique: Keras repeats a layer's name for each of its outputs
-    (an LSTM with ``return_state`` gives ``['lstm', 'lstm', 'lstm']``). A repeat is named
-    ``<layer>:<output index>`` (``lstm:1``, ``lstm:2``); ':' never occurs in Keras layer names.
+    (an LSTM with ``return_state`` gives ``['lstm', 'lstm', 'lstm']``). The first keeps the
+    name; each repeat is ``<layer>:<index of that output of the layer>`` (``lstm``, ``lstm:1``,
+    ``lstm:2``; only h and c give ``lstm``, ``lstm:2``); a clash with another output adds ``_k``.
     """
     names = list(getattr(model, "output_names", None) or [t.name for t in graph.outputs])
     seen: set[str] = set()
@@ -151,11 +152,17 @@ def _walk(
     table: dict[str, Any],
 ) -> None:
     """Visit ``graph``'s nodes in dependency order, mapping each through ``table``."""
+    mask_only = _mask_only_nodes(graph)
     for depth in sorted(graph._nodes_by_depth, reverse=True):
         for node in graph._nodes_by_depth[depth]:
             layer = node.operation
             cls = type(layer).__name__
             if cls == "InputLayer" or getattr(node, "is_input", False):
+                continue
+            if id(node) in mask_only:
+                # mask arithmetic (Masking's not_equal/any): the layer taking the mask refuses it
+                for t in node.outputs:
+                    values[id(t)] = KV(b.fresh(f"{prefix}{layer.name}/mask"), tuple(t.shape), str(t.dtype))
                 continue
             full = f"{prefix}{layer.name}"
             ins = [values[id(t)] for t in node.input_tensors]
@@ -174,6 +181,39 @@ def _walk(
             names = _map_one(b, call, cls, problems, table)
             for t, n in zip(node.outputs, names, strict=True):
                 values[id(t)] = KV(n, tuple(t.shape), str(t.dtype))
+
+
+def _is_layer(op: Any) -> bool:
+    from seqgate.frameworks import import_keras
+
+    return isinstance(op, import_keras().layers.Layer)
+
+
+def _mask_only_nodes(graph: Any) -> set[int]:
+    """ids of non-layer operation nodes whose outputs only ever feed ``mask=`` arguments.
+
+    Keras records a Masking layer's mask computation (``not_equal``, ``any``) as graph nodes;
+    they are not layers the user wrote, so they are not reported on their own.
+    """
+    consumers: dict[int, list[tuple[Any, bool]]] = {}
+    for nodes in graph._nodes_by_depth.values():
+        for node in nodes:
+            mask = node.arguments.kwargs.get("mask") if node.arguments is not None else None
+            mask_ids = {id(t) for t in (mask if isinstance(mask, list | tuple) else [mask]) if t is not None}
+            for t in node.input_tensors:
+                consumers.setdefault(id(t), []).append((node, id(t) in mask_ids))
+    outputs = {id(t) for t in graph.outputs}
+    found: set[int] = set()
+    for depth in sorted(graph._nodes_by_depth):  # consumers (lower depth) are decided first
+        for node in graph._nodes_by_depth[depth]:
+            if getattr(node, "is_input", False) or _is_layer(node.operation):
+                continue
+            uses = [u for t in node.outputs for u in consumers.get(id(t), [])]
+            if uses and not any(id(t) in outputs for t in node.outputs) and all(
+                as_mask or id(user) in found for user, as_mask in uses
+            ):
+                found.add(id(node))
+    return found
 
 
 def _walk_nested(
@@ -209,12 +249,21 @@ def _map_one(
         problems.append(Unsupported(where, f"layer class {cls} is not supported",
                                     "see DEVELOPERS.md for the supported layers"))
         return _placeholders(b, call)
+    if not _is_layer(call.layer):
+        problems.append(Unsupported(where, f"Keras operation {cls} (keras.ops) is not supported",
+                                    "use the equivalent Keras layer"))
+        return _placeholders(b, call)
     try:
         _check_dtype_policy(call.layer)
         with b.layer(call.name, cls):
             names = fn(b, call)
     except Refusal as r:
         problems.append(Unsupported(where, r.what, r.hint))
+        return _placeholders(b, call)
+    except (AttributeError, TypeError, ValueError, KeyError, IndexError) as e:
+        # an option the mapping did not foresee: refuse the layer rather than crash
+        problems.append(Unsupported(where, f"seqgate could not map this layer ({type(e).__name__}: {e})",
+                                    "please report it with the model's config"))
         return _placeholders(b, call)
     if len(names) != len(call.outputs):
         raise AssertionError(f"mapping for {cls} returned {len(names)} values for {len(call.outputs)} outputs")

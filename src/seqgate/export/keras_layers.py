@@ -5,8 +5,8 @@ Each mapping is ``fn(builder, call) -> [one ONNX value per Keras output]``. Equa
 - Dense: ``y = act(x·K + b)`` on the last axis (MatMul broadcasts over leading axes, which is
   also TimeDistributed(Dense)).
 - Conv1D (channels_last): transposed to ONNX ``[N, C, T]``, ``W = kernelᵀ(2,1,0)``; ``causal``
-  pads ``(K−1)·d`` on the left; ``same`` is ``SAME_UPPER`` (TensorFlow puts the extra pad at
-  the end).
+  pads ``(K−1)·d`` on the left; ``same`` pads ``(K−1)·d`` split with the extra one at the end
+  (TensorFlow's rule; ``SAME_UPPER`` when strides > 1).
 - BatchNormalization at inference, as TensorFlow computes it: ``inv = γ/√(var+ε)``,
   ``y = x·inv + (β − mean·inv)``.
 - Normalization: ``(x − mean) / max(√var, 1e-7)``; ``invert``: ``mean + x·max(√var, 1e-7)``.
@@ -127,8 +127,12 @@ def _conv1d(b: GraphBuilder, call: KerasCall) -> list[str]:
         attrs["pads"] = [0, 0]
     elif layer.padding == "causal":
         attrs["pads"] = [(k - 1) * d, 0]
+    elif layer.padding == "same" and s == 1:
+        # explicit pads: onnxruntime refuses auto_pad SAME_* with dilation > 1
+        total = (k - 1) * d
+        attrs["pads"] = [total // 2, total - total // 2]
     elif layer.padding == "same":
-        attrs["auto_pad"] = "SAME_UPPER"
+        attrs["auto_pad"] = "SAME_UPPER"  # Keras forbids strides > 1 with dilation > 1
     else:
         raise Refusal(f"padding={layer.padding!r}")
     y = b.op("Conv", ins, **attrs)
