@@ -32,13 +32,15 @@ compare_source = {compare}
 """
 
 
-def _pressure_config(tmp_path: Path, extra: str = "", budget_ms: float = 1000.0, compare: str = "false") -> Path:
+def _pressure_config(
+    tmp_path: Path, extra: str = "", budget_ms: float = 1000.0, compare: str = "false"
+) -> Path:
     text = f"""
 [model]
-source = "{DEMO / 'pressure' / 'pressure_forecaster.keras'}"
+source = "{DEMO / "pressure" / "pressure_forecaster.keras"}"
 {extra}
 [verify]
-recordings = ["{DEMO / 'pressure' / 'field_week.npz'}"]
+recordings = ["{DEMO / "pressure" / "field_week.npz"}"]
 synthetic = true
 seed = 3
 {FAST_PROFILE.format(compare=compare)}
@@ -54,10 +56,10 @@ ms = {budget_ms}
 def _vibration_config(tmp_path: Path) -> Path:
     text = f"""
 [model]
-source = "{DEMO / 'vibration' / 'vibration_model.py'}:build_model"
-weights = "{DEMO / 'vibration' / 'vibration_model.pt'}"
+source = "{DEMO / "vibration" / "vibration_model.py"}:build_model"
+weights = "{DEMO / "vibration" / "vibration_model.pt"}"
 [verify]
-recordings = ["{DEMO / 'vibration' / 'pump_windows.npz'}"]
+recordings = ["{DEMO / "vibration" / "pump_windows.npz"}"]
 synthetic = true
 task = "classify"
 {FAST_PROFILE.format(compare="true")}
@@ -148,7 +150,10 @@ def _tampered_copy(src_dir: Path, dst: Path) -> str:
 
 def test_tampered_model_fails_with_first_divergence(tmp_path: Path) -> None:
     good = tmp_path / "good"
-    assert runner.invoke(app, ["gate", str(_pressure_config(tmp_path)), "--out", str(good), "--quiet"]).exit_code == 0
+    assert (
+        runner.invoke(app, ["gate", str(_pressure_config(tmp_path)), "--out", str(good), "--quiet"]).exit_code
+        == 0
+    )
     layer = _tampered_copy(good, tmp_path / "shipped.onnx")
     cfg = _pressure_config(tmp_path, extra=f'onnx = "{tmp_path / "shipped.onnx"}"')
     out = tmp_path / "bad"
@@ -166,10 +171,12 @@ def test_tampered_model_fails_with_first_divergence(tmp_path: Path) -> None:
 
 def test_impossible_budget_fails(tmp_path: Path) -> None:
     out = tmp_path / "out"
-    r = runner.invoke(app, ["gate", str(_pressure_config(tmp_path, budget_ms=1e-6)), "--out", str(out), "--quiet"])
+    r = runner.invoke(
+        app, ["gate", str(_pressure_config(tmp_path, budget_ms=1e-6)), "--out", str(out), "--quiet"]
+    )
     assert r.exit_code == 1, r.output
     rep = json.loads((out / "report.json").read_text())
-    latency = [c for c in rep["checks"] if c["name"] == "latency"][0]
+    latency = next(c for c in rep["checks"] if c["name"] == "latency")
     assert latency["passed"] is False
     assert [c["passed"] for c in rep["checks"] if c["name"] != "latency"] == [True, True]
     assert "FAILED" in (out / "report.html").read_text()
@@ -180,7 +187,7 @@ def test_impossible_budget_fails(tmp_path: Path) -> None:
     [
         ('[model]\nsource = "nope.keras"\n[verify]\nsynthetic = true\n', "does not exist"),
         ('[model]\nsorce = "m.keras"\n', "did you mean 'source'"),
-        ('[model]\nsource = 3\n', "source must be a string"),
+        ("[model]\nsource = 3\n", "source must be a string"),
         ("[model\n", "not valid TOML"),
     ],
 )
@@ -200,5 +207,8 @@ def test_python_api_mirrors_command(tmp_path: Path) -> None:
     rep = seqgate.gate(_pressure_config(tmp_path), out=tmp_path / "api")
     assert rep.passed and rep.exit_code == 0
     assert (tmp_path / "api" / "report.html").is_file()
-    assert np.isfinite(json.loads((tmp_path / "api" / "report.json").read_text())["verify"]["tensors"][0]
-                       ["metrics"]["max_abs"])
+    assert np.isfinite(
+        json.loads((tmp_path / "api" / "report.json").read_text())["verify"]["tensors"][0]["metrics"][
+            "max_abs"
+        ]
+    )

@@ -21,7 +21,9 @@ def _write(tmp_path: Path, text: str) -> Path:
 
 
 def test_minimal_config_gets_defaults(tmp_path: Path) -> None:
-    cfg = load_gate_config(_write(tmp_path, '[model]\nsource = "m.keras"\n[verify]\nrecordings = ["rec.npz"]\n'))
+    cfg = load_gate_config(
+        _write(tmp_path, '[model]\nsource = "m.keras"\n[verify]\nrecordings = ["rec.npz"]\n')
+    )
     assert cfg.source == str(tmp_path / "m.keras")
     assert cfg.recordings == [tmp_path / "rec.npz"]
     assert cfg.opset == 17 and cfg.synthetic is True and cfg.percentile == 99
@@ -61,9 +63,17 @@ ms = -1.0
     msg = str(ei.value)
     assert ei.value.exit_code == EXIT_BAD_INPUT
     expected = [
-        "missing.keras", "opset must be in 17..", "nope.npz", "'batchsize' (did you mean 'batch_size'?)",
-        "task must be", "atol must be", "'rtoll' (did you mean 'rtol'?)", "seq_lens must be",
-        "percentile must be 50, 90 or 99", "ms > 0", "section 'extra'",
+        "missing.keras",
+        "opset must be in 17..",
+        "nope.npz",
+        "'batchsize' (did you mean 'batch_size'?)",
+        "task must be",
+        "atol must be",
+        "'rtoll' (did you mean 'rtol'?)",
+        "seq_lens must be",
+        "percentile must be 50, 90 or 99",
+        "ms > 0",
+        "section 'extra'",
     ]
     for piece in expected:
         assert piece in msg, piece

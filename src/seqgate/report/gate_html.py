@@ -97,12 +97,23 @@ def latency_chart(profile: dict[str, Any], percentile: int) -> str | None:
     fig, ax = plt.subplots(figsize=(8.5, 3.8))
     for (rt, th, bs), pts in sorted(series.items()):
         pts.sort()
-        ax.plot([a for a, _ in pts], [b for _, b in pts], marker="o", lw=1.4,
-                label=f"{rt}, {th} thread{'s' if th != 1 else ''}, batch {bs}")
+        ax.plot(
+            [a for a, _ in pts],
+            [b for _, b in pts],
+            marker="o",
+            lw=1.4,
+            label=f"{rt}, {th} thread{'s' if th != 1 else ''}, batch {bs}",
+        )
     for b in profile.get("budgets") or []:
         ax.scatter([b["seq_len"]], [b["budget_ms"]], marker="_", s=500, color="#8a1610", zorder=5)
-        ax.annotate(f"budget {b['budget_ms']:g} ms", (b["seq_len"], b["budget_ms"]), textcoords="offset points",
-                    xytext=(6, 4), fontsize=8, color="#8a1610")
+        ax.annotate(
+            f"budget {b['budget_ms']:g} ms",
+            (b["seq_len"], b["budget_ms"]),
+            textcoords="offset points",
+            xytext=(6, 4),
+            fontsize=8,
+            color="#8a1610",
+        )
     ax.set_xscale("log", base=2)
     ax.set_yscale("log")
     ax.set_xlabel("sequence length (steps)")
@@ -116,15 +127,18 @@ def _table(headers: list[str], rows: list[list[str]], numeric: set[int] | None =
     numeric = numeric or set()
     head = "".join(f"<th>{_e(h)}</th>" for h in headers)
     body = "".join(
-        "<tr>" + "".join(f'<td class="num">{c}</td>' if i in numeric else f"<td>{c}</td>"
-                         for i, c in enumerate(r)) + "</tr>"
+        "<tr>"
+        + "".join(f'<td class="num">{c}</td>' if i in numeric else f"<td>{c}</td>" for i, c in enumerate(r))
+        + "</tr>"
         for r in rows
     )
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
 def _checks(report: dict[str, Any]) -> str:
-    rows = [[_e(c["name"]), _mark(c.get("passed")), _e(c.get("detail", ""))] for c in report.get("checks", [])]
+    rows = [
+        [_e(c["name"]), _mark(c.get("passed")), _e(c.get("detail", ""))] for c in report.get("checks", [])
+    ]
     return _table(["check", "verdict", "detail"], rows)
 
 
@@ -133,8 +147,11 @@ def _divergence(verify: dict[str, Any] | None) -> str:
     if not fd:
         return ""
     items = "".join(f"<tr><th>{_e(k)}</th><td>{_fmt(v)}</td></tr>" for k, v in fd.items())
-    return ("<h2>First divergence</h2><p>The earliest tensor, in graph order, that leaves tolerance. "
-            "Later tensors usually diverge because this one did.</p>" f"<table>{items}</table>")
+    return (
+        "<h2>First divergence</h2><p>The earliest tensor, in graph order, that leaves tolerance. "
+        "Later tensors usually diverge because this one did.</p>"
+        f"<table>{items}</table>"
+    )
 
 
 def _verify_section(verify: dict[str, Any] | None) -> str:
@@ -143,24 +160,57 @@ def _verify_section(verify: dict[str, Any] | None) -> str:
     parts = ["<h2>Verification</h2>", f"<p>{_e(verify.get('headline', ''))}</p>"]
     for rec in verify.get("recordings", []):
         label = rec["label"]
-        curves = [{"name": t["name"], "atol": t["atol"], **t["by_recording"][label]}
-                  for t in verify.get("tensors", []) if label in t.get("by_recording", {})]
+        curves = [
+            {"name": t["name"], "atol": t["atol"], **t["by_recording"][label]}
+            for t in verify.get("tensors", [])
+            if label in t.get("by_recording", {})
+        ]
         chart = drift_chart(curves, f"per-step error — {label}")
-        parts.append(f"<h3>{_e(label)} <span class='note'>({_e(rec.get('kind', ''))}, "
-                     f"{_e(rec.get('windows', ''))} windows)</span></h3>")
+        parts.append(
+            f"<h3>{_e(label)} <span class='note'>({_e(rec.get('kind', ''))}, "
+            f"{_e(rec.get('windows', ''))} windows)</span></h3>"
+        )
         if chart:
             parts.append(f'<p><img alt="per-step error, {_e(label)}" src="{chart}"></p>')
     rows = []
     for t in verify.get("tensors", []):
         m = t.get("metrics", {})
         top1 = m.get("top1_agreement")
-        rows.append([_e(t["name"]), _e(t.get("kind", "")), _e(t.get("layer") or ""), _fmt(m.get("max_abs")),
-                     _fmt(m.get("max_rel")), _fmt(m.get("p99_abs")), _fmt(m.get("outside")),
-                     _fmt(top1) if top1 is not None else "", _fmt(t.get("atol")), _fmt(t.get("rtol")),
-                     _mark(t.get("passed"))])
+        rows.append(
+            [
+                _e(t["name"]),
+                _e(t.get("kind", "")),
+                _e(t.get("layer") or ""),
+                _fmt(m.get("max_abs")),
+                _fmt(m.get("max_rel")),
+                _fmt(m.get("p99_abs")),
+                _fmt(m.get("outside")),
+                _fmt(top1) if top1 is not None else "",
+                _fmt(t.get("atol")),
+                _fmt(t.get("rtol")),
+                _mark(t.get("passed")),
+            ]
+        )
     parts.append("<h3>Every tensor, all window sets</h3>")
-    parts.append(_table(["tensor", "kind", "layer", "max abs", "max rel", "p99 abs", "outside", "top-1",
-                         "atol", "rtol", "verdict"], rows, {3, 4, 5, 6, 7, 8, 9}))
+    parts.append(
+        _table(
+            [
+                "tensor",
+                "kind",
+                "layer",
+                "max abs",
+                "max rel",
+                "p99 abs",
+                "outside",
+                "top-1",
+                "atol",
+                "rtol",
+                "verdict",
+            ],
+            rows,
+            {3, 4, 5, 6, 7, 8, 9},
+        )
+    )
     for w in verify.get("warnings", []):
         parts.append(f"<p class='note'>warning: {_e(w)}</p>")
     return "".join(parts)
@@ -173,18 +223,52 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
     chart = latency_chart(profile, percentile)
     if chart:
         parts.append(f'<p><img alt="latency against sequence length" src="{chart}"></p>')
-    brows = [[_e(b["seq_len"]), _e(b["batch"]), _e(b["threads"]), _fmt(b["budget_ms"]), _fmt(b.get("measured_ms")),
-              _e(b.get("predicted_longest_seq_len")), _mark(b.get("passed"))] for b in profile.get("budgets") or []]
+    brows = [
+        [
+            _e(b["seq_len"]),
+            _e(b["batch"]),
+            _e(b["threads"]),
+            _fmt(b["budget_ms"]),
+            _fmt(b.get("measured_ms")),
+            _e(b.get("predicted_longest_seq_len")),
+            _mark(b.get("passed")),
+        ]
+        for b in profile.get("budgets") or []
+    ]
     if brows:
-        heads = ["seq len", "batch", "threads", "budget ms", f"p{percentile} ms", "longest T predicted", "verdict"]
+        heads = [
+            "seq len",
+            "batch",
+            "threads",
+            "budget ms",
+            f"p{percentile} ms",
+            "longest T predicted",
+            "verdict",
+        ]
         parts.append(_table(heads, brows, {0, 1, 2, 3, 4, 5}))
     for n in profile.get("notes") or []:
         parts.append(f"<p class='note'>{_e(n)}</p>")
-    rows = [[_e(p["runtime"]), _e(p["seq_len"]), _e(p["batch"]), _e(p["threads"]), _fmt(p.get("p50_ms")),
-             _fmt(p.get("p90_ms")), _fmt(p.get("p99_ms")), _e(p.get("runs")), _fmt(p.get("speedup", ""))]
-            for p in profile.get("points") or []]
-    parts.append(_table(["runtime", "seq len", "batch", "threads", "p50 ms", "p90 ms", "p99 ms", "runs",
-                         "speed-up"], rows, {1, 2, 3, 4, 5, 6, 7, 8}))
+    rows = [
+        [
+            _e(p["runtime"]),
+            _e(p["seq_len"]),
+            _e(p["batch"]),
+            _e(p["threads"]),
+            _fmt(p.get("p50_ms")),
+            _fmt(p.get("p90_ms")),
+            _fmt(p.get("p99_ms")),
+            _e(p.get("runs")),
+            _fmt(p.get("speedup", "")),
+        ]
+        for p in profile.get("points") or []
+    ]
+    parts.append(
+        _table(
+            ["runtime", "seq len", "batch", "threads", "p50 ms", "p90 ms", "p99 ms", "runs", "speed-up"],
+            rows,
+            {1, 2, 3, 4, 5, 6, 7, 8},
+        )
+    )
     return "".join(parts)
 
 
@@ -202,7 +286,9 @@ def _provenance(report: dict[str, Any]) -> str:
 def render_gate_html(report: dict[str, Any]) -> str:
     """The whole HTML document for a gate report dict."""
     passed = bool(report.get("passed"))
-    verdict = f'<span class="verdict {"pass" if passed else "fail"}">{"PASSED" if passed else "FAILED"}</span>'
+    verdict = (
+        f'<span class="verdict {"pass" if passed else "fail"}">{"PASSED" if passed else "FAILED"}</span>'
+    )
     title = f"seqgate release gate — {report.get('model_name', '')}"
     pct = int((report.get("config") or {}).get("percentile", 99))
     body = [
@@ -220,5 +306,7 @@ def render_gate_html(report: dict[str, Any]) -> str:
         "for any purpose, in particular a safety-relevant one: follow the applicable standards and get "
         "qualified review. Measure latency on the target hardware.</p>",
     ]
-    return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
-            f"<title>{_e(title)}</title><style>{_CSS}</style></head><body>" + "".join(body) + "</body></html>")
+    return (
+        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+        f"<title>{_e(title)}</title><style>{_CSS}</style></head><body>" + "".join(body) + "</body></html>"
+    )

@@ -18,9 +18,19 @@ def _g(x: Any) -> str:
 def gate_markdown(d: dict[str, Any]) -> str:
     """A Markdown summary: verdict, checks, first divergence, tensors, latency, provenance."""
     verdict = "PASSED" if d["passed"] else "FAILED"
-    lines = [f"# seqgate release gate — {d.get('model_name', '')}", "", f"**{verdict}** (exit {d['exit_code']})",
-             "", f"- config: `{d['config_path']}`", f"- seqgate {d['tool_version']}, {d['created']}", "",
-             "## Checks", "", "| check | verdict | detail |", "|---|---|---|"]
+    lines = [
+        f"# seqgate release gate — {d.get('model_name', '')}",
+        "",
+        f"**{verdict}** (exit {d['exit_code']})",
+        "",
+        f"- config: `{d['config_path']}`",
+        f"- seqgate {d['tool_version']}, {d['created']}",
+        "",
+        "## Checks",
+        "",
+        "| check | verdict | detail |",
+        "|---|---|---|",
+    ]
     for c in d["checks"]:
         lines.append(f"| {c['name']} | {'pass' if c['passed'] else '**FAIL**'} | {c['detail']} |")
     if d.get("error"):
@@ -29,33 +39,62 @@ def gate_markdown(d: dict[str, Any]) -> str:
     if v:
         fd = v.get("first_divergence")
         if fd:
-            lines += ["", "## First divergence", "", f"`{fd['tensor']}` ({fd['kind']}, layer {fd.get('layer')}) "
-                      f"in {fd['recording']}, step {_g(fd.get('step'))}, window {_g(fd.get('window'))}: "
-                      f"max |Δ| {_g(fd.get('max_abs'))}, {fd.get('outside')} elements outside."]
-        lines += ["", "## Tensors", "", "| tensor | kind | max abs | p99 abs | outside | verdict |",
-                  "|---|---|---:|---:|---:|---|"]
+            lines += [
+                "",
+                "## First divergence",
+                "",
+                f"`{fd['tensor']}` ({fd['kind']}, layer {fd.get('layer')}) "
+                f"in {fd['recording']}, step {_g(fd.get('step'))}, window {_g(fd.get('window'))}: "
+                f"max |Δ| {_g(fd.get('max_abs'))}, {fd.get('outside')} elements outside.",
+            ]
+        lines += [
+            "",
+            "## Tensors",
+            "",
+            "| tensor | kind | max abs | p99 abs | outside | verdict |",
+            "|---|---|---:|---:|---:|---|",
+        ]
         for t in v["tensors"]:
             m = t["metrics"]
-            lines.append(f"| `{t['name']}` | {t['kind']} | {_g(m['max_abs'])} | {_g(m['p99_abs'])} | "
-                         f"{m['outside']} | {'pass' if t['passed'] else '**FAIL**'} |")
+            lines.append(
+                f"| `{t['name']}` | {t['kind']} | {_g(m['max_abs'])} | {_g(m['p99_abs'])} | "
+                f"{m['outside']} | {'pass' if t['passed'] else '**FAIL**'} |"
+            )
     p = d.get("profile")
     if p:
-        lines += ["", "## Latency budgets", "", "| seq len | batch | threads | budget ms | measured ms | verdict |",
-                  "|---:|---:|---:|---:|---:|---|"]
+        lines += [
+            "",
+            "## Latency budgets",
+            "",
+            "| seq len | batch | threads | budget ms | measured ms | verdict |",
+            "|---:|---:|---:|---:|---:|---|",
+        ]
         for b in p.get("budgets") or []:
-            lines.append(f"| {b['seq_len']} | {b['batch']} | {b['threads']} | {_g(b['budget_ms'])} | "
-                         f"{_g(b['measured_ms'])} | {'pass' if b['passed'] else '**FAIL**'} |")
-        lines += ["", "## Latency points", "", "| runtime | seq len | batch | threads | p50 ms | p99 ms | speed-up |",
-                  "|---|---:|---:|---:|---:|---:|---:|"]
+            lines.append(
+                f"| {b['seq_len']} | {b['batch']} | {b['threads']} | {_g(b['budget_ms'])} | "
+                f"{_g(b['measured_ms'])} | {'pass' if b['passed'] else '**FAIL**'} |"
+            )
+        lines += [
+            "",
+            "## Latency points",
+            "",
+            "| runtime | seq len | batch | threads | p50 ms | p99 ms | speed-up |",
+            "|---|---:|---:|---:|---:|---:|---:|",
+        ]
         for pt in p.get("points") or []:
-            lines.append(f"| {pt['runtime']} | {pt['seq_len']} | {pt['batch']} | {pt['threads']} | "
-                         f"{_g(pt['p50_ms'])} | {_g(pt['p99_ms'])} | {_g(pt.get('speedup'))} |")
+            lines.append(
+                f"| {pt['runtime']} | {pt['seq_len']} | {pt['batch']} | {pt['threads']} | "
+                f"{_g(pt['p50_ms'])} | {_g(pt['p99_ms'])} | {_g(pt.get('speedup'))} |"
+            )
     lines += ["", "## Provenance", "", "| file | sha256 |", "|---|---|"]
     for f, h in sorted(d["provenance"]["files"].items()):
         lines.append(f"| `{f}` | `{h}` |")
-    lines += ["", "Passing shows the export computes what the trained model computes within the stated "
-              "tolerances and met the stated budgets on the machine measured; it does not show the model is "
-              "fit for a safety-relevant use."]
+    lines += [
+        "",
+        "Passing shows the export computes what the trained model computes within the stated "
+        "tolerances and met the stated budgets on the machine measured; it does not show the model is "
+        "fit for a safety-relevant use.",
+    ]
     return "\n".join(lines) + "\n"
 
 
@@ -70,16 +109,29 @@ def gate_junit(d: dict[str, Any]) -> bytes:
     """JUnit XML bytes (see the module docstring)."""
     root = ET.Element("testsuites", name="seqgate gate")
     checks = d["checks"]
-    suite = ET.SubElement(root, "testsuite", name="gate", tests=str(len(checks)),
-                          failures=str(sum(not c["passed"] for c in checks)), errors="0")
+    suite = ET.SubElement(
+        root,
+        "testsuite",
+        name="gate",
+        tests=str(len(checks)),
+        failures=str(sum(not c["passed"] for c in checks)),
+        errors="0",
+    )
     for c in checks:
         _case(suite, "gate", c["name"], c["passed"], c["detail"])
     budgets = (d.get("profile") or {}).get("budgets") or []
     if budgets:
-        bs = ET.SubElement(root, "testsuite", name="latency budgets", tests=str(len(budgets)),
-                           failures=str(sum(not b["passed"] for b in budgets)), errors="0")
+        bs = ET.SubElement(
+            root,
+            "testsuite",
+            name="latency budgets",
+            tests=str(len(budgets)),
+            failures=str(sum(not b["passed"] for b in budgets)),
+            errors="0",
+        )
         for b in budgets:
-            name = f"T={b['seq_len']} batch={b['batch']} threads={b['threads']} p{b['percentile']}<={b['budget_ms']}ms"
+            name = (f"T={b['seq_len']} batch={b['batch']} threads={b['threads']} "
+                    f"p{b['percentile']}<={b['budget_ms']}ms")
             _case(bs, "latency", name, b["passed"], f"measured {b['measured_ms']:.4g} ms")
     if d.get("verify"):
         from seqgate.report.verify_junit import verify_junit
