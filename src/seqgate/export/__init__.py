@@ -49,7 +49,7 @@ def source_metadata(src: Source, framework_version: str) -> dict[str, str]:
         "seqgate.version": __version__,
         "seqgate.source.framework": src.framework,
         "seqgate.source.framework_version": framework_version,
-        "seqgate.source.text": Path(src.text).name if src.framework == "keras" else src.text,
+        "seqgate.source.text": _portable_text(src),
     }
     if src.path is not None:
         meta["seqgate.source.file"] = src.path.name
@@ -58,6 +58,13 @@ def source_metadata(src: Source, framework_version: str) -> dict[str, str]:
         meta["seqgate.source.weights"] = src.weights.name
         meta["seqgate.source.weights_sha256"] = sha256_file(src.weights)
     return meta
+
+
+def _portable_text(src: Source) -> str:
+    """The source as typed, without directories, so exports made from any working dir match."""
+    if src.framework == "torch" and src.path is not None and src.factory:
+        return f"{src.path.name}:{src.factory}"
+    return Path(src.text).name if src.framework == "keras" else src.text
 
 
 def build_onnx(src: Source, opset: int = DEFAULT_OPSET, **options: Any) -> Any:
