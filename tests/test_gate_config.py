@@ -33,7 +33,7 @@ def test_minimal_config_gets_defaults(tmp_path: Path) -> None:
 def test_example_config_is_valid() -> None:
     cfg = load_gate_config(FIXTURES / "gate_example.toml")
     assert cfg.budgets and cfg.budgets[0].seq_len == 128
-    assert cfg.tolerances[0].match == "output*"
+    assert cfg.tolerances[0].match == "*/hidden_sequence"
 
 
 def test_every_problem_in_one_message(tmp_path: Path) -> None:

@@ -29,8 +29,11 @@ app = typer.Typer(
 
 def _fail(e: SeqgateError) -> typer.Exit:
     from rich.console import Console
+    from rich.markup import escape
 
-    Console(stderr=True, highlight=False, soft_wrap=True).print(f"[bold red]error:[/] {e}", markup=True)
+    # escape: messages quote shapes like [batch, time, features], which rich would read as markup
+    console = Console(stderr=True, highlight=False, soft_wrap=True)
+    console.print(f"[bold red]error:[/] {escape(str(e))}", markup=True)
     return typer.Exit(e.exit_code)
 
 
@@ -126,7 +129,7 @@ def _print_inspection(info: dict) -> None:  # type: ignore[type-arg]
 
 # Each command module defines ``register(app)``; list it here so ``seqgate --help`` shows it.
 # Command modules must import no framework at module level.
-COMMAND_MODULES: tuple[str, ...] = ()
+COMMAND_MODULES: tuple[str, ...] = ("seqgate.cli_verify", "seqgate.cli_profile", "seqgate.cli_gate")
 
 for _module in COMMAND_MODULES:
     importlib.import_module(_module).register(app)
