@@ -146,7 +146,10 @@ def main(argv: list[str] | None = None) -> int:
     print("           the glue seqgate adds beyond what the interface needs; target ≤ 1.03")
     print("  ratio B: exported / the bare time-major op alone (X [T,1,I] → Y_h): the cost of the")
     print("           batch-major interface itself (informational)")
-    print(f"{'T':>6} {'exported µs':>12} {'same-if µs':>11} {'ratio A':>8} {'bare op µs':>11} {'ratio B':>8}")
+    print("  (each ratio pairs the exported graph with its baseline in one interleaved run, so the")
+    print("   exported graph's time is shown beside each baseline)")
+    print(f"{'T':>6} {'exported µs':>12} {'same-if µs':>11} {'ratio A':>8} {'exported µs':>12} "
+          f"{'bare op µs':>11} {'ratio B':>8}")
     worst = 0.0
     for t in LENGTHS:
         x = rng.normal(size=(1, t, args.input)).astype(np.float32)
@@ -159,7 +162,8 @@ def main(argv: list[str] | None = None) -> int:
         ma2, mb = measure(sa, sb, fa, fb, args.rounds)
         ratio_a, ratio_b = ma / mc, ma2 / mb
         worst = max(worst, ratio_a)
-        print(f"{t:>6} {ma * 1e6:>12.1f} {mc * 1e6:>11.1f} {ratio_a:>8.3f} {mb * 1e6:>11.1f} {ratio_b:>8.3f}")
+        print(f"{t:>6} {ma * 1e6:>12.1f} {mc * 1e6:>11.1f} {ratio_a:>8.3f} {ma2 * 1e6:>12.1f} "
+              f"{mb * 1e6:>11.1f} {ratio_b:>8.3f}")
     verdict = "meets" if worst <= TARGET else "misses"
     print(f"worst ratio A {worst:.3f} {verdict} the target {TARGET}")
     return 0
