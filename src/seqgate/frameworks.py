@@ -6,7 +6,6 @@ import contextlib
 import os
 from collections.abc import Iterator
 from types import ModuleType
-from typing import Any
 
 from seqgate.errors import BadInputError
 
@@ -67,13 +66,3 @@ def version_of(module: str) -> str:
         return metadata.version(module)
     except metadata.PackageNotFoundError:
         return ""
-
-
-def tensorflow_session_quiet(fn: Any) -> Any:
-    """Decorator: run ``fn`` with fd 2 silenced (TF warns on first graph trace)."""
-
-    def wrapper(*a: Any, **k: Any) -> Any:
-        with _quiet_stderr():
-            return fn(*a, **k)
-
-    return wrapper

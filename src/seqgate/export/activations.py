@@ -17,8 +17,6 @@ from __future__ import annotations
 import math
 from typing import Any
 
-import numpy as np
-
 from seqgate.errors import Refusal
 from seqgate.export.builder import GraphBuilder
 from seqgate.export.recurrent import CellActivation
@@ -124,8 +122,3 @@ _STANDALONE: dict[str, Any] = {
 
 STANDALONE_KINDS = frozenset(_STANDALONE)
 CELL_KINDS = frozenset(_CELL)
-
-
-def as_float32(value: float) -> float:
-    """``value`` rounded to float32, as an ONNX float attribute will store it."""
-    return float(np.float32(value))

@@ -153,22 +153,6 @@ class CellActivation:
     beta: float = 0.0
 
 
-# Default alpha/beta written for each activation (ONNX operator defaults for the standalone op).
-ACTIVATION_DEFAULTS: dict[str, tuple[float, float]] = {
-    "Sigmoid": (0.0, 0.0),
-    "Tanh": (0.0, 0.0),
-    "Relu": (0.0, 0.0),
-    "Softsign": (0.0, 0.0),
-    "Softplus": (0.0, 0.0),
-    "Affine": (1.0, 0.0),
-    "LeakyRelu": (0.01, 0.0),
-    "ThresholdedRelu": (1.0, 0.0),
-    "ScaledTanh": (1.0, 1.0),
-    "HardSigmoid": (0.2, 0.5),
-    "Elu": (1.0, 0.0),
-}
-
-
 # Which activations take alpha / beta inside the recurrent ops (ONNX spec activation table).
 TAKES_ALPHA = frozenset({"Affine", "LeakyRelu", "ThresholdedRelu", "ScaledTanh", "HardSigmoid", "Elu"})
 TAKES_BETA = frozenset({"Affine", "ScaledTanh", "HardSigmoid"})
