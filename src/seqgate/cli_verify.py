@@ -14,7 +14,7 @@ import typer
 from seqgate.errors import SeqgateError
 
 TOLERANCE_HELP = (
-    "TOML file: top-level atol/rtol, plus [[tensor]] tables with match = \"fnmatch pattern\" and "
+    "TOML file: top-level atol/rtol, plus \\[\\[tensor]] tables with match = \"fnmatch pattern\" and "
     "atol and/or rtol; the last matching table wins."
 )
 
@@ -126,7 +126,7 @@ def windows(
     targets: Annotated[str | None, typer.Option("--targets", help="Target columns c,….")] = None,
     force: Annotated[bool, typer.Option("--force", help="Overwrite OUT if it exists.")] = False,
 ) -> None:
-    """Build sliding windows [samples, steps, features] (+ targets) from a CSV into an NPZ recording."""
+    """Build sliding windows (samples × steps × features, plus targets) from a CSV into an NPZ recording."""
     from seqgate.windows_csv import build_recording
 
     try:
