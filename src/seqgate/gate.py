@@ -123,7 +123,7 @@ def _run_checks(report: GateReport, progress: bool) -> None:
     _check_lengths(cfg, model)
     _verify(report, model_path, weights, progress)
     if cfg.profile_enabled:
-        _profile(report, model_path, weights)
+        _profile(report, model_path, weights, progress)
 
 
 def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
@@ -200,17 +200,15 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
     report.checks.append({"name": "verify", "passed": vr.passed, "detail": vr.headline()})
 
 
-def _profile(report: GateReport, model_path: Path, weights: str | None) -> None:
-    from seqgate.profile import profile_model
-
+def _profile(report: GateReport, model_path: Path, weights: str | None, progress: bool) -> None:
     cfg = report.config
-    pr = profile_model(
-        model_path, seq_lens=cfg.seq_lens, batches=cfg.batch, threads=cfg.threads, warmup=cfg.warmup,
-        min_runs=cfg.min_runs, min_time=cfg.min_time,
-        budgets=[f"{b.seq_len}={b.ms}" for b in cfg.budgets], percentile=cfg.percentile,
-        source=cfg.source if cfg.compare_source else None,
-        weights=weights if cfg.compare_source else None, seed=cfg.seed,
-    )
+    if progress:
+        from seqgate.cli_profile import _progress
+
+        with _progress() as bar:
+            pr = _measure(cfg, model_path, weights, bar)
+    else:
+        pr = _measure(cfg, model_path, weights, None)
     report.profile = pr.to_dict()
     budgets = report.profile.get("budgets") or []
     missed = [b for b in budgets if not b["passed"]]
@@ -220,8 +218,22 @@ def _profile(report: GateReport, model_path: Path, weights: str | None) -> None:
         detail = "; ".join(f"T={b['seq_len']} batch {b['batch']} threads {b['threads']}: "
                            f"{b['measured_ms']:.3g} ms > {b['budget_ms']:g} ms" for b in missed)
     else:
-        detail = f"{len(budgets)} budget{'s' if len(budgets) != 1 else ''} held at p{cfg.percentile}"
+        n = len(cfg.budgets)
+        detail = (f"{n} budget{'s' if n != 1 else ''} held at p{cfg.percentile} at every batch and thread "
+                  f"setting measured ({len(budgets)} verdicts)")
     report.checks.append({"name": "latency", "passed": pr.passed, "detail": detail})
+
+
+def _measure(cfg: GateConfig, model_path: Path, weights: str | None, bar: Any) -> Any:
+    from seqgate.profile import profile_model
+
+    return profile_model(
+        model_path, seq_lens=cfg.seq_lens, batches=cfg.batch, threads=cfg.threads, warmup=cfg.warmup,
+        min_runs=cfg.min_runs, min_time=cfg.min_time,
+        budgets=[f"{b.seq_len}={b.ms}" for b in cfg.budgets], percentile=cfg.percentile,
+        source=cfg.source if cfg.compare_source else None,
+        weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=bar,
+    )
 
 
 def write_reports(report: GateReport) -> None:
