@@ -45,7 +45,9 @@ def verify(
     junit: Annotated[Path | None, typer.Option("--junit", help="Write JUnit XML here.")] = None,
     summary: Annotated[Path | None, typer.Option("--summary", help="Write a Markdown summary here.")] = None,
     oracle: Annotated[bool, typer.Option("--oracle", help="Re-check worst windows, onnx.reference.")] = False,
-    task: Annotated[str | None, typer.Option("--task", help="classify: outputs are class scores.")] = None,
+    task: Annotated[str | None, typer.Option(
+        "--task", help="classify: every output holds class scores; regress: none does "
+        "(default: detect softmax/sigmoid outputs).")] = None,
     seed: Annotated[int, typer.Option("--seed", help="Seed of the synthetic windows.")] = 0,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress bar and no table.")] = False,
 ) -> None:

@@ -191,7 +191,7 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
     vr = verify_model(
         model_path, cfg.source, weights=weights, windows=[str(p) for p in cfg.recordings],
         synthetic=cfg.synthetic, tolerances=tol, batch_size=cfg.batch_size, states=cfg.states,
-        oracle=cfg.oracle, progress=progress, task="classify" if cfg.task == "classify" else None,
+        oracle=cfg.oracle, progress=progress, task=None if cfg.task == "auto" else cfg.task,
         seed=cfg.seed,
     )
     report.verify = vr.to_json()

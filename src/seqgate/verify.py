@@ -12,7 +12,8 @@ Contract:
   first set (in processing order) where it does, the first step outside tolerance (for
   time-indexed tensors) and the worst window there.
 - Class-score outputs: the producing op (through Identity) is Softmax/LogSoftmax/Sigmoid, or
-  ``task="classify"`` marks every output; their top-1 agreement and label flips are reported.
+  ``task="classify"`` marks every output (``"regress"`` none); their top-1 agreement and label
+  flips are reported.
 - Outputs are compared batch-major (DESIGN.md ``[batch, time, ...]``): an output whose windows
   axis is not 0 (PyTorch ``h_n`` ``[L·D, N, H]``: the ONNX dim named like the input batch dim,
   else the first axis as long as the batch) is moved to axis 0; the entry's ``batch_axis``
@@ -325,8 +326,9 @@ def verify_model(
 
     if batch_size < 1:
         raise BadInputError(f"--batch-size must be ≥ 1, got {batch_size}.")
-    if task not in (None, "classify"):
-        raise BadInputError(f"--task {task!r}: the only task is 'classify'.")
+    if task not in (None, "classify", "regress"):
+        raise BadInputError(f"--task {task!r}: choose 'classify' (every output holds class scores) or "
+                            f"'regress' (none does); without --task, softmax/sigmoid outputs are detected.")
     if not windows and not synthetic:
         raise BadInputError("nothing to compare: give recorded windows with --windows REC.npz and/or "
                             "--synthetic.")
@@ -354,7 +356,12 @@ def verify_model(
     onnx_runner = OnnxRunner(model, probes)
     output_names = [o.name for o in model.graph.output]
     src_runner = make_source_runner(src, model, probes, output_names, states)
-    classes = {o for o in output_names} if task == "classify" else _class_outputs(model)
+    if task == "classify":
+        classes = set(output_names)
+    elif task == "regress":
+        classes = set()
+    else:
+        classes = _class_outputs(model)
     comparer = _Comparer(infos, tol, classes, specs, _output_dims(model))
     results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress)
     entries = [_tensor_entry(t, results, comparer.batch_axis.get(t.name, 0)) for t in infos]
@@ -388,3 +395,8 @@ def _run_all(comparer: _Comparer, recs: list[Recording], onnx_runner: Any, src_r
     cols = (TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn())
     with Progress(*cols, console=Console(stderr=True), transient=True) as bar:
         return [comparer.run_set(r, onnx_runner, src_runner, batch, bar, check) for r in recs]
+
+
+from seqgate._callable import make_callable  # noqa: E402
+
+make_callable(__name__, "verify_model")

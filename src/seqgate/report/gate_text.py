@@ -11,6 +11,11 @@ import xml.etree.ElementTree as ET
 from typing import Any
 
 
+def _cell(x: Any) -> str:
+    """Text for a Markdown table cell: a literal | would end the cell."""
+    return str(x).replace("|", "\\|").replace("\n", " ")
+
+
 def _g(x: Any) -> str:
     return "—" if x is None else (f"{x:.3g}" if isinstance(x, float) else str(x))
 
@@ -32,7 +37,7 @@ def gate_markdown(d: dict[str, Any]) -> str:
         "|---|---|---|",
     ]
     for c in d["checks"]:
-        lines.append(f"| {c['name']} | {'pass' if c['passed'] else '**FAIL**'} | {c['detail']} |")
+        lines.append(f"| {c['name']} | {'pass' if c['passed'] else '**FAIL**'} | {_cell(c['detail'])} |")
     if d.get("error"):
         lines += ["", "## Error", "", "```", d["error"]["message"], "```"]
     v = d.get("verify")
