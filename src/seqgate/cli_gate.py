@@ -43,7 +43,9 @@ def _print_summary(report: object) -> None:
     if r.error:  # type: ignore[attr-defined]
         Console(stderr=True, highlight=False).print(f"[bold red]error:[/] {r.error['message']}")  # type: ignore[attr-defined]
     verdict = "[bold green]PASSED[/]" if r.passed else "[bold red]FAILED[/]"  # type: ignore[attr-defined]
-    c.print(f"{verdict}  reports in {r.out_dir}: report.html report.json report.md junit.xml model.onnx")  # type: ignore[attr-defined]
+    names = [n for n in ("report.html", "report.json", "report.md", "junit.xml", "model.onnx")
+             if (r.out_dir / n).is_file()]  # type: ignore[attr-defined]
+    c.print(f"{verdict}  reports in {r.out_dir}: {' '.join(names)}")  # type: ignore[attr-defined]
 
 
 def register(app: typer.Typer) -> None:

@@ -52,6 +52,7 @@ class GateReport:
     error: dict[str, Any] | None = None
     files: dict[str, str] = field(default_factory=dict)
     model_name: str = ""
+    stage: str = "export"  # the step running now; names the failed check when a step raises
 
     @property
     def passed(self) -> bool:
@@ -100,8 +101,9 @@ def run_gate(config: str | Path, out: str | Path | None = None, progress: bool =
     try:
         _run_checks(report, progress)
     except SeqgateError as e:
-        report.error = {"exit_code": e.exit_code, "message": str(e), "kind": type(e).__name__}
-        report.checks.append({"name": "gate", "passed": False, "detail": str(e).splitlines()[0]})
+        report.error = {"exit_code": e.exit_code, "message": str(e), "kind": type(e).__name__,
+                        "stage": report.stage}
+        report.checks.append({"name": report.stage, "passed": False, "detail": str(e).splitlines()[0]})
     write_reports(report)
     return report
 
@@ -120,9 +122,12 @@ def _run_checks(report: GateReport, progress: bool) -> None:
         model = _adopt_onnx(report, model_path)
     else:
         model = _export(report, model_path, weights)
+    report.stage = "latency"
     _check_lengths(cfg, model)
+    report.stage = "verify"
     _verify(report, model_path, weights, progress)
     if cfg.profile_enabled:
+        report.stage = "latency"
         _profile(report, model_path, weights, progress)
 
 
@@ -131,11 +136,7 @@ def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
 
     cfg = report.config
     options = {"inputs": cfg.inputs} if cfg.inputs else {}
-    try:
-        res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, **options)
-    except SeqgateError as e:
-        report.checks.append({"name": "export", "passed": False, "detail": str(e).splitlines()[0]})
-        raise
+    res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, **options)
     for f in res.source.files():
         report.files[str(f)] = _sha(f)
     report.files[str(model_path)] = _sha(model_path)

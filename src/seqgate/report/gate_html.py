@@ -25,6 +25,7 @@ th{background:#f3f5f7}td.num{text-align:right;font-variant-numeric:tabular-nums}
 .ok{color:#0d5b26;font-weight:600}.bad{color:#8a1610;font-weight:600}
 .note{color:#555;font-size:.9rem}img{max-width:100%;border:1px solid #e3e5e8}
 code{background:#f3f5f7;padding:0 .25rem;border-radius:.2rem}
+pre{background:#fdf3f2;padding:.6rem;white-space:pre-wrap}
 """
 
 
@@ -140,6 +141,13 @@ def _checks(report: dict[str, Any]) -> str:
         [_e(c["name"]), _mark(c.get("passed")), _e(c.get("detail", ""))] for c in report.get("checks", [])
     ]
     return _table(["check", "verdict", "detail"], rows)
+
+
+def _stopped(error: dict[str, Any] | None) -> str:
+    if not error:
+        return ""
+    return (f"<h2>Why the gate stopped</h2><p>The {_e(error.get('stage', ''))} step could not run to the end "
+            f"(exit {_e(error.get('exit_code'))}):</p><pre>{_e(error.get('message', ''))}</pre>")
 
 
 def _divergence(verify: dict[str, Any] | None) -> str:
@@ -296,6 +304,7 @@ def render_gate_html(report: dict[str, Any]) -> str:
         f"<p>{verdict} <span class='note'>config {_e(report.get('config_path', ''))} · "
         f"seqgate {_e(report.get('tool_version', ''))} · {_e(report.get('created', ''))}</span></p>",
         _checks(report),
+        _stopped(report.get("error")),
         _divergence(report.get("verify")),
         _verify_section(report.get("verify")),
         _profile_section(report.get("profile"), pct),
