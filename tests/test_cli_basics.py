@@ -39,3 +39,21 @@ def test_help_imports_no_framework() -> None:
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == ""
+
+
+def test_unexpected_error_is_one_paragraph_exit_4(monkeypatch, capsys) -> None:  # type: ignore[no-untyped-def]
+    import pytest
+
+    import seqgate.cli as cli
+
+    def boom() -> None:
+        raise RuntimeError("simulated fault\nsecond line")
+
+    monkeypatch.delenv("SEQGATE_DEBUG", raising=False)
+    monkeypatch.setattr(cli, "app", boom)
+    with pytest.raises(SystemExit) as ei:
+        cli.main()
+    err = capsys.readouterr().err
+    assert ei.value.code == 4
+    assert "internal error" in err and "RuntimeError: simulated fault" in err
+    assert "Traceback" not in err and "second line" not in err

@@ -1,6 +1,7 @@
 """The ``seqgate`` command line: thin typed commands that call the library and print with rich.
 
-Exit codes: 0 passed; 1 a check failed; 2 bad usage or bad input; 3 unsupported model.
+Exit codes: 0 passed; 1 a check failed; 2 bad usage or bad input; 3 unsupported model;
+4 an internal error (a bug in seqgate), reported in one paragraph without a traceback.
 No framework is imported until a command needs it, so ``seqgate --help`` is fast.
 """
 
@@ -8,6 +9,7 @@ from __future__ import annotations
 
 import importlib
 import json
+import os
 import sys
 from pathlib import Path
 from typing import Annotated
@@ -15,7 +17,7 @@ from typing import Annotated
 import typer
 
 from seqgate import __version__
-from seqgate.errors import SeqgateError
+from seqgate.errors import EXIT_INTERNAL, SeqgateError
 
 app = typer.Typer(
     name="seqgate",
@@ -144,6 +146,16 @@ def main() -> None:
     except KeyboardInterrupt:
         sys.stderr.write("interrupted\n")
         raise SystemExit(130) from None
+    except Exception as e:  # a bug in seqgate: say so in one paragraph, keep the traceback opt-in
+        if os.environ.get("SEQGATE_DEBUG"):
+            raise
+        first = (str(e).strip().splitlines() or [""])[0][:400]
+        sys.stderr.write(
+            f"internal error: seqgate failed unexpectedly ({type(e).__name__}: {first}). This is a bug in "
+            f"seqgate, not in your files as far as it can tell; please report it with the command line. "
+            f"Run again with SEQGATE_DEBUG=1 to see the traceback.\n"
+        )
+        raise SystemExit(EXIT_INTERNAL) from None
 
 
 if __name__ == "__main__":

@@ -14,6 +14,7 @@ EXIT_PASSED = 0
 EXIT_CHECK_FAILED = 1
 EXIT_BAD_INPUT = 2
 EXIT_UNSUPPORTED = 3
+EXIT_INTERNAL = 4  # a bug in seqgate; the CLI reports it in one paragraph
 
 
 class SeqgateError(Exception):

@@ -40,7 +40,7 @@ from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
 from seqgate.files import sha256_file
 from seqgate.probes import Probe, read_metadata, read_probe_map
 from seqgate.sources import Source, parse_source
-from seqgate.windows import InputSpec, Recording, feature_stats, input_specs, load_recording
+from seqgate.windows import InputSpec, Recording, feature_stats, input_specs, load_recording, to_model_layout
 
 SCHEMA = "seqgate.verify/1"
 DEFAULT_BATCH = 64
@@ -164,9 +164,11 @@ class _Comparer:
     def __init__(self, infos: list[TensorInfo], tol: Tolerances, class_names: set[str], specs: list[InputSpec],
                  out_dims: dict[str, list[Any]]):
         self.infos, self.tol, self.class_names, self.out_dims = infos, tol, class_names, out_dims
-        self.seq_input = next((s.name for s in specs if len(s.dims) >= 3), None)
-        self.time_dims = {s.dims[1] for s in specs if len(s.dims) >= 3 and isinstance(s.dims[1], str)}
-        self.batch_dims = {s.dims[0] for s in specs if s.dims and isinstance(s.dims[0], str)}
+        self.specs = specs
+        self.seq_input = next((s.name for s in specs if s.is_sequence), None)
+        self.time_dims = {s.window_dims[1] for s in specs
+                          if s.is_sequence and isinstance(s.window_dims[1], str)}
+        self.batch_dims = {s.window_dims[0] for s in specs if s.dims and isinstance(s.window_dims[0], str)}
         self.batch_axis: dict[str, int] = {}
 
     def _find_batch_axis(self, name: str, shape: tuple[int, ...], n: int) -> int:
@@ -215,11 +217,12 @@ class _Comparer:
         stats: dict[str, TensorStats] = {}
         worst: list[tuple[float, int, dict[str, np.ndarray[Any, Any]]]] = []
         task = progress.add_task(rec.label, total=rec.windows) if progress else None
-        for start, feeds in rec.batches(batch):
-            a = onnx_runner.run(feeds)
-            s = src_runner.run(feeds)
+        for start, feeds in rec.batches(batch):  # window-first arrays
+            model_feeds = to_model_layout(feeds, self.specs)
+            a = onnx_runner.run(model_feeds)
+            s = src_runner.run(model_feeds)
             if check[0]:
-                _self_check(src_runner, feeds, s)
+                _self_check(src_runner, model_feeds, s)
                 check[0] = False
             if not stats:
                 stats = self.new_stats(feeds, s)
@@ -230,7 +233,7 @@ class _Comparer:
                 st.update(self.to_batch_major(t.name, a[t.name]), self.to_batch_major(t.name, s[t.name]), start)
                 if st.window_max is not None:
                     score = np.maximum(score, st.window_max)
-            _keep_worst(worst, score, start, feeds)
+            _keep_worst(worst, score, start, model_feeds)
             if progress:
                 progress.advance(task, len(score))
         for st in stats.values():

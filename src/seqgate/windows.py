@@ -48,12 +48,57 @@ class InputSpec:
     dims: tuple[int | str | None, ...]
 
     def describe(self) -> str:
-        dims = ", ".join("?" if d is None else str(d) for d in self.dims)
+        dims = ", ".join("?" if d is None else str(d) for d in self.window_dims)
         return f"{self.dtype.name} [{dims}]"
 
     @property
+    def batch_axis(self) -> int:
+        """The ONNX axis that holds the windows: the dim named like ``batch`` (else axis 0).
+
+        PyTorch initial states ``[L·D, batch, H]`` and time-major inputs ``[time, batch, F]`` have it
+        at axis 1.
+        """
+        for i, d in enumerate(self.dims):
+            if isinstance(d, str) and "batch" in d:
+                return i
+        return 0
+
+    @property
+    def window_dims(self) -> tuple[int | str | None, ...]:
+        """Dims as a recording stores them: the windows axis first, the rest in ONNX order."""
+        dims = list(self.dims)
+        b = self.batch_axis
+        if b:
+            dims.insert(0, dims.pop(b))
+        return tuple(dims)
+
+    @property
+    def is_sequence(self) -> bool:
+        """Axis 1 of the window layout is time: named ``*time*``, or a static sequence input."""
+        d = self.window_dims
+        if len(d) < 2:
+            return False
+        if isinstance(d[1], str):
+            return "time" in d[1]
+        if self.batch_axis != 0:
+            return False
+        return len(d) >= 3 or self.dtype.kind in "iu"
+
+    @property
     def time_dynamic(self) -> bool:
-        return len(self.dims) >= 3 and not isinstance(self.dims[1], int)
+        return self.is_sequence and not isinstance(self.window_dims[1], int)
+
+    def to_model(self, x: np.ndarray[Any, Any]) -> np.ndarray[Any, Any]:
+        """A window-first array in this input's ONNX layout (windows moved to the batch axis)."""
+        b = self.batch_axis
+        return x if b == 0 else np.ascontiguousarray(np.moveaxis(x, 0, b))
+
+
+def to_model_layout(feeds: dict[str, np.ndarray[Any, Any]],
+                    specs: list[InputSpec]) -> dict[str, np.ndarray[Any, Any]]:
+    """Window-first arrays (as recordings hold them) → the model's input layouts."""
+    by = {s.name: s for s in specs}
+    return {k: by[k].to_model(v) if k in by else v for k, v in feeds.items()}
 
 
 def input_specs(model: Any) -> list[InputSpec]:
@@ -347,12 +392,12 @@ def _check_arrays(path: Path, chosen: dict[str, LazyArray], specs: list[InputSpe
                 f"{label} for input {spec.name!r}: dtype {a.dtype.name}, the model expects {expected}; "
                 f"received {found}. Convert it, e.g. x.astype(np.{spec.dtype.name}), and save again."
             )
-        if len(a.shape) != len(spec.dims):
+        if len(a.shape) != len(spec.window_dims):
             raise BadInputError(
                 f"{label} for input {spec.name!r}: rank {len(a.shape)}, the model expects {expected}; "
                 f"received {found}. Lay the windows out as [windows, steps, features]."
             )
-        for axis, (want, got) in enumerate(zip(spec.dims, a.shape, strict=True)):
+        for axis, (want, got) in enumerate(zip(spec.window_dims, a.shape, strict=True)):
             if axis == 0:
                 continue
             if isinstance(want, int) and want != got:

@@ -30,8 +30,8 @@ KINDS = ("scaled", "zeros", "constants", "extremes", "long")
 
 
 def _default_stats(spec: InputSpec) -> FeatureStats:
-    shape = tuple(d if isinstance(d, int) else (DEFAULT_STEPS if i == 1 else 1)
-                  for i, d in enumerate(spec.dims))[1:]
+    shape = tuple(d if isinstance(d, int) else (DEFAULT_STEPS if i == 1 and spec.is_sequence else 1)
+                  for i, d in enumerate(spec.window_dims))[1:]
     f = shape[-1] if shape else 1
     return FeatureStats(np.zeros(f), np.ones(f), np.zeros(f), np.ones(f), shape)
 
@@ -41,7 +41,8 @@ def _draw(kind: str, spec: InputSpec, st: FeatureStats, shape: tuple[int, ...],
     n = shape[0]
     mu, sigma = st.mean, np.where(st.std > 0, st.std, 1.0)
     if spec.dtype.kind in "iu":
-        lo, hi = np.floor(st.low), np.ceil(st.high)
+        # one id range for the whole input: token ids are not per-feature quantities
+        lo, hi = int(np.floor(np.min(st.low))), int(np.ceil(np.max(st.high)))
         if kind in ("scaled", "long"):
             x = rng.integers(lo, hi + 1, size=shape)
         elif kind == "zeros":
@@ -57,7 +58,7 @@ def _draw(kind: str, spec: InputSpec, st: FeatureStats, shape: tuple[int, ...],
         x = np.zeros(shape)
     elif kind == "constants":
         c = np.linspace(-3.0, 3.0, n).reshape((n,) + (1,) * (len(shape) - 1))
-        x = mu + c * sigma
+        x = np.broadcast_to(mu + c * sigma, shape)  # every step of window i at the same value
     else:
         sign = np.where(rng.random(shape) < 0.5, -1.0, 1.0)
         sign[0] = 1.0
@@ -71,7 +72,7 @@ def synthetic_sets(specs: list[InputSpec], stats: dict[str, FeatureStats] | None
                    windows: int = SYNTHETIC_WINDOWS) -> list[Recording]:
     """One :class:`Recording` per synthetic kind (``long`` only for a dynamic time axis)."""
     per = {s.name: (stats or {}).get(s.name) or _default_stats(s) for s in specs}
-    long_dims = {s.dims[1] for s in specs if s.time_dynamic}
+    long_dims = {s.window_dims[1] for s in specs if s.time_dynamic}
     out = []
     for k, kind in enumerate(KINDS):
         if kind == "long" and not long_dims:
@@ -80,7 +81,7 @@ def synthetic_sets(specs: list[InputSpec], stats: dict[str, FeatureStats] | None
         arrays = {}
         for s in specs:
             shape = (windows, *per[s.name].shape)
-            if kind == "long" and len(s.dims) >= 3 and s.dims[1] in long_dims:
+            if kind == "long" and s.time_dynamic and s.window_dims[1] in long_dims:
                 shape = (windows, 4 * shape[1], *shape[2:])
             x = _draw(kind, s, per[s.name], shape, rng)
             arrays[s.name] = MappedArray(x, f"synthetic:{kind} {s.name!r}")
