@@ -106,3 +106,18 @@ def test_booleans_are_not_numbers(tmp_path: Path) -> None:
     # TOML true is a bool; Python's bool is an int subclass, so this must be checked explicitly.
     with pytest.raises(BadInputError, match="opset must be an integer"):
         load_gate_config(_write(tmp_path, '[model]\nsource = "m.keras"\n[export]\nopset = true\n'))
+
+
+def test_example_config_mentions_every_key() -> None:
+    # fixtures/gate_example.toml is the commented reference: every key of the schema appears in it,
+    # set or commented out.
+    from seqgate.gate_config import _BUDGET_KEYS, _SCHEMA, _TOLERANCE_KEYS
+
+    text = (FIXTURES / "gate_example.toml").read_text(encoding="utf-8")
+    keys = {k for table in _SCHEMA.values() for k in table} - {"tolerance", "budget"}
+    keys |= set(_TOLERANCE_KEYS) | set(_BUDGET_KEYS)
+    missing = [k for k in sorted(keys) if f"{k} =" not in text]
+    assert not missing, missing
+    sections = ("[model]", "[export]", "[verify]", "[[verify.tolerance]]", "[profile]", "[[profile.budget]]")
+    for section in sections:
+        assert section in text
