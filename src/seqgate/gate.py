@@ -117,6 +117,7 @@ def _sha(path: Path) -> str:
 def _run_checks(report: GateReport, progress: bool) -> None:
     cfg = report.config
     model_path = report.out_dir / "model.onnx"
+    model_path.unlink(missing_ok=True)  # a model left by an earlier run must not pass for this one's
     weights = str(cfg.weights) if cfg.weights else None
     if cfg.onnx is not None:
         model = _adopt_onnx(report, model_path)
