@@ -32,6 +32,7 @@ one symbol's values in both runs is named after it on graph outputs.
 from __future__ import annotations
 
 import inspect
+import warnings
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -355,7 +356,9 @@ def _record(gm: Any, plan: Plan, sizes: dict[str, int], seed: int, label: str) -
 
     args = sample_args(plan, sizes, seed)
     try:
-        with torch.no_grad():
+        # the sample runs only read shapes: torch's own performance warnings would be noise here
+        with torch.no_grad(), warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)
             Recorder(gm).run(*args)
     except _RunFailed as f:
         shapes = ", ".join(f"{s.name}: {[sizes.get(d, d) for d in s.dims]}" for s in plan.inputs)
