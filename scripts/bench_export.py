@@ -46,16 +46,23 @@ def exported_graph(input_size: int, hidden: int, seed: int) -> Any:
     return export_keras_model(model, 17, {"seqgate.version": "bench"})
 
 
-def minimal_graph(exported: Any) -> Any:
-    """X [T, 1, I] → the same LSTM node attributes and initializers → Y_h only."""
-    import onnx
+def _lstm_parts(exported: Any) -> tuple[Any, Any, Any, int, int, dict[str, Any]]:
+    """The exported LSTM node's W, R, B initializers, hidden and input sizes, and attributes."""
     from onnx import helper
 
     (node,) = [n for n in exported.graph.node if n.op_type == "LSTM"]
     inits = {i.name: i for i in exported.graph.initializer}
     w, r, b = (inits[n] for n in node.input[1:4])
-    hidden, size = int(w.dims[1]) // 4, int(w.dims[2])
     attrs = {a.name: helper.get_attribute_value(a) for a in node.attribute}
+    return w, r, b, int(w.dims[1]) // 4, int(w.dims[2]), attrs
+
+
+def minimal_graph(exported: Any) -> Any:
+    """X [T, 1, I] → the same LSTM node attributes and initializers → Y_h only."""
+    import onnx
+    from onnx import helper
+
+    w, r, b, hidden, size, attrs = _lstm_parts(exported)
     lstm = helper.make_node("LSTM", ["X", w.name, r.name, b.name], ["", "Y_h"], name="lstm", **attrs)
     graph = helper.make_graph(
         [lstm], "minimal",
@@ -71,11 +78,7 @@ def same_interface_graph(exported: Any) -> Any:
     import onnx
     from onnx import helper, numpy_helper
 
-    (node,) = [n for n in exported.graph.node if n.op_type == "LSTM"]
-    inits = {i.name: i for i in exported.graph.initializer}
-    w, r, b = (inits[n] for n in node.input[1:4])
-    hidden, size = int(w.dims[1]) // 4, int(w.dims[2])
-    attrs = {a.name: helper.get_attribute_value(a) for a in node.attribute}
+    w, r, b, hidden, size, attrs = _lstm_parts(exported)
     axes = numpy_helper.from_array(np.asarray([0], np.int64), "axes")
     nodes = [
         helper.make_node("Transpose", ["x"], ["X"], perm=[1, 0, 2]),

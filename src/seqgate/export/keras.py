@@ -22,6 +22,7 @@ import numpy as np
 
 from seqgate.errors import BadInputError, Refusal, Unsupported, UnsupportedModelError
 from seqgate.export.builder import DimSpec, GraphBuilder, np_to_onnx_type
+from seqgate.keras_graph import graph_nodes, is_nested
 
 
 @dataclass
@@ -153,34 +154,30 @@ def _walk(
 ) -> None:
     """Visit ``graph``'s nodes in dependency order, mapping each through ``table``."""
     mask_only = _mask_only_nodes(graph)
-    for depth in sorted(graph._nodes_by_depth, reverse=True):
-        for node in graph._nodes_by_depth[depth]:
-            layer = node.operation
-            cls = type(layer).__name__
-            if cls == "InputLayer" or getattr(node, "is_input", False):
-                continue
-            if id(node) in mask_only:
-                # mask arithmetic (Masking's not_equal/any): the layer taking the mask refuses it
-                for t in node.outputs:
-                    values[id(t)] = KV(b.fresh(f"{prefix}{layer.name}/mask"), tuple(t.shape), str(t.dtype))
-                continue
-            full = f"{prefix}{layer.name}"
-            ins = [values[id(t)] for t in node.input_tensors]
-            if hasattr(layer, "_nodes_by_depth") or cls == "Sequential":
-                _walk_nested(b, layer, node, ins, values, full, problems, table)
-                continue
-            call = KerasCall(
-                layer=layer,
-                name=full,
-                inputs=ins,
-                kwargs=dict(node.arguments.kwargs),
-                outputs=list(node.outputs),
-                args=tuple(node.arguments.args),
-                values=values,
-            )
-            names = _map_one(b, call, cls, problems, table)
-            for t, n in zip(node.outputs, names, strict=True):
-                values[id(t)] = KV(n, tuple(t.shape), str(t.dtype))
+    for node, layer in graph_nodes(graph):
+        cls = type(layer).__name__
+        if id(node) in mask_only:
+            # mask arithmetic (Masking's not_equal/any): the layer taking the mask refuses it
+            for t in node.outputs:
+                values[id(t)] = KV(b.fresh(f"{prefix}{layer.name}/mask"), tuple(t.shape), str(t.dtype))
+            continue
+        full = f"{prefix}{layer.name}"
+        ins = [values[id(t)] for t in node.input_tensors]
+        if is_nested(layer):
+            _walk_nested(b, layer, node, ins, values, full, problems, table)
+            continue
+        call = KerasCall(
+            layer=layer,
+            name=full,
+            inputs=ins,
+            kwargs=dict(node.arguments.kwargs),
+            outputs=list(node.outputs),
+            args=tuple(node.arguments.args),
+            values=values,
+        )
+        names = _map_one(b, call, cls, problems, table)
+        for t, n in zip(node.outputs, names, strict=True):
+            values[id(t)] = KV(n, tuple(t.shape), str(t.dtype))
 
 
 def _is_layer(op: Any) -> bool:

@@ -29,6 +29,7 @@ from typing import Any
 import numpy as np
 
 from seqgate.errors import Unsupported, UnsupportedModelError
+from seqgate.keras_graph import graph_nodes, is_nested
 from seqgate.probes import Probe
 
 SELF_CHECK_ATOL = 1e-6  # the re-execution runs the same TensorFlow kernels; only op fusion may differ
@@ -38,10 +39,6 @@ def _functional(model: Any) -> Any:
     if type(model).__name__ == "Sequential":
         return model._functional
     return model
-
-
-def _is_nested(layer: Any) -> bool:
-    return hasattr(layer, "_nodes_by_depth") or type(layer).__name__ == "Sequential"
 
 
 def _clone(layer: Any, input_shape: tuple[Any, ...], name: str) -> Any:
@@ -88,23 +85,19 @@ class KerasRunner:
 
     # ----- setup --------------------------------------------------------------------------------
     def _prepare_clones(self, graph: Any, prefix: str) -> None:
-        for depth in sorted(graph._nodes_by_depth, reverse=True):
-            for node in graph._nodes_by_depth[depth]:
-                layer = node.operation
-                if node.is_input or layer is None:
-                    continue
-                full = f"{prefix}{layer.name}"
-                if _is_nested(layer):
-                    self._prepare_clones(_functional(layer), f"{full}/")
-                    continue
-                if full not in self._layers:
-                    continue
-                shape = tuple(node.input_tensors[0].shape)
-                if type(layer).__name__ == "Bidirectional":
-                    self._clones[full + "#fw"] = _clone(layer.forward_layer, shape, f"{layer.name}_probe_fw")
-                    self._clones[full + "#bw"] = _clone(layer.backward_layer, shape, f"{layer.name}_probe_bw")
-                else:
-                    self._clones[full] = _clone(layer, shape, f"{layer.name}_probe")
+        for node, layer in graph_nodes(graph):
+            full = f"{prefix}{layer.name}"
+            if is_nested(layer):
+                self._prepare_clones(_functional(layer), f"{full}/")
+                continue
+            if full not in self._layers:
+                continue
+            shape = tuple(node.input_tensors[0].shape)
+            if type(layer).__name__ == "Bidirectional":
+                self._clones[full + "#fw"] = _clone(layer.forward_layer, shape, f"{layer.name}_probe_fw")
+                self._clones[full + "#bw"] = _clone(layer.backward_layer, shape, f"{layer.name}_probe_bw")
+            else:
+                self._clones[full] = _clone(layer, shape, f"{layer.name}_probe")
 
     # ----- traced forward -----------------------------------------------------------------------
     def _forward(self, *inputs: Any) -> list[Any]:
@@ -115,21 +108,17 @@ class KerasRunner:
     def _walk(self, graph: Any, inputs: list[Any], prefix: str, probes: dict[str, Any]) -> list[Any]:
         tree = self.keras.tree
         values = {id(x): y for x, y in zip(graph.inputs, inputs, strict=True)}
-        for depth in sorted(graph._nodes_by_depth, reverse=True):
-            for node in graph._nodes_by_depth[depth]:
-                layer = node.operation
-                if node.is_input or layer is None:
-                    continue
-                full = f"{prefix}{layer.name}"
-                args, kwargs = node.arguments.fill_in(values)
-                if _is_nested(layer):
-                    outs: Any = self._walk(_functional(layer), tree.flatten(args), f"{full}/", probes)
-                elif full in self._layers:
-                    outs = self._recurrent(full, layer, args, kwargs, probes)
-                else:
-                    outs = layer(*args, **kwargs)
-                for x, y in zip(node.outputs, tree.flatten(outs), strict=True):
-                    values[id(x)] = y
+        for node, layer in graph_nodes(graph):
+            full = f"{prefix}{layer.name}"
+            args, kwargs = node.arguments.fill_in(values)
+            if is_nested(layer):
+                outs: Any = self._walk(_functional(layer), tree.flatten(args), f"{full}/", probes)
+            elif full in self._layers:
+                outs = self._recurrent(full, layer, args, kwargs, probes)
+            else:
+                outs = layer(*args, **kwargs)
+            for x, y in zip(node.outputs, tree.flatten(outs), strict=True):
+                values[id(x)] = y
         return [values[id(x)] for x in graph.outputs]
 
     def _recurrent(self, full: str, layer: Any, args: Any, kwargs: dict[str, Any],
