@@ -17,6 +17,7 @@ from __future__ import annotations
 import argparse
 import csv
 import os
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -127,34 +128,9 @@ def simulate_vibration(n: int, rng: np.random.Generator) -> tuple[np.ndarray, np
     return x, labels.astype(np.int64)
 
 
-VIBRATION_MODULE = '''"""Booster-pump vibration classifier (demo model; simulated data, invented scenario).
-
-seqgate runs this file to build the module: ``seqgate export vibration_model.py:build_model
---weights vibration_model.pt -o vibration.onnx``.
-"""
-
-from __future__ import annotations
-
-import torch
-from torch import nn
-
-
-class VibrationClassifier(nn.Module):
-    """3-axis acceleration windows [batch, time, 3] → class probabilities [batch, 3]."""
-
-    def __init__(self) -> None:
-        super().__init__()
-        self.gru = nn.GRU(3, 24, num_layers=2, batch_first=True, bidirectional=True)
-        self.head = nn.Linear(48, 3)
-
-    def forward(self, accel: torch.Tensor) -> torch.Tensor:
-        y, _ = self.gru(accel)
-        return torch.softmax(self.head(y.mean(dim=1)), dim=-1)
-
-
-def build_model() -> nn.Module:
-    return VibrationClassifier()
-'''
+# The classifier's module lives in the fixtures as a plain source file (seqgate runs it as the
+# factory); training imports it from there, so the committed file is the one definition.
+VIBRATION_MODULE = Path(__file__).resolve().parents[1] / "fixtures/demo/vibration/vibration_model.py"
 
 
 def train_classifier(out: Path, rng: np.random.Generator) -> None:
@@ -165,7 +141,8 @@ def train_classifier(out: Path, rng: np.random.Generator) -> None:
     torch.manual_seed(SEED)
     torch.set_num_threads(1)
     torch.use_deterministic_algorithms(True)
-    (out / "vibration_model.py").write_text(VIBRATION_MODULE, encoding="utf-8")
+    if (out / "vibration_model.py").resolve() != VIBRATION_MODULE:
+        shutil.copyfile(VIBRATION_MODULE, out / "vibration_model.py")
     spec = importlib.util.spec_from_file_location("vibration_model", out / "vibration_model.py")
     assert spec and spec.loader
     mod = importlib.util.module_from_spec(spec)
