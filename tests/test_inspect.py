@@ -128,3 +128,19 @@ def test_truncated_export(exported: Path, tmp_path: Path) -> None:
     r = runner.invoke(app, ["inspect", str(p), "--json"])
     assert r.exit_code == 2, r.output
     assert "Traceback" not in r.output
+
+
+def test_inspect_refuses_files_that_are_not_onnx(tmp_path: Path) -> None:
+    from typer.testing import CliRunner
+
+    from seqgate.cli import app
+
+    keras_file = tmp_path / "model.keras"
+    keras_file.write_bytes(b"PK\x03\x04")
+    r = CliRunner().invoke(app, ["inspect", str(keras_file)])
+    assert r.exit_code == 2 and "not an ONNX file" in r.output and "export the model first" in r.output
+    junk = tmp_path / "model.onnx"
+    junk.write_bytes(b"\x00\xffnot protobuf at all")
+    r = CliRunner().invoke(app, ["inspect", str(junk)])
+    assert r.exit_code == 2 and "not a readable ONNX model" in r.output
+    assert "Traceback" not in r.output

@@ -24,6 +24,9 @@ def load_onnx(path: str | Path) -> onnx.ModelProto:
     p = Path(path)
     if not p.is_file():
         raise BadInputError(f"ONNX file {p} does not exist (or is not a file).")
+    if p.suffix.lower() in (".keras", ".h5", ".hdf5", ".py", ".pt", ".pth", ".npz", ".npy", ".csv", ".toml"):
+        raise BadInputError(f"{p} is not an ONNX file (it looks like a {p.suffix} file). This command reads "
+                            f"the file `seqgate export` writes: export the model first, then pass the .onnx.")
     try:
         model = onnx.load(str(p))
     except Exception as e:  # protobuf raises several types for corrupt bytes
