@@ -13,17 +13,8 @@ from typing import Annotated, Any
 
 import typer
 
-from seqgate.errors import EXIT_CHECK_FAILED, BadInputError, SeqgateError
-
-
-def _check_output(path: Path | None, option: str) -> None:
-    if path is None:
-        return
-    if path.is_dir():
-        raise BadInputError(f"{option} {path} is a directory; give a file name such as {path}/profile.json.")
-    if not path.parent.exists():
-        raise BadInputError(f"{option} {path}: directory {path.parent} does not exist; create it first "
-                            f"or choose another path.")
+from seqgate.errors import EXIT_CHECK_FAILED, SeqgateError
+from seqgate.files import check_output_path
 
 
 def profile_command(
@@ -54,7 +45,8 @@ def profile_command(
 
     try:
         for path, option in ((report, "--report"), (csv, "--csv"), (plot, "--plot")):
-            _check_output(path, option)
+            if path is not None:
+                check_output_path(path, option)
         with _progress() as progress:
             result = profile_model(
                 model, seq_lens=seq_lens, batches=batch, threads=threads, warmup=warmup,

@@ -12,6 +12,7 @@ from typing import Annotated, Any
 import typer
 
 from seqgate.errors import SeqgateError
+from seqgate.files import check_output_path
 
 TOLERANCE_HELP = (
     "TOML file: top-level atol/rtol, plus \\[\\[tensor]] tables with match = \"fnmatch pattern\" and "
@@ -55,11 +56,9 @@ def verify(
     from seqgate.verify import verify_model
 
     try:
-        for p in (report, junit, summary):
-            if p is not None and not p.parent.exists():
-                from seqgate.errors import BadInputError
-
-                raise BadInputError(f"output directory {p.parent} does not exist; create it first.")
+        for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
+            if p is not None:
+                check_output_path(p, option)
         rep = verify_model(model, source, weights, [str(w) for w in windows or []], synthetic, atol, rtol,
                            str(tolerances) if tolerances else None, batch_size, not no_states, oracle,
                            progress=not quiet, task=task, seed=seed)

@@ -19,19 +19,23 @@ def sha256_file(path: str | os.PathLike[str]) -> str:
     return h.hexdigest()
 
 
+def check_output_path(path: Path, option: str = "output file") -> None:
+    """Refuse an output path that is a directory or whose directory is missing (named by ``option``)."""
+    if path.is_dir():
+        raise BadInputError(f"{option} {path} is a directory; give a file name inside it.")
+    if not path.parent.exists():
+        raise BadInputError(f"{option} {path}: directory {path.parent} does not exist; create it first "
+                            f"or choose another path.")
+
+
 def check_writable(path: Path, force: bool) -> None:
-    """Refuse to overwrite an existing file unless ``force``; refuse a missing directory."""
-    if path.exists() and not force:
+    """Refuse to overwrite an existing file unless ``force``; then :func:`check_output_path`."""
+    if path.exists() and not path.is_dir() and not force:
         raise BadInputError(
             f"output file {path} already exists; seqgate does not overwrite files unless asked. "
             f"Pass --force to replace it, or choose another path with -o."
         )
-    if path.is_dir():
-        raise BadInputError(f"output path {path} is a directory; give a file name such as {path}/model.onnx.")
-    if not path.parent.exists():
-        raise BadInputError(
-            f"output directory {path.parent} does not exist; create it first or choose another path."
-        )
+    check_output_path(path, "output file")
 
 
 def write_atomic(path: str | os.PathLike[str], data: bytes) -> None:

@@ -138,8 +138,13 @@ def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
     cfg = report.config
     options = {"inputs": cfg.inputs} if cfg.inputs else {}
     res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, **options)
-    for f in res.source.files():
-        report.files[str(f)] = _sha(f)
+    from seqgate.probes import read_metadata
+
+    meta = read_metadata(res.model)
+    hashed = ((res.source.path, "seqgate.source.sha256"), (res.source.weights, "seqgate.source.weights_sha256"))
+    for f, key in hashed:
+        if f is not None and key in meta:  # hashed once, by the export
+            report.files[str(f)] = meta[key]
     report.files[str(model_path)] = _sha(model_path)
     report.checks.append({"name": "export", "passed": True,
                           "detail": f"{len(res.model.graph.node)} ONNX nodes, {res.probes} probes, "
@@ -165,22 +170,11 @@ def _adopt_onnx(report: GateReport, model_path: Path) -> Any:
 
 
 def _check_lengths(cfg: GateConfig, model: Any) -> None:
-    """Refuse budgets/lengths a fixed-time model cannot take (before any measuring)."""
-    from seqgate.costs import has_dynamic_time
+    """Refuse budgets a fixed-time model cannot take, by the profiler's own rule, before any measuring."""
+    if cfg.profile_enabled:
+        from seqgate.profile import lengths_to_measure
 
-    if not cfg.profile_enabled or has_dynamic_time(model):
-        return
-    dims = model.graph.input[0].type.tensor_type.shape.dim
-    fixed = dims[1].dim_value if len(dims) > 1 and dims[1].HasField("dim_value") else None
-    if fixed is None:
-        return
-    bad = sorted({b.seq_len for b in cfg.budgets if b.seq_len != fixed})
-    if bad:
-        raise BadInputError(
-            f"gate config {cfg.path}: budgets at sequence lengths {bad} cannot be measured — the exported "
-            f"model's time dim is fixed at {fixed}. Budget seq_len {fixed} only, or re-export a model "
-            f"with a dynamic time axis."
-        )
+        lengths_to_measure(model, cfg.seq_lens, [f"{b.seq_len}={b.ms}" for b in cfg.budgets])
 
 
 def _verify(report: GateReport, model_path: Path, weights: str | None, progress: bool) -> None:
@@ -197,8 +191,9 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
         seed=cfg.seed,
     )
     report.verify = vr.to_json()
-    for r in cfg.recordings:
-        report.files[str(r)] = _sha(r)
+    for r in report.verify["recordings"]:  # hashed once, by verify
+        if r.get("path"):
+            report.files[r["path"]] = r["sha256"]
     report.checks.append({"name": "verify", "passed": vr.passed, "detail": vr.headline()})
 
 
@@ -243,26 +238,14 @@ def write_reports(report: GateReport) -> None:
     from seqgate.files import write_atomic, write_text_atomic
     from seqgate.report.gate_html import render_gate_html
     from seqgate.report.gate_text import gate_junit, gate_markdown
+    from seqgate.report.verify_json import strict_json
 
     d = report.to_dict()
     out = report.out_dir
-    write_text_atomic(out / "report.json", json.dumps(_strict(d), indent=2, sort_keys=True) + "\n")
+    write_text_atomic(out / "report.json", json.dumps(strict_json(d), indent=2, sort_keys=True) + "\n")
     write_text_atomic(out / "report.md", gate_markdown(d))
     write_atomic(out / "junit.xml", gate_junit(d))
     write_text_atomic(out / "report.html", render_gate_html(d))
-
-
-def _strict(x: Any) -> Any:
-    """Replace NaN/Inf by None so report.json is strict JSON."""
-    import math
-
-    if isinstance(x, float) and not math.isfinite(x):
-        return None
-    if isinstance(x, dict):
-        return {k: _strict(v) for k, v in x.items()}
-    if isinstance(x, list | tuple):
-        return [_strict(v) for v in x]
-    return x
 
 
 from seqgate._callable import make_callable  # noqa: E402

@@ -57,15 +57,18 @@ def describe(model: onnx.ModelProto) -> dict[str, Any]:
     """The inspection dict (see module docstring)."""
     meta = read_metadata(model)
     costs = {c.node: c for c in node_costs(model)}
+    by_name = {n.name: n for n in model.graph.node}
+    init_sizes = {i.name: _prod(i.dims) for i in model.graph.initializer
+                  if i.data_type == onnx.TensorProto.FLOAT}
     layer_rows: list[dict[str, Any]] = []
     listed: set[str] = set()
     for rec in json.loads(meta.get("seqgate.layers", "[]")):
         nodes = [n for n in rec["nodes"] if n in costs]
         listed.update(nodes)
-        layer_rows.append(_layer_row(rec["name"], rec["kind"], nodes, costs, model))
+        layer_rows.append(_layer_row(rec["name"], rec["kind"], nodes, costs, by_name, init_sizes))
     rest = [n.name for n in model.graph.node if n.name not in listed]
     if rest:
-        layer_rows.append(_layer_row("(graph glue)", "", rest, costs, model))
+        layer_rows.append(_layer_row("(graph glue)", "", rest, costs, by_name, init_sizes))
     probes = [
         {"name": p.name, "kind": p.kind, "layer": p.layer, "direction": p.direction,
          "value": p.value, "node": p.node, "axes": p.axes}
@@ -89,25 +92,15 @@ def describe(model: onnx.ModelProto) -> dict[str, Any]:
 
 
 def _layer_row(name: str, kind: str, nodes: list[str], costs: dict[str, Any],
-               model: onnx.ModelProto) -> dict[str, Any]:
-    ops = {n.name: n.op_type for n in model.graph.node}
+               by_name: dict[str, onnx.NodeProto], init_sizes: dict[str, int]) -> dict[str, Any]:
     # a shared initializer is counted once per layer
-    seen: set[str] = set()
-    params = 0
-    init_sizes = {i.name: int(_prod(i.dims)) for i in model.graph.initializer
-                  if i.data_type == onnx.TensorProto.FLOAT}
-    for n in model.graph.node:
-        if n.name in nodes:
-            for i in n.input:
-                if i in init_sizes and i not in seen:
-                    seen.add(i)
-                    params += init_sizes[i]
+    inits = {i for n in nodes for i in by_name[n].input if i in init_sizes}
     return {
         "layer": name,
         "kind": kind,
-        "nodes": [f"{ops[n]}" for n in nodes],
+        "nodes": [by_name[n].op_type for n in nodes],
         "node_names": nodes,
-        "params": params,
+        "params": sum(init_sizes[i] for i in inits),
         "macs_per_step": sum(costs[n].macs_per_step for n in nodes),
         "macs_per_sequence": sum(costs[n].macs_per_sequence for n in nodes),
     }

@@ -137,6 +137,11 @@ def _sweep_lengths(axes: Any, seq_lens: list[int], budgets: list[Budget], notes:
     return sorted(set(seq_lens) | set(extra))
 
 
+def lengths_to_measure(model: Any, seq_lens: Sequence[int], budgets: Sequence[str | Budget]) -> list[int]:
+    """The lengths a profile of ``model`` would measure; ``BadInputError`` for budgets it cannot take."""
+    return _sweep_lengths(model_axes(model, plan_inputs(model)), list(seq_lens), parse_budgets(budgets), [])
+
+
 def _sweep_batches(axes: Any, batches: list[int], notes: list[str]) -> list[int]:
     if axes.fixed_batch is not None and batches != [axes.fixed_batch]:
         notes.append(f"the model fixes its batch at {axes.fixed_batch}: the sweep uses batch "
@@ -189,7 +194,7 @@ def profile_model(
 
     Raises ``BadInputError`` (exit 2) for bad arguments or files before anything is timed.
     """
-    from seqgate.costs import macs_for_length, summary
+    from seqgate.costs import summary
     from seqgate.environment import environment
     from seqgate.files import sha256_file
     from seqgate.inspection import load_onnx
@@ -210,7 +215,8 @@ def profile_model(
     if max(thread_list) > cores:
         notes.append(f"--threads {max(thread_list)} is more than the {cores} cores this process may use; "
                      f"those points measure oversubscription.")
-    macs = {t: macs_for_length(model, t) for t in lengths}
+    cost = summary(model)  # one pass of the cost model (two shape inferences) for every length
+    macs = {t: cost["macs_per_sequence"] + cost["macs_per_step"] * t for t in lengths}
     runner = _open_runner(src, plans, thread_list)
     sweep = _Sweep(model.SerializeToString(), plans, runner, seed, (warmup, min_runs, min_time), progress)
     points, sessions = sweep.run(thread_list, batch_list, lengths, macs)
@@ -223,7 +229,7 @@ def profile_model(
     env = environment()
     env["session_options"] = sessions
     return ProfileReport(
-        model={"path": str(path), "sha256": sha256_file(path), "cost": summary(model),
+        model={"path": str(path), "sha256": sha256_file(path), "cost": cost,
                "inputs": [{"name": p.name, "dtype": p.dtype, "dims": list(p.dims), "vocab": p.vocab}
                           for p in plans],
                "fixed_time": axes.fixed_time, "fixed_batch": axes.fixed_batch},

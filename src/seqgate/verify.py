@@ -298,14 +298,6 @@ def _first_divergence(infos: list[TensorInfo], results: list[_SetResult]) -> dic
     return None
 
 
-def _versions() -> dict[str, str]:
-    from seqgate import __version__
-    from seqgate.frameworks import version_of
-
-    libs = {n: version_of(n) for n in ("numpy", "onnx", "onnxruntime", "keras", "tensorflow-cpu", "torch")}
-    return {"seqgate": __version__, **{k: v for k, v in libs.items() if v}}
-
-
 def verify_model(
     model_path: str | Path,
     source: str | Source,
@@ -374,6 +366,7 @@ def verify_model(
         from seqgate.verify_oracle import run_oracle
 
         oracle_out = run_oracle(model, probes, infos, results, onnx_runner, src_runner, tol)
+    env = environment()
     return VerifyReport(
         passed=first is None, tensors=entries, first_divergence=first,
         recordings=[r.recording.to_json() for r in results],
@@ -384,7 +377,8 @@ def verify_model(
         seed=seed, settings={"atol": tol.atol, "rtol": tol.rtol, "batch_size": batch_size, "states": states,
                              "synthetic": synthetic, "task": task, "tolerances_file": tolerances,
                              "overrides": [list(o) for o in tol.overrides]},
-        environment=environment(), versions=_versions(), oracle=oracle_out, warnings=warnings)
+        environment=env, versions={"seqgate": env["seqgate"], **env["libraries"]}, oracle=oracle_out,
+        warnings=warnings)
 
 
 def _run_all(comparer: _Comparer, recs: list[Recording], onnx_runner: Any, src_runner: Any, batch: int,

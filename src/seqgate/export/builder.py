@@ -50,6 +50,19 @@ class LayerRecord:
     nodes: tuple[str, ...]
 
 
+@dataclass(frozen=True)
+class Value:
+    """A value in the graph being built: ONNX name, static shape from the source (None = dynamic), dtype."""
+
+    name: str
+    shape: tuple[int | None, ...]
+    dtype: str = "float32"
+
+    @property
+    def rank(self) -> int:
+        return len(self.shape)
+
+
 def np_to_onnx_type(dtype: np.dtype[Any] | type) -> int:
     """ONNX TensorProto element type of a NumPy dtype."""
     return helper.np_dtype_to_tensor_dtype(np.dtype(dtype))

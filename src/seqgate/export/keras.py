@@ -21,21 +21,10 @@ from typing import Any
 import numpy as np
 
 from seqgate.errors import BadInputError, Refusal, Unsupported, UnsupportedModelError
-from seqgate.export.builder import DimSpec, GraphBuilder, np_to_onnx_type
+from seqgate.export.builder import DimSpec, GraphBuilder, Value, np_to_onnx_type
 from seqgate.keras_graph import graph_nodes, is_nested
 
-
-@dataclass
-class KV:
-    """A value in the graph being built: ONNX name, Keras static shape, dtype name."""
-
-    name: str
-    shape: tuple[int | None, ...]
-    dtype: str = "float32"
-
-    @property
-    def rank(self) -> int:
-        return len(self.shape)
+KV = Value  # a Keras tensor's counterpart in the graph being built
 
 
 @dataclass

@@ -2,8 +2,8 @@
 
 Contract:
 - The module is traced with a ``torch.fx.Tracer`` that keeps ``torch.nn`` modules (and
-  subclasses of supported ones that do not override ``forward``) as leaves. ``torch.onnx`` is
-  never used.
+  subclasses of supported ones that do not override ``forward``) as leaves; the ONNX graph
+  is then built by seqgate's own builder, node by node.
 - Graph inputs are ``forward``'s parameters under their own names (``torch_inputs`` says which
   and with what dims; batch and time are the symbolic dims ``batch`` and ``time``).
 - Graph outputs: a single returned tensor is ``output``; a returned tuple/list (nested ones

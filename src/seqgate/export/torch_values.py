@@ -25,22 +25,14 @@ from typing import Any
 import numpy as np
 
 from seqgate.errors import Refusal
-from seqgate.export.builder import GraphBuilder
+from seqgate.export.builder import GraphBuilder, Value
 
 INT64_MAX = int(np.iinfo(np.int64).max)
 
 
 @dataclass(frozen=True)
-class TV:
+class TV(Value):
     """A tensor value (see module docstring)."""
-
-    name: str
-    shape: tuple[int | None, ...]
-    dtype: str = "float32"
-
-    @property
-    def rank(self) -> int:
-        return len(self.shape)
 
     def axis(self, dim: int, extra: int = 0) -> int:
         """``dim`` made non-negative for a tensor of rank ``rank + extra``; refuses out of range."""

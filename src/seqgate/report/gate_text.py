@@ -110,30 +110,22 @@ def _case(suite: ET.Element, classname: str, name: str, passed: bool, message: s
         fail.text = message
 
 
+def _suite(root: ET.Element, name: str, items: list[dict[str, Any]]) -> ET.Element:
+    failures = sum(not i["passed"] for i in items)
+    return ET.SubElement(root, "testsuite", name=name, tests=str(len(items)), failures=str(failures),
+                         errors="0")
+
+
 def gate_junit(d: dict[str, Any]) -> bytes:
     """JUnit XML bytes (see the module docstring)."""
     root = ET.Element("testsuites", name="seqgate gate")
     checks = d["checks"]
-    suite = ET.SubElement(
-        root,
-        "testsuite",
-        name="gate",
-        tests=str(len(checks)),
-        failures=str(sum(not c["passed"] for c in checks)),
-        errors="0",
-    )
+    suite = _suite(root, "gate", checks)
     for c in checks:
         _case(suite, "gate", c["name"], c["passed"], c["detail"])
     budgets = (d.get("profile") or {}).get("budgets") or []
     if budgets:
-        bs = ET.SubElement(
-            root,
-            "testsuite",
-            name="latency budgets",
-            tests=str(len(budgets)),
-            failures=str(sum(not b["passed"] for b in budgets)),
-            errors="0",
-        )
+        bs = _suite(root, "latency budgets", budgets)
         for b in budgets:
             name = (f"T={b['seq_len']} batch={b['batch']} threads={b['threads']} "
                     f"p{b['percentile']}<={b['budget_ms']}ms")

@@ -10,19 +10,20 @@ from typing import Any
 from seqgate.files import write_text_atomic
 
 
-def _strict(x: Any) -> Any:
+def strict_json(x: Any) -> Any:
+    """``x`` with non-finite floats spelled as strings, so ``json.dumps(allow_nan=False)`` accepts it."""
     if isinstance(x, float) and not math.isfinite(x):
         return "nan" if math.isnan(x) else ("inf" if x > 0 else "-inf")
     if isinstance(x, dict):
-        return {str(k): _strict(v) for k, v in x.items()}
+        return {str(k): strict_json(v) for k, v in x.items()}
     if isinstance(x, list | tuple):
-        return [_strict(v) for v in x]
+        return [strict_json(v) for v in x]
     return x
 
 
 def verify_json(report: Any) -> str:
     """The report document as indented, strict JSON text."""
-    return json.dumps(_strict(report.to_json()), indent=2, sort_keys=False, allow_nan=False)
+    return json.dumps(strict_json(report.to_json()), indent=2, sort_keys=False, allow_nan=False)
 
 
 def write_verify_json(report: Any, path: str | Path) -> None:
