@@ -18,8 +18,9 @@ modules and ``contiguous``/``float``):
 - ``nn.Linear``: ``[batch, in_features]``;  ``nn.Conv1d``: ``[batch, C_in, time]``;
 - ``nn.Embedding``: ``[batch, time]`` of int64 (this also makes an ``--input`` spec int64).
 
-Other consumers (``x * 2``, ``torch.zeros_like(h0)``) are passed over; the first module of
-those kinds that reads the input, directly or through shape-keeping ops, decides. Through
+Other consumers (``torch.zeros_like(h0)``) are passed over; the first module of those kinds
+that reads the input, directly or through shape-keeping ops (activations, ``x - buffer``,
+``x / 2``, slicing with slices only such as ``x[:, -12:]``), decides. Through
 ``unsqueeze``/``transpose``/``permute`` its dims are mapped back (``x.transpose(1, 2)`` into a
 Conv1d gives ``[batch, time, C_in]``).
 
@@ -49,7 +50,8 @@ _PASS_MODULES = (
     "Hardtanh", "ReLU6", "Softsign", "Mish",
 )
 _PASS_METHODS = ("contiguous", "float", "to", "clone", "detach", "relu", "tanh", "sigmoid")
-_PASS_FUNCTIONS = ("relu", "tanh", "sigmoid", "dropout", "gelu", "silu")
+_PASS_FUNCTIONS = ("relu", "tanh", "sigmoid", "dropout", "gelu", "silu",
+                   "add", "sub", "mul", "truediv")  # x ∘ buffer or scalar: x's dims (broadcast)
 
 
 @dataclass(frozen=True)
@@ -201,7 +203,7 @@ def _guess(gm: Any, ph: Any) -> _Guess | None:
         used = [a for a in _flat(node.args) + _flat(list(node.kwargs.values())) if a in carry]
         if not used:
             continue
-        src = node.args[0] if node.args and node.args[0] in carry else None
+        src = node.args[0] if node.args and _carried(node.args[0], carry) else None
         if node.op == "call_module":
             m = gm.get_submodule(node.target)
             cls = type(m).__name__
@@ -216,13 +218,22 @@ def _guess(gm: Any, ph: Any) -> _Guess | None:
         elif src is None:
             continue
         elif (node.op == "call_method" and node.target in _PASS_METHODS) or (
-                node.op == "call_function" and getattr(node.target, "__name__", "") in _PASS_FUNCTIONS):
+                node.op == "call_function" and getattr(node.target, "__name__", "") in _PASS_FUNCTIONS
+        ) or _keeps_rank(node):
             carry[node] = carry[src]
         else:
             inv = _inverse_layout(node)
             if inv is not None:
                 carry[node] = lambda d, inv=inv, up=carry[src]: None if (v := inv(d)) is None else up(v)
     return None
+
+
+def _keeps_rank(node: Any) -> bool:
+    """``x[:, -12:]``, ``x[..., :3]``: an index of slices only keeps every axis (its size may change)."""
+    if node.op != "call_function" or getattr(node.target, "__name__", "") != "getitem" or len(node.args) != 2:
+        return False
+    index = node.args[1] if isinstance(node.args[1], tuple) else (node.args[1],)
+    return all(isinstance(i, slice) or i is Ellipsis for i in index)
 
 
 def _inverse_layout(node: Any) -> Any:
@@ -264,13 +275,14 @@ def _module_guess(m: Any, node: Any, carry: dict[Any, Any]) -> _Guess | None:
     first = node.args[0] if node.args else node.kwargs.get("input")
     if isinstance(m, nn.RNNBase):
         d = 2 if m.bidirectional else 1
-        if first in carry:
+        if _carried(first, carry):
             f = int(m.input_size)
             return _Guess(("batch", "time", f) if m.batch_first else ("time", "batch", f))
         hx = node.args[1] if len(node.args) > 1 else node.kwargs.get("hx")
-        pair = 2 if isinstance(m, nn.LSTM) and hx in carry else 0  # forward(x, hidden): hidden = (h0, c0)
+        # forward(x, hidden): hidden = (h0, c0)
+        pair = 2 if isinstance(m, nn.LSTM) and _carried(hx, carry) else 0
         return _Guess((int(m.num_layers) * d, "batch", int(m.hidden_size)), parts=pair)
-    if first not in carry:
+    if not _carried(first, carry):
         return None
     if isinstance(m, nn.Linear):
         return _Guess(("batch", int(m.in_features)))
@@ -281,7 +293,21 @@ def _module_guess(m: Any, node: Any, carry: dict[Any, Any]) -> _Guess | None:
     return None
 
 
+def _carried(arg: Any, carry: dict[Any, Any]) -> bool:
+    """Whether ``arg`` is an fx node that carries the placeholder.
+
+    Only nodes are looked up: fx arguments also hold slices, which are not hashable on
+    Python 3.11 (they are from 3.12 on), so ``slice in dict`` raises TypeError there.
+    """
+    from torch.fx import Node
+
+    return isinstance(arg, Node) and arg in carry
+
+
 def _flat(args: Any) -> list[Any]:
+    """Every fx node inside an argument structure (lists, tuples, dicts, slices)."""
+    from torch.fx import Node
+
     out: list[Any] = []
     if isinstance(args, list | tuple):
         for a in args:
@@ -289,7 +315,9 @@ def _flat(args: Any) -> list[Any]:
     elif isinstance(args, dict):
         for a in args.values():
             out.extend(_flat(a))
-    else:
+    elif isinstance(args, slice):
+        out.extend(_flat([args.start, args.stop, args.step]))
+    elif isinstance(args, Node):
         out.append(args)
     return out
 
