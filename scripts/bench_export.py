@@ -34,8 +34,8 @@ TARGET = 1.03
 
 def exported_graph(input_size: int, hidden: int, seed: int) -> Any:
     """A Keras LSTM with seeded random weights, exported by seqgate (in memory)."""
-    from seqgate.export.keras import export_keras_model
-    from seqgate.frameworks import import_keras
+    from seqgate.export.keras.walk import export_keras_model
+    from seqgate.util.frameworks import import_keras
 
     keras = import_keras()
     rng = np.random.default_rng(seed)

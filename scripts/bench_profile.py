@@ -30,8 +30,8 @@ LOW, HIGH = 0.95, 1.05
 def _export(d: Path) -> Path:
     import numpy as np
 
-    from seqgate.export import export_source
-    from seqgate.frameworks import import_keras
+    from seqgate.export.run import export_source
+    from seqgate.util.frameworks import import_keras
 
     keras = import_keras()
     m = keras.Sequential([keras.Input((None, 8)), keras.layers.LSTM(64), keras.layers.Dense(4)])
@@ -58,9 +58,9 @@ def _bare(sess: object, feeds: dict[str, object], n: int) -> float:
 def main() -> int:
     import onnx
 
-    from seqgate.profile import make_session, ort_call, time_call
-    from seqgate.profile_inputs import make_inputs, plan_inputs
-    from seqgate.profile_stats import summarize_ns
+    from seqgate.profile.inputs import make_inputs, plan_inputs
+    from seqgate.profile.run import make_session, ort_call, time_call
+    from seqgate.profile.stats import summarize_ns
 
     with tempfile.TemporaryDirectory() as tmp:
         path = _export(Path(tmp))

@@ -56,7 +56,7 @@ def make():
 
 
 def make_keras(d: Path) -> Path:
-    from seqgate.frameworks import import_keras
+    from seqgate.util.frameworks import import_keras
 
     k = import_keras()
     x = k.Input((None, FEATURES), name="x")
@@ -87,12 +87,12 @@ def _loop(fn: Any, x: np.ndarray) -> float:
 def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, rec: Path, x: np.ndarray) -> None:
     import onnx
 
-    from seqgate.compare import load_tolerances
-    from seqgate.probes import read_probe_map
-    from seqgate.runners.onnx import OnnxRunner
-    from seqgate.sources import parse_source
-    from seqgate.verify import _Comparer, _output_dims, _tensor_infos, make_source_runner, verify_model
-    from seqgate.windows import input_specs, load_recording
+    from seqgate.onnxfile.probes import read_probe_map
+    from seqgate.runtimes.onnx import OnnxRunner
+    from seqgate.sources.spec import parse_source
+    from seqgate.verify.compare import load_tolerances
+    from seqgate.verify.recordings import input_specs, load_recording
+    from seqgate.verify.run import _Comparer, _output_dims, _tensor_infos, make_source_runner, verify_model
 
     model = onnx.load(str(onnx_path))
     probes = read_probe_map(model)
@@ -134,7 +134,7 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
 CHILD = r'''
 import json, resource, sys, tracemalloc
 tracemalloc.start()
-from seqgate.verify import verify_model
+from seqgate.verify.run import verify_model
 rep = verify_model(sys.argv[1], sys.argv[2], None, windows=[sys.argv[3]], batch_size=int(sys.argv[4]))
 cur, peak = tracemalloc.get_traced_memory()
 print(json.dumps({"passed": rep.passed, "maxrss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
@@ -161,7 +161,7 @@ def memory(d: Path, onnx_path: Path, keras_path: Path) -> None:
 
 
 def main() -> None:
-    from seqgate.export import export_source
+    from seqgate.export.run import export_source
 
     with tempfile.TemporaryDirectory() as tmp:
         d = Path(tmp)

@@ -67,7 +67,7 @@ def write_csv(path: Path, sensors: np.ndarray, pressure: np.ndarray) -> None:
 
 def train_forecaster(out: Path, rng: np.random.Generator) -> None:
     os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "3")
-    from seqgate.frameworks import import_keras
+    from seqgate.util.frameworks import import_keras
 
     keras = import_keras()
     import tensorflow as tf

@@ -20,6 +20,6 @@ def rng() -> np.random.Generator:
 @pytest.fixture(scope="session")
 def keras():  # type: ignore[no-untyped-def]
     """Keras 3 on TensorFlow, imported quietly once per session."""
-    from seqgate.frameworks import import_keras
+    from seqgate.util.frameworks import import_keras
 
     return import_keras()

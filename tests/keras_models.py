@@ -21,7 +21,7 @@ RTOL = 1e-4
 
 
 def keras() -> Any:
-    from seqgate.frameworks import import_keras
+    from seqgate.util.frameworks import import_keras
 
     return import_keras()
 
@@ -100,7 +100,7 @@ def keras_outputs(model: Any, feeds: Sequence[Array], compiled: bool = False) ->
 
 def export(model: Any, opset: int = 17) -> Any:
     """Export an in-memory Keras model with seqgate (no file); return the ONNX ModelProto."""
-    from seqgate.export.keras import export_keras_model
+    from seqgate.export.keras.walk import export_keras_model
 
     return export_keras_model(model, opset, {"seqgate.version": "test"})
 
@@ -167,8 +167,8 @@ def inputs_for(model: Any, rng: np.random.Generator, batch: int = 2, time: int =
 
 def save(model: Any, path: Path) -> Path:
     """Save to ``path`` (.keras or legacy .h5) quietly; return the path."""
-    from seqgate.frameworks import _quiet_stderr
+    from seqgate.util.frameworks import quiet_stderr
 
-    with _quiet_stderr():
+    with quiet_stderr():
         model.save(str(path))
     return path

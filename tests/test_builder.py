@@ -13,9 +13,9 @@ from scipy import special
 
 import keras_models as km
 from seqgate.errors import Refusal
-from seqgate.export.activations import STANDALONE_KINDS, cell_activation, emit_activation
-from seqgate.export.builder import FLOAT, GraphBuilder
-from seqgate.export.recurrent import CellActivation, activation_attrs
+from seqgate.export.core.activations import STANDALONE_KINDS, cell_activation, emit_activation
+from seqgate.export.core.builder import FLOAT, GraphBuilder
+from seqgate.export.core.recurrent import CellActivation, activation_attrs
 
 
 def _run(b: GraphBuilder, feeds: dict[str, np.ndarray]) -> list[np.ndarray]:

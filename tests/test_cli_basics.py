@@ -8,7 +8,7 @@ import sys
 from typer.testing import CliRunner
 
 from seqgate import __version__
-from seqgate.cli import app
+from seqgate.cli.app import app
 
 runner = CliRunner()
 
@@ -29,7 +29,7 @@ def test_version() -> None:
 def test_help_imports_no_framework() -> None:
     code = (
         "import sys\n"
-        "from seqgate.cli import app\n"
+        "from seqgate.cli.app import app\n"
         "from typer.testing import CliRunner\n"
         "CliRunner().invoke(app, ['--help'])\n"
         "CliRunner().invoke(app, ['export', '--help'])\n"
@@ -44,7 +44,7 @@ def test_help_imports_no_framework() -> None:
 def test_unexpected_error_is_one_paragraph_exit_4(monkeypatch, capsys) -> None:  # type: ignore[no-untyped-def]
     import pytest
 
-    import seqgate.cli as cli
+    import seqgate.cli.app as cli
 
     def boom() -> None:
         raise RuntimeError("simulated fault\nsecond line")

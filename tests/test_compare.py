@@ -10,7 +10,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from seqgate.compare import (
+from seqgate.errors import BadInputError
+from seqgate.verify.compare import (
     HIST_REL_WIDTH,
     REL_FLOOR,
     TensorStats,
@@ -18,7 +19,6 @@ from seqgate.compare import (
     merge_stats,
     within_tolerance,
 )
-from seqgate.errors import BadInputError
 
 finite32 = st.floats(-1e6, 1e6, allow_nan=False, width=32)
 

@@ -19,7 +19,7 @@ import onnx
 import pytest
 from onnx import TensorProto, helper, numpy_helper
 
-from seqgate.costs import macs_for_length, node_costs, parameter_bytes, summary, time_dim_names
+from seqgate.onnxfile.costs import macs_for_length, node_costs, parameter_bytes, summary, time_dim_names
 
 I, H = 3, 2  # noqa: E741 (input and hidden sizes, as in the equations)
 

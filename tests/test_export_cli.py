@@ -17,7 +17,7 @@ import pytest
 from typer.testing import CliRunner
 
 import keras_models as km
-from seqgate.cli import app
+from seqgate.cli.app import app
 
 pytestmark = pytest.mark.filterwarnings("ignore:__array__ implementation:DeprecationWarning")
 runner = CliRunner()

@@ -14,7 +14,7 @@ import pytest
 from onnx import numpy_helper
 from typer.testing import CliRunner
 
-from seqgate.cli import app
+from seqgate.cli.app import app
 
 DEMO = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
 runner = CliRunner()

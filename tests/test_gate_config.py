@@ -7,7 +7,7 @@ from pathlib import Path
 import pytest
 
 from seqgate.errors import EXIT_BAD_INPUT, BadInputError
-from seqgate.gate_config import load_gate_config
+from seqgate.gate.config import load_gate_config
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 
@@ -111,7 +111,7 @@ def test_booleans_are_not_numbers(tmp_path: Path) -> None:
 def test_example_config_mentions_every_key() -> None:
     # fixtures/gate_example.toml is the commented reference: every key of the schema appears in it,
     # set or commented out.
-    from seqgate.gate_config import _BUDGET_KEYS, _SCHEMA, _TOLERANCE_KEYS
+    from seqgate.gate.config import _BUDGET_KEYS, _SCHEMA, _TOLERANCE_KEYS
 
     text = (FIXTURES / "gate_example.toml").read_text(encoding="utf-8")
     keys = {k for table in _SCHEMA.values() for k in table} - {"tolerance", "budget"}

@@ -18,7 +18,7 @@ from onnx import helper
 from typer.testing import CliRunner
 
 import keras_models as km
-from seqgate.cli import app
+from seqgate.cli.app import app
 
 pytestmark = pytest.mark.filterwarnings("ignore:__array__ implementation:DeprecationWarning")
 runner = CliRunner()
@@ -27,7 +27,7 @@ I, H_LSTM, H_GRU, OUT = 3, 5, 4, 2  # noqa: E741  (I = input size, the papers' l
 
 @pytest.fixture(scope="module")
 def exported(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    from seqgate.export import export_source
+    from seqgate.export.run import export_source
 
     k = km.keras()
     L = k.layers
@@ -92,7 +92,7 @@ def test_table_output(exported: Path) -> None:
 
 
 def test_fixed_time_lstm_costs(tmp_path: Path) -> None:
-    from seqgate.export import export_source
+    from seqgate.export.run import export_source
 
     rng = np.random.default_rng(1)
     model = km.functional((12, I), lambda x: km.recurrent("lstm", H_LSTM, name="lstm")(x), rng, name="fixed")
@@ -133,7 +133,7 @@ def test_truncated_export(exported: Path, tmp_path: Path) -> None:
 def test_inspect_refuses_files_that_are_not_onnx(tmp_path: Path) -> None:
     from typer.testing import CliRunner
 
-    from seqgate.cli import app
+    from seqgate.cli.app import app
 
     keras_file = tmp_path / "model.keras"
     keras_file.write_bytes(b"PK\x03\x04")

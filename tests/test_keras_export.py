@@ -183,7 +183,7 @@ def _stack_model(rng: np.random.Generator) -> Any:
 
 @pytest.mark.parametrize("suffix", [".keras", ".h5"])
 def test_saved_file_round_trip(suffix: str, tmp_path: Path, rng: np.random.Generator) -> None:
-    from seqgate.export import export_source
+    from seqgate.export.run import export_source
 
     model = _stack_model(rng)
     src = km.save(model, tmp_path / f"m{suffix}")
@@ -199,7 +199,7 @@ def test_saved_file_round_trip(suffix: str, tmp_path: Path, rng: np.random.Gener
 @pytest.fixture(scope="module")
 def exported(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     """One saved Functional model, exported twice, for the structure tests."""
-    from seqgate.export import export_source
+    from seqgate.export.run import export_source
 
     rng = np.random.default_rng(7)
     k = km.keras()

@@ -84,7 +84,7 @@ def test_random_stack_matches_keras(specs: list[dict[str, Any]], last_seqs: bool
 @given(spec=layer_spec(), batch=st.integers(1, 3), time=st.integers(1, 6), seed=st.integers(0, 2**16))
 def test_random_layer_probes_match_reference(spec: dict[str, Any], batch: int, time: int, seed: int) -> None:
     """Every probe of a random layer against the float64 oracle on the layer's own weights."""
-    from seqgate.probes import read_probe_map, to_canonical, with_probe_outputs
+    from seqgate.onnxfile.probes import read_probe_map, to_canonical, with_probe_outputs
 
     rng = np.random.default_rng(seed)
     layer = _layer(spec, True, False)

@@ -185,7 +185,7 @@ def _keras_states(model: Any, layer: Any, feeds: list[np.ndarray]) -> dict[str, 
 
 
 def test_probes_match_keras_states(rng: np.random.Generator) -> None:
-    from seqgate.probes import read_probe_map, to_canonical, with_probe_outputs
+    from seqgate.onnxfile.probes import read_probe_map, to_canonical, with_probe_outputs
 
     k = km.keras()
 

@@ -13,7 +13,7 @@ import onnx
 import pytest
 
 import keras_models as km
-from seqgate.export import DEFAULT_OPSET, MAX_OPSET, MIN_OPSET, check_opset
+from seqgate.export.run import DEFAULT_OPSET, MAX_OPSET, MIN_OPSET, check_opset
 
 pytestmark = pytest.mark.filterwarnings("ignore:__array__ implementation:DeprecationWarning")
 

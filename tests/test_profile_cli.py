@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from seqgate.cli import app
+from seqgate.cli.app import app
 
 runner = CliRunner()
 FAST = ["--warmup", "1", "--min-runs", "3", "--min-time", "0", "--seq-lens", "1,6"]
@@ -49,7 +49,7 @@ def build():
 
 @pytest.fixture(scope="module")
 def exported(tmp_path_factory: pytest.TempPathFactory, keras: Any) -> dict[str, Path]:
-    from seqgate.export import export_source
+    from seqgate.export.run import export_source
 
     d = tmp_path_factory.mktemp("profile")
     m = keras.Sequential([keras.Input((None, I)), keras.layers.LSTM(H), keras.layers.Dense(OUT)])

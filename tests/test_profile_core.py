@@ -13,8 +13,8 @@ import pytest
 from onnx import TensorProto, helper, numpy_helper
 
 from seqgate.errors import BadInputError
-from seqgate.profile import profile_model, time_call, timer_overhead
-from seqgate.profile_inputs import make_inputs, model_axes, plan_inputs
+from seqgate.profile.inputs import make_inputs, model_axes, plan_inputs
+from seqgate.profile.run import profile_model, time_call, timer_overhead
 
 I, H, VOCAB = 3, 4, 50  # noqa: E741 (input and hidden sizes)
 
@@ -155,7 +155,7 @@ def test_fixed_time_limits_the_sweep(tmp_path: Path) -> None:
 
 def test_python_api_calls_profile_model(tmp_path: Path) -> None:
     import seqgate
-    from seqgate.profile_result import ProfileReport
+    from seqgate.profile.result import ProfileReport
 
     r = seqgate.profile(save(lstm_model(), tmp_path / "m.onnx"), seq_lens=[3], warmup=0, min_runs=2,
                         min_time=0.0)

@@ -7,7 +7,7 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from seqgate.cli import app
+from seqgate.cli.app import app
 from test_profile_core import lstm_model, save
 
 runner = CliRunner()

@@ -9,7 +9,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from seqgate.profile_stats import LineFit, fit_line, longest_within, percentile, summarize_ns
+from seqgate.profile.stats import LineFit, fit_line, longest_within, percentile, summarize_ns
 
 samples = st.lists(st.integers(min_value=1, max_value=10**9), min_size=1, max_size=300)
 

@@ -56,7 +56,7 @@ def _expected_code(line: str) -> int:
 
 def _seqgate() -> list[str]:
     exe = REPO / ".venv" / "bin" / "seqgate"
-    return [str(exe)] if exe.exists() else [sys.executable, "-m", "seqgate.cli"]
+    return [str(exe)] if exe.exists() else [sys.executable, "-m", "seqgate.cli.app"]
 
 
 def _workdir(tmp_path: Path) -> Path:
@@ -143,7 +143,7 @@ def _toml_block(first_line_prefix: str) -> str:
 
 
 def test_readme_tolerance_example_means_what_the_text_says(tmp_path: Path) -> None:
-    from seqgate.compare import load_tolerances
+    from seqgate.verify.compare import load_tolerances
 
     path = tmp_path / "tolerances.toml"
     path.write_text(_toml_block("atol"), encoding="utf-8")
@@ -185,8 +185,8 @@ def _reference_rows() -> dict[tuple[str, str], str]:
 
 
 def test_readme_config_reference_lists_every_key_with_its_default() -> None:
-    from seqgate.compare import DEFAULT_ATOL, DEFAULT_RTOL
-    from seqgate.gate_config import _BUDGET_KEYS, _SCHEMA, _TOLERANCE_KEYS
+    from seqgate.gate.config import _BUDGET_KEYS, _SCHEMA, _TOLERANCE_KEYS
+    from seqgate.verify.compare import DEFAULT_ATOL, DEFAULT_RTOL
 
     rows = _reference_rows()
     expected: dict[tuple[str, str], object] = {}

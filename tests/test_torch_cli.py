@@ -18,10 +18,10 @@ import pytest
 import torch
 from typer.testing import CliRunner
 
-from seqgate.cli import app
-from seqgate.probes import read_metadata
-from seqgate.sources import parse_source
-from seqgate.sources_torch import load_torch, load_torch_with_info
+from seqgate.cli.app import app
+from seqgate.onnxfile.probes import read_metadata
+from seqgate.sources.spec import parse_source
+from seqgate.sources.torch import load_torch, load_torch_with_info
 from torch_models import FACTORY_FILE, run_onnx, torch_outputs, worst
 
 torch.set_num_threads(1)

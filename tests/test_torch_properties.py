@@ -16,7 +16,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from torch import nn as tnn
 
-from seqgate.export import MAX_OPSET, MIN_OPSET
+from seqgate.export.run import MAX_OPSET, MIN_OPSET
 from torch_models import check, export, rand, randomize, run_onnx, torch_outputs, worst
 from torch_reference import run_module
 

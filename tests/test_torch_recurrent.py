@@ -18,7 +18,7 @@ from onnx.reference import ReferenceEvaluator
 
 from reference_equations import onnx_gru, onnx_lstm, onnx_rnn
 from seqgate.errors import UnsupportedModelError
-from seqgate.probes import read_probe_map, to_canonical, with_probe_outputs
+from seqgate.onnxfile.probes import read_probe_map, to_canonical, with_probe_outputs
 from torch_models import check, export, nn, rand, randomize, run_onnx, torch_outputs, worst
 from torch_reference import run_module
 

@@ -20,9 +20,9 @@ import pytest
 from onnx import numpy_helper
 from typer.testing import CliRunner
 
-from seqgate.cli import app
-from seqgate.probes import read_probe_map
-from seqgate.verify import verify_model
+from seqgate.cli.app import app
+from seqgate.onnxfile.probes import read_probe_map
+from seqgate.verify.run import verify_model
 
 H = 6
 runner = CliRunner()
@@ -41,7 +41,7 @@ def stack(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     out = k.layers.Dense(3, activation="softmax", name="probs")(h)
     model = randomize(k.Model(inp, out), np.random.default_rng(7))
     model.save(d / "m.keras")
-    from seqgate.export import export_source
+    from seqgate.export.run import export_source
 
     export_source(d / "m.keras", d / "m.onnx")
     np.savez(d / "rec.npz", x=np.random.default_rng(8).normal(size=(24, 9, 3)).astype(np.float32))
@@ -197,7 +197,7 @@ def test_nested_bidirectional_backwards_and_initial_state_pass(tmp_path: Path) -
     y = k.layers.SimpleRNN(2, go_backwards=True, return_sequences=True, name="r")(bi)
     model = randomize(k.Model([x, s], y), np.random.default_rng(2))
     model.save(tmp_path / "n.keras")
-    from seqgate.export import export_source
+    from seqgate.export.run import export_source
 
     export_source(tmp_path / "n.keras", tmp_path / "n.onnx")
     rng = np.random.default_rng(4)

@@ -71,8 +71,8 @@ def nets(tmp_path_factory: pytest.TempPathFactory) -> Path:
 def test_honest_export_passes(nets: Path, factory: str, arrays: dict[str, tuple[str, tuple[int, ...]]]) -> None:
     import torch
 
-    from seqgate.export import export_source
-    from seqgate.verify import verify_model
+    from seqgate.export.run import export_source
+    from seqgate.verify.run import verify_model
 
     torch.manual_seed(3)
     src = f"{nets / 'nets.py'}:{factory}"

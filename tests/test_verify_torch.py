@@ -18,7 +18,7 @@ import pytest
 from onnx import numpy_helper
 from typer.testing import CliRunner
 
-from seqgate.cli import app
+from seqgate.cli.app import app
 
 torch = pytest.importorskip("torch")
 runner = CliRunner()

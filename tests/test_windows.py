@@ -9,11 +9,11 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from seqgate.cli import app
+from seqgate.cli.app import app
 from seqgate.errors import BadInputError
-from seqgate.windows import InputSpec, MappedArray, StreamedArray, load_recording, open_arrays
-from seqgate.windows_csv import build_recording
-from seqgate.windows_synthetic import synthetic_sets
+from seqgate.verify.csv_windows import build_recording
+from seqgate.verify.recordings import InputSpec, MappedArray, StreamedArray, load_recording, open_arrays
+from seqgate.verify.synthetic import synthetic_sets
 
 SPEC = [InputSpec("x", np.dtype("float32"), ("batch", "time", 3))]
 runner = CliRunner()
@@ -176,7 +176,7 @@ def test_text_column_is_refused_unless_left_out(tmp_path: Path) -> None:
 
 # ----- synthetic -----------------------------------------------------------------------------
 def test_synthetic_sets_are_seeded_scaled_and_long_only_for_dynamic_time(rng: np.random.Generator) -> None:
-    from seqgate.windows import FeatureStats
+    from seqgate.verify.recordings import FeatureStats
 
     st = {"x": FeatureStats(np.array([1.0, -2.0, 0.0]), np.array([0.5, 2.0, 0.0]), np.zeros(3), np.ones(3),
                             (6, 3))}

@@ -9,8 +9,8 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper
 
-from seqgate.windows import input_specs, to_model_layout
-from seqgate.windows_synthetic import synthetic_sets
+from seqgate.verify.recordings import input_specs, to_model_layout
+from seqgate.verify.synthetic import synthetic_sets
 
 
 def _model(inputs: list[tuple[str, int, list[object]]]) -> onnx.ModelProto:

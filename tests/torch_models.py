@@ -38,7 +38,7 @@ def randomize(module: Any, seed: int = 0, scale: float = 0.5) -> Any:
 
 def export(module: Any, inputs: list[str] | None = None, opset: int = 17) -> Any:
     """The ONNX ModelProto of ``module`` (seqgate's PyTorch capture)."""
-    from seqgate.export.torch import export_torch_module
+    from seqgate.export.torch.capture import export_torch_module
 
     return export_torch_module(module, opset, {"seqgate.version": "test"}, inputs=inputs)
 

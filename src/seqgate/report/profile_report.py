@@ -15,7 +15,7 @@ import io
 import os
 from typing import Any
 
-from seqgate.files import write_atomic, write_text_atomic
+from seqgate.util.files import write_atomic, write_text_atomic
 
 CSV_COLUMNS = (
     "seq_len", "batch", "threads", "runtime", "p50_ms", "p90_ms", "p99_ms", "min_ms", "max_ms",

@@ -7,7 +7,7 @@ import math
 from pathlib import Path
 from typing import Any
 
-from seqgate.files import write_text_atomic
+from seqgate.util.files import write_text_atomic
 
 
 def strict_json(x: Any) -> Any:

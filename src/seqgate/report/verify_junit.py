@@ -10,7 +10,7 @@ import xml.etree.ElementTree as ET
 from pathlib import Path
 from typing import Any
 
-from seqgate.files import write_atomic
+from seqgate.util.files import write_atomic
 
 
 def _summary(name: str, res: dict[str, Any], atol: float, rtol: float) -> str:

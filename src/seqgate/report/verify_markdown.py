@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from seqgate.files import write_text_atomic
+from seqgate.util.files import write_text_atomic
 
 
 def _g(x: Any) -> str:

@@ -1,0 +1,163 @@
+"""The ``seqgate`` command line: thin typed commands that call the library and print with rich.
+
+Exit codes: 0 passed; 1 a check failed; 2 bad usage or bad input; 3 unsupported model;
+4 an internal error (a bug in seqgate), reported in one paragraph without a traceback.
+No framework is imported until a command needs it, so ``seqgate --help`` is fast.
+"""
+
+from __future__ import annotations
+
+import importlib
+import json
+import os
+import sys
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from seqgate import __version__
+from seqgate.errors import EXIT_INTERNAL, SeqgateError
+
+app = typer.Typer(
+    name="seqgate",
+    help="Export recurrent Keras/PyTorch models to ONNX, verify every hidden state, "
+    "profile CPU latency and gate releases.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+
+def _fail(e: SeqgateError) -> typer.Exit:
+    from rich.console import Console
+    from rich.markup import escape
+
+    # escape: messages quote shapes like [batch, time, features], which rich would read as markup
+    console = Console(stderr=True, highlight=False, soft_wrap=True)
+    console.print(f"[bold red]error:[/] {escape(str(e))}", markup=True)
+    return typer.Exit(e.exit_code)
+
+
+def _version(value: bool) -> None:
+    if value:
+        typer.echo(f"seqgate {__version__}")
+        raise typer.Exit(0)
+
+
+@app.callback()
+def _root(
+    version: Annotated[bool, typer.Option("--version", callback=_version, is_eager=True,
+                                          help="Print the version and exit.")] = False,
+) -> None:
+    """seqgate: a release gate for recurrent sequence models shipped through ONNX Runtime."""
+
+
+@app.command()
+def export(
+    source: Annotated[str, typer.Argument(help="Keras .keras/.h5 file, or FILE.py:FACTORY for PyTorch.")],
+    out: Annotated[Path, typer.Option("-o", "--out", help="Where to write the ONNX file.")],
+    opset: Annotated[int | None, typer.Option(help="ONNX opset (default 17).")] = None,
+    force: Annotated[bool, typer.Option("--force", help="Overwrite OUT if it exists.")] = False,
+    weights: Annotated[str | None, typer.Option(help="PyTorch state dict (.pt) for a factory source.")] = None,
+    input_spec: Annotated[list[str] | None, typer.Option(
+        "--input", help="PyTorch input NAME:DIM,DIM,... (symbolic names or integers); repeatable.")] = None,
+) -> None:
+    """Write the ONNX graph of a trained model, with native RNN/GRU/LSTM ops and a probe map."""
+    from seqgate.export.run import DEFAULT_OPSET, export_source
+
+    try:
+        options = {"inputs": input_spec} if input_spec else {}
+        res = export_source(source, out, opset or DEFAULT_OPSET, force, weights, **options)
+    except SeqgateError as e:
+        raise _fail(e) from None
+    n_nodes = len(res.model.graph.node)
+    typer.echo(f"wrote {res.path} (opset {res.opset}, {n_nodes} nodes, {res.probes} probes)")
+
+
+@app.command()
+def inspect(
+    model: Annotated[Path, typer.Argument(help="ONNX file written by seqgate export.")],
+    as_json: Annotated[bool, typer.Option("--json", help="Print JSON instead of tables.")] = False,
+) -> None:
+    """Show an exported file: inputs, outputs, layers with costs, probes and metadata."""
+    from seqgate.onnxfile.inspect import describe
+    from seqgate.onnxfile.load import load_onnx
+
+    try:
+        info = describe(load_onnx(model))
+    except SeqgateError as e:
+        raise _fail(e) from None
+    if as_json:
+        typer.echo(json.dumps(info, indent=2, sort_keys=True))
+        return
+    _print_inspection(info)
+
+
+def _print_inspection(info: dict) -> None:  # type: ignore[type-arg]
+    from rich.console import Console
+    from rich.table import Table
+
+    c = Console(highlight=False)
+    io = Table(title=f"tensors (opset {info['opset']})")
+    for col in ("role", "name", "dtype", "dims"):
+        io.add_column(col)
+    for role in ("inputs", "outputs"):
+        for t in info[role]:
+            io.add_row(role[:-1], t["name"], t["dtype"], str(t["dims"]))
+    c.print(io)
+    lt = Table(title="layers")
+    for col in ("layer", "kind", "ONNX nodes", "params", "MACs/step", "MACs/sequence"):
+        lt.add_column(col, justify="right" if col.startswith(("params", "MACs")) else "left")
+    for r in info["layers"]:
+        lt.add_row(r["layer"], r["kind"], " ".join(r["nodes"]) or "(none at inference)",
+                   f"{r['params']:,}", f"{r['macs_per_step']:,}", f"{r['macs_per_sequence']:,}")
+    tot = info["totals"]
+    lt.add_row("total", "", "", f"{tot['params']:,}", f"{tot['macs_per_step']:,}",
+               f"{tot['macs_per_sequence']:,}", style="bold")
+    c.print(lt)
+    pt = Table(title=f"probes ({len(info['probes'])})")
+    for col in ("probe", "kind", "layer", "direction", "ONNX value"):
+        pt.add_column(col)
+    for p in info["probes"]:
+        pt.add_row(p["name"], p["kind"], p["layer"], p["direction"], p["value"])
+    c.print(pt)
+    mt = Table(title="metadata")
+    mt.add_column("key")
+    mt.add_column("value")
+    for k, v in sorted(info["metadata"].items()):
+        mt.add_row(k, v)
+    c.print(mt)
+
+
+# Each command module defines ``register(app)``; list it here so ``seqgate --help`` shows it.
+# Command modules must import no framework at module level.
+COMMAND_MODULES: tuple[str, ...] = ("seqgate.cli.verify", "seqgate.cli.profile", "seqgate.cli.gate")
+
+for _module in COMMAND_MODULES:
+    importlib.import_module(_module).register(app)
+
+
+def main() -> None:
+    """Console-script entry point."""
+    try:
+        app()
+    except SeqgateError as e:  # a command that forgot to translate
+        raise SystemExit(_fail(e).exit_code) from None
+    except KeyboardInterrupt:
+        sys.stderr.write("interrupted\n")
+        raise SystemExit(130) from None
+    except Exception as e:  # a bug in seqgate: say so in one paragraph, keep the traceback opt-in
+        if os.environ.get("SEQGATE_DEBUG"):
+            raise
+        first = (str(e).strip().splitlines() or [""])[0][:400]
+        sys.stderr.write(
+            f"internal error: seqgate failed unexpectedly ({type(e).__name__}: {first}). This is a bug in "
+            f"seqgate, not in your files as far as it can tell; please report it with the command line. "
+            f"Run again with SEQGATE_DEBUG=1 to see the traceback.\n"
+        )
+        raise SystemExit(EXIT_INTERNAL) from None
+
+
+if __name__ == "__main__":
+    main()

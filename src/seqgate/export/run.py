@@ -1,0 +1,104 @@
+"""Export a model source to an ONNX file: ``export_source`` is the whole job of ``seqgate export``.
+
+Opset: the default is 17, the first opset with a native LayerNormalization, so every op seqgate
+emits is native and the file also runs on onnxruntime releases from 1.14 on (edge devices
+often lag). The accepted range is ``MIN_OPSET..MAX_OPSET``; every value in it is exported and
+run under onnxruntime 1.32 by the tests.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from seqgate import __version__
+from seqgate.errors import BadInputError
+from seqgate.sources.keras import load_keras
+from seqgate.sources.spec import Source, parse_source
+from seqgate.util.files import check_writable, sha256_file, write_atomic
+
+DEFAULT_OPSET = 17
+MIN_OPSET = 17
+MAX_OPSET = 28  # highest onnx 1.23 knows; every opset in range runs on onnxruntime 1.32 (tests/test_opsets.py)
+
+
+@dataclass(frozen=True)
+class ExportResult:
+    """What ``export_source`` wrote."""
+
+    path: Path
+    model: Any  # onnx.ModelProto
+    source: Source
+    probes: int
+    opset: int
+
+
+def check_opset(opset: int) -> int:
+    if not MIN_OPSET <= opset <= MAX_OPSET:
+        raise BadInputError(
+            f"--opset {opset} is outside the supported range {MIN_OPSET}..{MAX_OPSET} "
+            f"(below {MIN_OPSET} LayerNormalization is not native; above {MAX_OPSET} is not "
+            f"checked against onnxruntime). Pick a value in that range; default {DEFAULT_OPSET}."
+        )
+    return opset
+
+
+def source_metadata(src: Source, framework_version: str) -> dict[str, str]:
+    """The provenance written to metadata_props (no absolute paths: output stays reproducible)."""
+    meta = {
+        "seqgate.version": __version__,
+        "seqgate.source.framework": src.framework,
+        "seqgate.source.framework_version": framework_version,
+        "seqgate.source.text": _portable_text(src),
+    }
+    if src.path is not None:
+        meta["seqgate.source.file"] = src.path.name
+        meta["seqgate.source.sha256"] = sha256_file(src.path)
+    if src.weights is not None:
+        meta["seqgate.source.weights"] = src.weights.name
+        meta["seqgate.source.weights_sha256"] = sha256_file(src.weights)
+    return meta
+
+
+def _portable_text(src: Source) -> str:
+    """The source as typed, without directories, so exports made from any working dir match."""
+    if src.framework == "torch" and src.path is not None and src.factory:
+        return f"{src.path.name}:{src.factory}"
+    return Path(src.text).name if src.framework == "keras" else src.text
+
+
+def build_onnx(src: Source, opset: int = DEFAULT_OPSET, **options: Any) -> Any:
+    """Load ``src`` and return its ONNX ModelProto (nothing is written)."""
+    check_opset(opset)
+    if src.framework == "keras":
+        from seqgate.export.keras.walk import export_keras_model
+        from seqgate.util.frameworks import version_of
+
+        assert src.path is not None
+        model = load_keras(src.path)
+        return export_keras_model(model, opset, source_metadata(src, version_of("keras")))
+    from seqgate.export.torch.capture import export_torch_source  # type: ignore[import-not-found]
+
+    return export_torch_source(src, opset, **options)
+
+
+def export_source(
+    source: str | Source,
+    out: str | Path,
+    opset: int = DEFAULT_OPSET,
+    force: bool = False,
+    weights: str | None = None,
+    **options: Any,
+) -> ExportResult:
+    """Export ``source`` to ``out`` atomically; refuse to overwrite unless ``force``."""
+    from seqgate.onnxfile.probes import read_probe_map
+
+    src = source if isinstance(source, Source) else parse_source(source, weights)
+    out_path = Path(out)
+    check_writable(out_path, force)
+    check_opset(opset)
+    model = build_onnx(src, opset, **options)
+    data = model.SerializeToString(deterministic=True)
+    write_atomic(out_path, data)
+    return ExportResult(out_path, model, src, len(read_probe_map(model)), opset)

@@ -1,0 +1,450 @@
+"""PyTorch capture: trace ``forward`` with ``torch.fx.symbolic_trace`` and map each node by table.
+
+Contract:
+- The module is traced with a ``torch.fx.Tracer`` that keeps ``torch.nn`` modules (and
+  subclasses of supported ones that do not override ``forward``) as leaves; the ONNX graph
+  is then built by seqgate's own builder, node by node.
+- Graph inputs are ``forward``'s parameters under their own names (``torch_inputs`` says which
+  and with what dims; batch and time are the symbolic dims ``batch`` and ``time``).
+- Graph outputs: a single returned tensor is ``output``; a returned tuple/list (nested ones
+  are flattened depth first, e.g. ``out, (h, c)``) gives ``output_0``, ``output_1``, …; a
+  returned dict gives one output per key, named by the key. A name that a forward parameter
+  already uses gets a trailing ``_``.
+- Each node is mapped by ``MODULES`` (module class), ``FUNCTIONS`` (function object) or
+  ``METHODS`` (tensor method name), the tables of ``registry``. Shapes of intermediate
+  tensors come from two sample runs.
+- Every refusal is collected, with the module's qualified name or the function and the
+  source line; the walk goes on with placeholder values so one
+  :class:`~seqgate.errors.UnsupportedModelError` (exit 3) lists every problem. A forward that
+  fx cannot trace (Python control flow on tensors, ``int(x.size(1))``, packed sequences) is
+  also exit 3, naming the line and the construct to change.
+- Recurrent modules: one native ONNX node per stacked layer, probes named
+  ``<qualname>/l<k>/<direction>/<kind>`` (``<qualname>/call<i>/l<k>/…`` for the i-th extra
+  call of the same module); see ``torch_modules``.
+"""
+
+from __future__ import annotations
+
+import operator
+from pathlib import Path
+from typing import Any
+
+from seqgate.errors import Refusal, Unsupported, UnsupportedModelError
+from seqgate.export.core.builder import GraphBuilder, np_to_onnx_type
+from seqgate.export.torch.inputs import (
+    Plan,
+    TMeta,
+    forward_params,
+    infer_inputs,
+    output_dims,
+    parse_input_options,
+    record_runs,
+)
+from seqgate.export.torch.values import TV, UNKNOWN, TorchCall, source_line
+from seqgate.sources.spec import Source
+
+
+def export_torch_source(src: Source, opset: int, inputs: list[str] | None = None, **options: Any) -> Any:
+    """Load ``src`` (``sources_torch.load_torch``) and return its ONNX ModelProto."""
+    from seqgate.export.run import source_metadata
+    from seqgate.sources.torch import load_torch_with_info
+    from seqgate.util.frameworks import version_of
+
+    if options:
+        from seqgate.errors import BadInputError
+
+        raise BadInputError(f"unknown PyTorch export option(s): {', '.join(sorted(options))}.")
+    module, info = load_torch_with_info(src)
+    meta = source_metadata(src, version_of("torch"))
+    meta["seqgate.source.eval_mode"] = "true"
+    meta["seqgate.source.was_training"] = "true" if info.was_training else "false"
+    return export_torch_module(module, opset, meta, inputs=inputs, label=src.text)
+
+
+def export_torch_module(
+    module: Any,
+    opset: int,
+    metadata: dict[str, str],
+    inputs: list[str] | None = None,
+    label: str | None = None,
+) -> Any:
+    """Build the ONNX ModelProto of a loaded module (put in ``eval()`` mode here)."""
+    module.eval()
+    label = label or type(module).__name__
+    user = parse_input_options(inputs)
+    plan = forward_params(module, user, label)
+    gm = trace(module, plan.concrete, label)
+    infer_inputs(gm, plan, user, label)
+    metas, sa, sb = record_runs(gm, plan, label)
+    b = GraphBuilder(opset, graph_name=type(module).__name__, framework="torch")
+    walk = _Walk(b, gm, metas)
+    result = walk.run(plan)
+    if walk.problems:
+        raise UnsupportedModelError(label, walk.problems)
+    _declare_outputs(b, result, metas.get(_output_node(gm).name), plan, sa, sb, label)
+    return b.build(metadata)
+
+
+# ----- tracing ----------------------------------------------------------------------------
+def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
+    """``torch.fx`` GraphModule of ``module`` with asserts on fixed defaults and dead code removed."""
+    import torch
+    import torch.fx
+
+    from seqgate.export.torch.modules import module_mapping
+
+    class Tracer(torch.fx.Tracer):
+        def is_leaf_module(self, m: Any, qualname: str) -> bool:
+            return super().is_leaf_module(m, qualname) or module_mapping(m) is not None
+
+    tracer = Tracer()
+    tracer.record_stack_traces = True
+    try:
+        graph = tracer.trace(module, concrete_args=dict(concrete) or None)
+        gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
+    except Exception as e:
+        raise UnsupportedModelError(label, [_untraceable(module, e)]) from None
+    asserts = {torch._assert, torch.fx._symbolic_trace._assert_is_none}
+    for n in list(gm.graph.nodes):
+        if n.op == "call_function" and n.target in asserts:
+            gm.graph.erase_node(n)
+    problems = _inplace_problems(gm)  # before dead-code removal, which would drop them silently
+    if problems:
+        raise UnsupportedModelError(label, problems)
+    gm.graph.eliminate_dead_code()
+    gm.recompile()
+    return gm
+
+
+# Results that share memory with their input, so mutating them mutates the input too.
+_ALIASING = {"getitem", "view", "reshape", "transpose", "permute", "squeeze", "unsqueeze", "expand",
+             "flatten", "narrow", "select", "t", "view_as", "reshape_as", "expand_as", "chunk", "split",
+             "unbind", "contiguous", "detach", "swapaxes", "swapdims", "Identity", "Dropout", "Dropout1d",
+             "Dropout2d", "Dropout3d", "AlphaDropout", "FeatureAlphaDropout", "Flatten"}
+
+
+def _inplace_problems(gm: Any) -> list[Unsupported]:
+    """In-place ops are exported as their out-of-place form only when that is the same program.
+
+    That holds when the op's result is used and its input has no other live reader and is not
+    a view of another tensor (``y = lin(x); y = y.relu_()``). Anything else (``y.relu_()`` as a
+    statement, in-place on a slice) is refused: fx records the call, but the functional graph
+    would not see the mutation.
+    """
+    out: list[Unsupported] = []
+    for n in gm.graph.nodes:
+        what = _inplace_label(gm, n)
+        if what is None:
+            continue
+        src = n.args[0] if n.args else None
+        live = [u for u in getattr(src, "users", {}) if u.users or u is n or u.op == "output"]
+        ok = (bool(n.users) and hasattr(src, "op") and live == [n]
+              and _name_of(gm, src) not in _ALIASING)
+        if not ok:
+            line = source_line(n)
+            out.append(Unsupported(f"{what}{' at ' + line if line else ''}",
+                                   "in-place operation whose effect the exported graph would not see",
+                                   "write it out of place and use the result (y = torch.relu(y))"))
+    return out
+
+
+def _inplace_label(gm: Any, n: Any) -> str | None:
+    from seqgate.export.torch.functions import function_label
+
+    if n.op == "call_method" and n.target.endswith("_") and not n.target.startswith("__"):
+        return f"Tensor.{n.target}"
+    if n.op == "call_function":
+        name = getattr(n.target, "__name__", "")
+        if (name.endswith("_") and not name.startswith("__")) or n.kwargs.get("inplace") is True:
+            return function_label(n.target)
+    if n.op == "call_module" and getattr(gm.get_submodule(n.target), "inplace", False) is True:
+        return f"{n.target} ({type(gm.get_submodule(n.target)).__name__}, inplace=True)"
+    return None
+
+
+def _name_of(gm: Any, n: Any) -> str:
+    if n.op == "call_method":
+        return str(n.target)
+    if n.op == "call_module":
+        return type(gm.get_submodule(n.target)).__name__
+    return getattr(n.target, "__name__", "") if n.op == "call_function" else n.op
+
+
+def _untraceable(module: Any, e: BaseException) -> Unsupported:
+    import traceback
+
+    import torch
+
+    torch_dir = str(Path(torch.__file__).parent)
+    own_dir = str(Path(__file__).parents[2])  # src/seqgate
+    frames = [f for f in traceback.extract_tb(e.__traceback__)
+              if not f.filename.startswith((torch_dir, own_dir))]
+    at = ""
+    code = ""
+    if frames:
+        f = frames[-1]
+        code = (f.line or "").strip()
+        at = f" at {Path(f.filename).name}:{f.lineno}: `{code}`"
+    msg = str(e).strip().splitlines()[0] if str(e).strip() else type(e).__name__
+    return Unsupported(f"{type(module).__name__}.forward{at}",
+                       f"torch.fx cannot trace it ({type(e).__name__}: {msg[:200]})", _trace_hint(msg, code))
+
+
+def _trace_hint(msg: str, code: str) -> str:
+    if "pack_padded" in code or "PackedSequence" in code or "pack_sequence" in code:
+        return ("packed sequences are not supported; pass the padded [batch, time, features] "
+                "tensor to the recurrent module")
+    if "takes 1 positional argument" in msg and ("zeros" in code or "ones" in code or "empty" in code):
+        return ("torch.zeros/ones with a traced size as the first of several arguments cannot be traced; "
+                "pass the sizes as one tuple: torch.zeros((layers, x.size(0), hidden))")
+    if "does not support item assignment" in msg:
+        return "build the tensor with torch.cat/torch.stack/torch.where instead of assigning into it"
+    if "'len' is not supported" in msg:
+        return "use x.size(0) instead of len(x)"
+    if "control flow" in msg:
+        return ("a tensor (or a size read from it) decides a Python if/while/for/assert or bool(); "
+                "decide on a constructor argument instead, or express it with tensor operations")
+    if "Proxy" in msg and ("int" in msg or "integer" in msg or "index" in msg):
+        return ("a tensor size is turned into a Python int (int(x.size(1)), range(x.size(0)), "
+                "a Python loop over time); keep sizes as x.size(d) values passed to view/reshape, "
+                "and let the recurrent module loop over time")
+    return "rewrite that line with tensor operations on the forward() inputs"
+
+
+def _output_node(gm: Any) -> Any:
+    return next(n for n in gm.graph.nodes if n.op == "output")
+
+
+# ----- the walk ---------------------------------------------------------------------------
+class _Walk:
+    """Visit the fx nodes in order; map each through its table (module docstring)."""
+
+    def __init__(self, b: GraphBuilder, gm: Any, metas: dict[str, Any]) -> None:
+        self.b = b
+        self.gm = gm
+        self.metas = metas
+        self.values: dict[str, Any] = {}
+        self.problems: list[Unsupported] = []
+        self.calls: dict[str, int] = {}
+
+    def run(self, plan: Plan) -> Any:
+        specs = {s.name: s for s in plan.inputs}
+        placeholders = [n for n in self.gm.graph.nodes if n.op == "placeholder"]
+        for name, ph in zip(plan.params, placeholders, strict=True):
+            self.values[ph.name] = self._placeholder(name, ph, specs, plan)
+        result: Any = None
+        for node in self.gm.graph.nodes:
+            if node.op == "placeholder":
+                continue
+            if node.op == "output":
+                result = self._resolve(node.args[0])
+                break
+            self.values[node.name] = self._visit(node)
+        return result
+
+    def _placeholder(self, name: str, ph: Any, specs: dict[str, Any], plan: Plan) -> Any:
+        if name in plan.concrete:
+            return plan.concrete[name]
+        spec = specs.get(name)
+        if spec is None:
+            return UNKNOWN
+        shape = tuple(d if isinstance(d, int) else None for d in spec.dims)
+        values = []
+        for onnx_name in spec.onnx_names:
+            self.b.input(onnx_name, np_to_onnx_type(_np_dtype(spec.dtype)), list(spec.dims))
+            values.append(TV(onnx_name, shape, spec.dtype))
+        return tuple(values) if spec.parts else values[0]
+
+    def _resolve(self, a: Any) -> Any:
+        import torch.fx
+
+        if isinstance(a, torch.fx.Node):
+            return self.values[a.name]
+        if isinstance(a, tuple):
+            return tuple(self._resolve(x) for x in a)
+        if isinstance(a, list):
+            return [self._resolve(x) for x in a]
+        if isinstance(a, dict):
+            return {k: self._resolve(v) for k, v in a.items()}
+        if isinstance(a, slice):
+            return slice(self._resolve(a.start), self._resolve(a.stop), self._resolve(a.step))
+        return a
+
+    def _visit(self, node: Any) -> Any:
+        args = self._resolve(tuple(node.args))
+        kwargs = self._resolve(dict(node.kwargs))
+        meta = self.metas.get(node.name)
+        if node.op == "get_attr":
+            return self._get_attr(node, meta)
+        fn, where, kind, module = self._lookup(node)  # reports an unsupported node even after a refusal
+        if fn is None or _has_unknown(args) or _has_unknown(kwargs):
+            return UNKNOWN
+        name = node.target if node.op == "call_module" else node.name
+        index = self.calls.get(name, 0) if node.op == "call_module" else 0
+        self.calls[name] = index + 1
+        used = frozenset(_used_paths(node, meta))
+        call = TorchCall(node, name, args, kwargs, meta, module, used, index, kind)
+        try:
+            with self.b.layer(name, kind, record_empty=node.op == "call_module"):
+                raw = fn(self.b, call)
+        except Refusal as r:
+            self.problems.append(Unsupported(where, r.what, r.hint))
+            return UNKNOWN
+        return _attach(raw, meta, where)
+
+    def _lookup(self, node: Any) -> tuple[Any, str, str, Any]:
+        from seqgate.export.torch.functions import function_label
+        from seqgate.export.torch.modules import module_mapping
+        from seqgate.export.torch.registry import FUNCTIONS, METHODS
+
+        line = source_line(node)
+        at = f" at {line}" if line else ""
+        if node.op == "call_module":
+            m = self.gm.get_submodule(node.target)
+            cls = type(m).__name__
+            where = f"{node.target} ({cls}){at}"
+            fn = module_mapping(m)
+            if fn is None:
+                self.problems.append(Unsupported(
+                    where, f"module class {type(m).__module__}.{cls} is not supported",
+                    "see DEVELOPERS.md for the supported modules"))
+            return fn, where, cls, m
+        if node.op == "call_method":
+            label = f"Tensor.{node.target}"
+            fn = METHODS.get(node.target) or METHODS.get(_out_of_place(node.target))
+        else:
+            label = function_label(node.target)
+            fn = FUNCTIONS.get(node.target) if _hashable(node.target) else None
+            if fn is None and getattr(node.target, "__name__", "").endswith("_"):
+                fn = FUNCTIONS.get(_out_of_place_function(node.target))
+        where = f"{label}{at}"
+        if fn is None:
+            self.problems.append(Unsupported(where, f"{label} is not supported",
+                                             "see DEVELOPERS.md for the supported functions"))
+        return fn, where, label, None
+
+    def _get_attr(self, node: Any, meta: Any) -> Any:
+        import numpy as np
+        import torch
+
+        obj: Any = self.gm
+        for part in str(node.target).split("."):
+            obj = getattr(obj, part)
+        if not isinstance(obj, torch.Tensor):
+            return obj
+        arr = obj.detach().cpu().numpy()
+        if arr.dtype == np.float64:
+            arr = arr.astype(np.float32)
+        with self.b.layer(str(node.target), "attribute"):
+            name = self.b.const(arr, "value")
+        shape = meta.shape if isinstance(meta, TMeta) else tuple(arr.shape)
+        return TV(name, shape, str(arr.dtype))
+
+
+def _out_of_place(name: str) -> str:
+    """``relu_`` → ``relu`` (only reached for in-place ops that ``_inplace_problems`` accepted)."""
+    return name[:-1] if name.endswith("_") and not name.startswith("__") else ""
+
+
+def _out_of_place_function(fn: Any) -> Any:
+    import torch
+    import torch.nn.functional as F
+
+    base = _out_of_place(getattr(fn, "__name__", ""))
+    return getattr(F, base, None) or getattr(torch, base, None)
+
+
+def _hashable(x: Any) -> bool:
+    try:
+        hash(x)
+    except TypeError:
+        return False
+    return True
+
+
+def _has_unknown(v: Any) -> bool:
+    if v is UNKNOWN:
+        return True
+    if isinstance(v, list | tuple):
+        return any(_has_unknown(x) for x in v)
+    if isinstance(v, dict):
+        return any(_has_unknown(x) for x in v.values())
+    if isinstance(v, slice):
+        return any(_has_unknown(x) for x in (v.start, v.stop, v.step))
+    return False
+
+
+def _used_paths(node: Any, meta: Any) -> set[tuple[int, ...]]:
+    """Index paths of ``node``'s result read by its users (``()`` = read as a whole)."""
+    paths: set[tuple[int, ...]] = set()
+    for u in node.users:
+        idx = u.args[1] if len(u.args) > 1 else None
+        if (u.op == "call_function" and u.target is operator.getitem and u.args[0] is node
+                and isinstance(idx, int) and isinstance(meta, tuple) and -len(meta) <= idx < len(meta)):
+            i = idx % len(meta)
+            paths |= {(i, *p) for p in _used_paths(u, meta[i])}
+        else:
+            paths.add(())
+    return paths
+
+
+def _attach(raw: Any, meta: Any, where: str) -> Any:
+    """Turn a mapping's raw result (ONNX names, nested tuples) into values with shapes."""
+    if isinstance(raw, str):
+        if not isinstance(meta, TMeta):
+            raise AssertionError(f"{where}: mapping returned a tensor where the module returned {meta!r}")
+        return TV(raw, meta.shape, meta.dtype)
+    if isinstance(raw, tuple | list) and isinstance(meta, tuple) and len(raw) == len(meta):
+        return type(raw)(_attach(r, m, where) for r, m in zip(raw, meta, strict=True))
+    if isinstance(raw, TV) and isinstance(meta, TMeta):
+        return TV(raw.name, meta.shape, meta.dtype)
+    return raw
+
+
+def _np_dtype(name: str) -> Any:
+    import numpy as np
+
+    return np.dtype(name)
+
+
+# ----- outputs ----------------------------------------------------------------------------
+def _declare_outputs(
+    b: GraphBuilder, result: Any, meta: Any, plan: Plan, sa: dict[str, int], sb: dict[str, int], label: str
+) -> None:
+    """Name and declare the graph outputs (rule in the module docstring)."""
+    leaves: list[tuple[str, Any, Any]] = []
+    if isinstance(result, dict):
+        for k, v in result.items():
+            leaves.append((str(k), v, meta.get(k) if isinstance(meta, dict) else None))
+    elif isinstance(result, tuple | list):
+        flat_v, flat_m = _flatten(result, meta)
+        leaves = [(f"output_{i}", v, m) for i, (v, m) in enumerate(zip(flat_v, flat_m, strict=True))]
+    else:
+        leaves = [("output", result, meta)]
+    taken = set(plan.params) | {n for s in plan.inputs for n in s.onnx_names}
+    problems: list[Unsupported] = []
+    for oname, v, m in leaves:
+        while oname in taken:
+            oname += "_"
+        taken.add(oname)
+        if not isinstance(v, TV):
+            problems.append(Unsupported(f"output {oname!r}", f"forward returns a {type(v).__name__}, "
+                                        f"not a tensor", "return tensors only"))
+            continue
+        dims = output_dims(m, sa, sb, oname) if isinstance(m, TMeta) else [None] * v.rank
+        b.output(v.name, oname, np_to_onnx_type(_np_dtype(v.dtype)), dims)
+    if problems:
+        raise UnsupportedModelError(label, problems)
+
+
+def _flatten(v: Any, m: Any) -> tuple[list[Any], list[Any]]:
+    if isinstance(v, tuple | list):
+        vs: list[Any] = []
+        ms: list[Any] = []
+        for i, x in enumerate(v):
+            sub_m = m[i] if isinstance(m, tuple) and i < len(m) else None
+            a, c = _flatten(x, sub_m)
+            vs += a
+            ms += c
+        return vs, ms
+    return [v], [m]

@@ -1,0 +1,139 @@
+"""What the profiler feeds a model: one plan per graph input, and seeded realistic arrays.
+
+Dims: axis 0 (symbolic) is the batch, a symbolic dim named ``*time*`` or sitting at axis 1 is the
+time axis (``seqgate.costs.time_dim_names``); fixed dims keep their size. Any other symbolic dim
+is refused, since the profiler cannot pick a size the product would send.
+
+Values, drawn from ``numpy.random.default_rng([seed, T, batch])`` so a point's inputs do not
+depend on the order of the sweep and are the same for every thread count and runtime:
+
+- floating inputs: standard normal N(0, 1), the scale of normalised features;
+- integer inputs that reach the index slot of a ``Gather`` on an initializer (an embedding
+  table), possibly through Cast/Identity/Reshape/Squeeze/Unsqueeze/Transpose/Flatten: uniform
+  token ids in ``[0, rows)``, ``rows`` being the smallest such table's size on the gathered axis;
+- other integer or boolean inputs are refused: there is no realistic value to invent for them.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import onnx
+
+from seqgate.errors import BadInputError
+from seqgate.onnxfile.costs import time_dim_names
+
+_PASS_THROUGH = {"Cast", "Identity", "Reshape", "Squeeze", "Unsqueeze", "Transpose", "Flatten"}
+
+
+@dataclass(frozen=True)
+class InputPlan:
+    """One graph input: its dims as ``int`` (fixed), ``"batch"`` or ``"time"``; id range if any."""
+
+    name: str
+    dtype: str  # numpy dtype name
+    dims: tuple[int | str, ...]
+    vocab: int | None = None
+
+    def shape(self, batch: int, t: int) -> tuple[int, ...]:
+        return tuple(batch if d == "batch" else t if d == "time" else int(d) for d in self.dims)
+
+
+@dataclass(frozen=True)
+class ModelAxes:
+    """Whether the model fixes its time or batch size (``None`` = free)."""
+
+    fixed_time: int | None
+    fixed_batch: int | None
+    has_time: bool
+
+
+def plan_inputs(model: onnx.ModelProto) -> list[InputPlan]:
+    """The plan of every graph input that is not also an initializer."""
+    inits = {i.name for i in model.graph.initializer}
+    time_names = time_dim_names(model)
+    vocab = _embedding_sizes(model)
+    plans: list[InputPlan] = []
+    for vi in model.graph.input:
+        if vi.name in inits:
+            continue
+        tt = vi.type.tensor_type
+        dtype = onnx.helper.tensor_dtype_to_np_dtype(tt.elem_type)
+        dims: list[int | str] = []
+        for axis, d in enumerate(tt.shape.dim):
+            if d.HasField("dim_value"):
+                dims.append(int(d.dim_value))
+            elif d.dim_param in time_names:
+                dims.append("time")
+            elif axis == 0 and d.HasField("dim_param"):
+                dims.append("batch")
+            else:
+                shown = d.dim_param or "(unnamed)"
+                raise BadInputError(
+                    f"input {vi.name!r}: axis {axis} has the symbolic size {shown!r}, which is "
+                    f"neither the batch (axis 0) nor the time axis (axis 1 or a name containing "
+                    f"'time'), so the profiler cannot choose a size for it. Export the model with "
+                    f"that dim fixed."
+                )
+        if dtype.kind in "iub" and vocab.get(vi.name) is None:
+            raise BadInputError(
+                f"input {vi.name!r} is {dtype.name} but feeds no embedding table, so the profiler "
+                f"has no realistic value range for it. Profile a model whose integer inputs are "
+                f"token ids (they reach a Gather on an initializer), or whose inputs are float."
+            )
+        plans.append(InputPlan(vi.name, dtype.name, tuple(dims), vocab.get(vi.name)))
+    return plans
+
+
+def model_axes(model: onnx.ModelProto, plans: list[InputPlan]) -> ModelAxes:
+    """Fixed time = axis 1 of a rank ≥ 2 input that has no symbolic time; fixed batch = axis 0."""
+    has_time = any("time" in p.dims for p in plans)
+    fixed_time = None
+    if not has_time:
+        fixed_time = next((int(p.dims[1]) for p in plans if len(p.dims) >= 2), None)
+    fixed_batch = None
+    if not any(p.dims and p.dims[0] == "batch" for p in plans):
+        fixed_batch = next((int(p.dims[0]) for p in plans if p.dims), None)
+    return ModelAxes(fixed_time, fixed_batch, has_time or fixed_time is not None)
+
+
+def make_inputs(plans: list[InputPlan], batch: int, t: int, seed: int) -> dict[str, np.ndarray[Any, Any]]:
+    """Seeded arrays for one (T, batch) point (see the module docstring)."""
+    rng = np.random.default_rng([seed, t, batch])
+    out: dict[str, np.ndarray[Any, Any]] = {}
+    for p in plans:
+        shape = p.shape(batch, t)
+        if p.vocab is not None:
+            out[p.name] = rng.integers(0, p.vocab, size=shape).astype(p.dtype)
+        else:
+            out[p.name] = rng.standard_normal(shape).astype(p.dtype)
+    return out
+
+
+def _embedding_sizes(model: onnx.ModelProto) -> dict[str, int]:
+    """Graph input name → rows of the smallest embedding table its values index."""
+    inits = {i.name: i for i in model.graph.initializer}
+    consumers: dict[str, list[onnx.NodeProto]] = {}
+    for n in model.graph.node:
+        for i in n.input:
+            consumers.setdefault(i, []).append(n)
+    out: dict[str, int] = {}
+    for vi in model.graph.input:
+        sizes: list[int] = []
+        frontier, seen = [vi.name], set()
+        while frontier:
+            value = frontier.pop()
+            if value in seen:
+                continue
+            seen.add(value)
+            for n in consumers.get(value, []):
+                if n.op_type == "Gather" and len(n.input) > 1 and n.input[1] == value and n.input[0] in inits:
+                    axis = next((a.i for a in n.attribute if a.name == "axis"), 0)
+                    sizes.append(int(inits[n.input[0]].dims[axis]))
+                elif n.op_type in _PASS_THROUGH and n.input[0] == value:
+                    frontier.extend(o for o in n.output if o)
+        if sizes:
+            out[vi.name] = min(sizes)
+    return out

@@ -1,0 +1,155 @@
+"""What ``seqgate profile`` found: points, latency lines, budget verdicts, the JSON report.
+
+Per point (seq len × batch × threads × runtime), from the timed runs:
+
+- ``p50_ms`` … ``std_ms``, ``runs``: see ``seqgate.profile_stats``;
+- ``sequences_per_s = batch / p50``, ``steps_per_s = batch · T / p50``, ``us_per_step = p50 / T``
+  (all from the median, the figure least moved by a stray slow run);
+- ``gflops = 2 · macs(T) · batch / p50 / 1e9``: achieved GFLOP/s, one MAC being two FLOPs, with
+  ``macs(T)`` from the cost model (``seqgate.costs``) at batch 1 (every counted op is linear in
+  the batch);
+- ``speedup`` (ONNX Runtime points, and the source point beside it): source p50 / ONNX Runtime
+  p50 at the same T, batch and threads — how many times faster the export runs.
+
+Budgets are judged on ONNX Runtime, the runtime that ships: a budget holds when, at its length,
+the chosen percentile is ≤ its milliseconds at **every** batch and thread count measured.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from typing import Any
+
+from seqgate.profile.budgets import Budget
+from seqgate.profile.stats import LineFit, Stats, fit_line, longest_within
+
+SCHEMA = "seqgate.profile/1"
+ONNXRUNTIME = "onnxruntime"
+
+
+@dataclass
+class Point:
+    """One measured point."""
+
+    seq_len: int
+    batch: int
+    threads: int
+    runtime: str
+    stats: Stats
+    macs_per_sequence: int
+    framework_threads: int | None = None
+    speedup: float | None = None
+
+    def key(self) -> tuple[int, int, int]:
+        return (self.seq_len, self.batch, self.threads)
+
+    def to_dict(self) -> dict[str, Any]:
+        s = self.stats
+        p50_s = s.p50_ms / 1e3
+        return {
+            "seq_len": self.seq_len, "batch": self.batch, "threads": self.threads,
+            "runtime": self.runtime,
+            "p50_ms": s.p50_ms, "p90_ms": s.p90_ms, "p99_ms": s.p99_ms, "min_ms": s.min_ms,
+            "max_ms": s.max_ms, "mean_ms": s.mean_ms, "std_ms": s.std_ms, "runs": s.runs,
+            "sequences_per_s": self.batch / p50_s if p50_s > 0 else None,
+            "steps_per_s": self.batch * self.seq_len / p50_s if p50_s > 0 else None,
+            "us_per_step": s.p50_ms * 1e3 / self.seq_len,
+            "macs_per_sequence": self.macs_per_sequence,
+            "gflops": 2 * self.macs_per_sequence * self.batch / p50_s / 1e9 if p50_s > 0 else None,
+            "speedup": self.speedup,
+            "framework_threads": self.framework_threads,
+        }
+
+
+def attach_speedups(points: list[Point]) -> None:
+    """Set ``speedup`` on each ONNX Runtime point that has a source point beside it, and on that one."""
+    ort = {p.key(): p for p in points if p.runtime == ONNXRUNTIME}
+    for p in points:
+        base = ort.get(p.key())
+        if p.runtime != ONNXRUNTIME and base is not None and base.stats.p50_ms > 0:
+            p.speedup = p.stats.p50_ms / base.stats.p50_ms
+            base.speedup = p.speedup
+
+
+def fits_for(points: list[Point], percentile: int, budgets: list[Budget]) -> list[dict[str, Any]]:
+    """One least-squares line per (batch, threads, runtime), on the chosen percentile."""
+    groups: dict[tuple[str, int, int], list[Point]] = {}
+    for p in points:
+        groups.setdefault((p.runtime, p.batch, p.threads), []).append(p)
+    out: list[dict[str, Any]] = []
+    for (runtime, batch, threads), pts in groups.items():
+        fit = fit_line([p.seq_len for p in pts], [p.stats.at(percentile) for p in pts])
+        if fit is None:
+            continue
+        out.append({
+            "runtime": runtime, "batch": batch, "threads": threads, "percentile": percentile,
+            "a_ms": fit.a_ms, "b_ms_per_step": fit.b_ms_per_step, "r2": fit.r2, "points": fit.n,
+            "longest_seq_len": [{"budget_ms": b.ms, "budget_seq_len": b.seq_len,
+                                 "seq_len": longest_within(fit, b.ms)} for b in budgets],
+        })
+    return out
+
+
+def budget_checks(points: list[Point], budgets: list[Budget], percentile: int,
+                  fits: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """One verdict per budget and ONNX Runtime (batch, threads) setting."""
+    line = {(f["batch"], f["threads"]): LineFit(f["a_ms"], f["b_ms_per_step"], f["r2"], f["points"])
+            for f in fits if f["runtime"] == ONNXRUNTIME}
+    out: list[dict[str, Any]] = []
+    for b in budgets:
+        for p in points:
+            if p.runtime != ONNXRUNTIME or p.seq_len != b.seq_len:
+                continue
+            measured = p.stats.at(percentile)
+            fit = line.get((p.batch, p.threads))
+            out.append({
+                "seq_len": b.seq_len, "budget_ms": b.ms, "percentile": percentile,
+                "batch": p.batch, "threads": p.threads, "runtime": ONNXRUNTIME,
+                "measured_ms": measured, "margin_ms": b.ms - measured, "passed": measured <= b.ms,
+                "predicted_longest_seq_len": longest_within(fit, b.ms) if fit else None,
+            })
+    return out
+
+
+@dataclass
+class ProfileReport:
+    """Everything one profile run measured and decided; ``to_json()`` is the report file."""
+
+    model: dict[str, Any]
+    source: dict[str, Any] | None
+    options: dict[str, Any]
+    seed: int
+    points: list[Point]
+    fits: list[dict[str, Any]]
+    budgets: list[dict[str, Any]]
+    environment: dict[str, Any]
+    timer: dict[str, Any]
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def passed(self) -> bool:
+        """True when every budget check holds (and trivially with no budget)."""
+        return all(b["passed"] for b in self.budgets)
+
+    def to_dict(self) -> dict[str, Any]:
+        from seqgate import __version__
+
+        return {
+            "schema": SCHEMA,
+            "tool": {"name": "seqgate", "version": __version__},
+            "passed": self.passed,
+            "seed": self.seed,
+            "model": self.model,
+            "source": self.source,
+            "options": self.options,
+            "points": [p.to_dict() for p in self.points],
+            "fits": self.fits,
+            "budgets": self.budgets,
+            "environment": self.environment,
+            "timer": self.timer,
+            "notes": self.notes,
+        }
+
+    def to_json(self) -> str:
+        return json.dumps(self.to_dict(), indent=2, sort_keys=True) + "\n"

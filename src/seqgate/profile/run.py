@@ -1,0 +1,346 @@
+"""``seqgate profile``: CPU latency per sequence length, against budgets, beside the source framework.
+
+Measurement hygiene (the contract of :func:`profile_model`):
+
+- one onnxruntime session per thread setting: ``intra_op_num_threads`` as asked,
+  ``inter_op_num_threads = 1``, ``ORT_SEQUENTIAL``, ``ORT_ENABLE_ALL`` (all recorded);
+- inputs generated once per point from a seeded generator (``seqgate.profile_inputs``), the
+  same arrays for every thread count and runtime;
+- ``warmup`` runs discarded, then timed runs until both ``min_runs`` runs and ``min_time``
+  seconds are reached; each run is timed alone with ``time.perf_counter_ns`` while garbage
+  collection is paused (re-enabled in ``finally``);
+- the timer's own cost (two back-to-back ``perf_counter_ns`` calls) is measured and reported,
+  not subtracted: the figures are raw wall times of the calls;
+- a model that fixes its time dim is measured at that length only (noted); a budget at another
+  length is then an error (exit 2);
+- budget lengths missing from ``seq_lens`` are added to the sweep (``seqgate.budgets``).
+"""
+
+from __future__ import annotations
+
+import gc
+import os
+import time
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from seqgate.errors import BadInputError
+from seqgate.profile.budgets import Budget, check_percentile, parse_budgets, parse_int_list
+from seqgate.profile.inputs import InputPlan, make_inputs, model_axes, plan_inputs
+from seqgate.profile.result import ONNXRUNTIME, Point, ProfileReport, attach_speedups, budget_checks, fits_for
+from seqgate.profile.stats import summarize_ns
+
+DEFAULT_SEQ_LENS = (1, 8, 32, 128, 512)
+DEFAULT_WARMUP = 10
+DEFAULT_MIN_RUNS = 100  # common practice: ≥ 100 samples before quoting a p99
+DEFAULT_MIN_TIME = 1.0
+# Loose on purpose: this only catches a --source that is not the exported model; `seqgate verify`
+# is the real comparison.
+_SANITY_ATOL = _SANITY_RTOL = 1e-3
+Progress = Callable[[int, int, str], None]
+
+
+def time_call(call: Callable[[], Any], warmup: int, min_runs: int, min_time: float) -> list[int]:
+    """Run ``call`` ``warmup`` times untimed, then time runs (ns) until ``min_runs`` and ``min_time``."""
+    for _ in range(warmup):
+        call()
+    gc.collect()
+    was_enabled = gc.isenabled()
+    gc.disable()
+    clock = time.perf_counter_ns
+    samples: list[int] = []
+    try:
+        deadline = clock() + int(min_time * 1e9)
+        while True:
+            t0 = clock()
+            call()
+            t1 = clock()
+            samples.append(t1 - t0)
+            if len(samples) >= min_runs and t1 >= deadline:
+                break
+    finally:
+        if was_enabled:
+            gc.enable()
+    return samples
+
+
+def timer_overhead(n: int = 20000) -> dict[str, Any]:
+    """Cost of one timing (two back-to-back ``perf_counter_ns`` calls), median and minimum."""
+    clock = time.perf_counter_ns
+    deltas = []
+    for _ in range(n):
+        a = clock()
+        b = clock()
+        deltas.append(b - a)
+    deltas.sort()
+    return {
+        "clock": "time.perf_counter_ns",
+        "overhead_median_ns": deltas[n // 2],
+        "overhead_min_ns": deltas[0],
+        "resolution_ns": time.get_clock_info("perf_counter").resolution * 1e9,
+        "subtracted": False,
+    }
+
+
+def make_session(model_bytes: bytes, threads: int) -> tuple[Any, dict[str, Any]]:
+    """One CPU session for ``threads`` intra-op threads; returns it and its recorded options."""
+    import onnxruntime as ort
+
+    so = ort.SessionOptions()
+    so.intra_op_num_threads = threads
+    so.inter_op_num_threads = 1
+    so.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    so.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    so.log_severity_level = 3
+    try:
+        sess = ort.InferenceSession(model_bytes, so, providers=["CPUExecutionProvider"])
+    except Exception as e:  # onnxruntime raises its own exception types for invalid graphs
+        raise BadInputError(f"onnxruntime could not load the model: {str(e).strip()[:400]}. Check it "
+                            f"with `seqgate inspect`, or export it again.") from e
+    recorded = {
+        "intra_op_num_threads": threads, "inter_op_num_threads": 1,
+        "execution_mode": so.execution_mode.name,
+        "graph_optimization_level": so.graph_optimization_level.name,
+        "providers": sess.get_providers(),
+    }
+    return sess, recorded
+
+
+def ort_call(sess: Any, feeds: dict[str, np.ndarray[Any, Any]]) -> Callable[[], Any]:
+    """The exact call the profiler times for ONNX Runtime (the bench times the same)."""
+    names = [o.name for o in sess.get_outputs()]
+    run = sess.run
+    return lambda: run(names, feeds)
+
+
+def _sweep_lengths(axes: Any, seq_lens: list[int], budgets: list[Budget], notes: list[str]) -> list[int]:
+    if not axes.has_time:
+        raise BadInputError("the model has no time axis (no input of rank ≥ 2), so there is no "
+                            "sequence length to sweep; seqgate profile is for sequence models.")
+    if axes.fixed_time is not None:
+        t = axes.fixed_time
+        wrong = [b for b in budgets if b.seq_len != t]
+        if wrong:
+            raise BadInputError(
+                f"the model fixes its time dim at {t}, so it can only be measured at length {t}; "
+                f"the budget at length {wrong[0].seq_len} cannot be checked. Budget T={t}, or "
+                f"export the model with a free time dim.")
+        notes.append(f"the model fixes its time dim at {t}: the sweep is limited to T={t}.")
+        return [t]
+    extra = sorted({b.seq_len for b in budgets} - set(seq_lens))
+    if extra:
+        notes.append(f"budget length(s) {', '.join(map(str, extra))} added to the sweep.")
+    return sorted(set(seq_lens) | set(extra))
+
+
+def lengths_to_measure(model: Any, seq_lens: Sequence[int], budgets: Sequence[str | Budget]) -> list[int]:
+    """The lengths a profile of ``model`` would measure; ``BadInputError`` for budgets it cannot take."""
+    return _sweep_lengths(model_axes(model, plan_inputs(model)), list(seq_lens), parse_budgets(budgets), [])
+
+
+def _sweep_batches(axes: Any, batches: list[int], notes: list[str]) -> list[int]:
+    if axes.fixed_batch is not None and batches != [axes.fixed_batch]:
+        notes.append(f"the model fixes its batch at {axes.fixed_batch}: the sweep uses batch "
+                     f"{axes.fixed_batch} only.")
+        return [axes.fixed_batch]
+    return batches
+
+
+def _check_counts(warmup: int, min_runs: int, min_time: float) -> None:
+    if warmup < 0:
+        raise BadInputError(f"--warmup must be 0 or more, got {warmup}.")
+    if min_runs < 1:
+        raise BadInputError(f"--min-runs must be at least 1, got {min_runs}.")
+    if not min_time >= 0 or min_time == float("inf"):
+        raise BadInputError(f"--min-time must be a finite number of seconds ≥ 0, got {min_time}.")
+
+
+def _outputs_agree(ort_out: list[Any], src_out: list[Any]) -> tuple[bool, str]:
+    if len(ort_out) != len(src_out):
+        return False, f"the source returns {len(src_out)} tensors, the ONNX model {len(ort_out)}"
+    worst = 0.0
+    for i, (a, b) in enumerate(zip(ort_out, src_out, strict=True)):
+        a, b = np.asarray(a, np.float64), np.asarray(b, np.float64)
+        if a.shape != b.shape:
+            return False, f"output {i} has shape {list(b.shape)} in the source, {list(a.shape)} in ONNX"
+        d = np.abs(a - b)
+        worst = max(worst, float(d.max(initial=0.0)))
+        if np.any(d > _SANITY_ATOL + _SANITY_RTOL * np.abs(b)):
+            return False, f"output {i} differs by up to {worst:.3g}"
+    return True, f"max |Δ| {worst:.3g}"
+
+
+def profile_model(
+    model_path: str | os.PathLike[str],
+    *,
+    seq_lens: str | Sequence[int] = DEFAULT_SEQ_LENS,
+    batches: str | Sequence[int] = (1,),
+    threads: str | Sequence[int] = (1,),
+    warmup: int = DEFAULT_WARMUP,
+    min_runs: int = DEFAULT_MIN_RUNS,
+    min_time: float = DEFAULT_MIN_TIME,
+    budgets: Sequence[str | Budget] = (),
+    percentile: int = 99,
+    source: str | None = None,
+    weights: str | None = None,
+    seed: int = 0,
+    progress: Progress | None = None,
+) -> ProfileReport:
+    """Measure ``model_path`` over the sweep and judge the budgets (see the module docstring).
+
+    Raises ``BadInputError`` (exit 2) for bad arguments or files before anything is timed.
+    """
+    from seqgate.onnxfile.costs import summary
+    from seqgate.onnxfile.load import load_onnx
+    from seqgate.util.environment import environment
+    from seqgate.util.files import sha256_file
+
+    path = Path(model_path)
+    model = load_onnx(path)
+    q = check_percentile(percentile)
+    _check_counts(warmup, min_runs, min_time)
+    budget_list = parse_budgets(budgets)
+    notes: list[str] = []
+    plans = plan_inputs(model)
+    axes = model_axes(model, plans)
+    lengths = _sweep_lengths(axes, parse_int_list(seq_lens, "--seq-lens"), budget_list, notes)
+    batch_list = _sweep_batches(axes, parse_int_list(batches, "--batch"), notes)
+    thread_list = parse_int_list(threads, "--threads")
+    src = _parse_source(source, weights)
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    if max(thread_list) > cores:
+        notes.append(f"--threads {max(thread_list)} is more than the {cores} cores this process may use; "
+                     f"those points measure oversubscription.")
+    cost = summary(model)  # one pass of the cost model (two shape inferences) for every length
+    macs = {t: cost["macs_per_sequence"] + cost["macs_per_step"] * t for t in lengths}
+    runner = _open_runner(src, plans, thread_list)
+    sweep = _Sweep(model.SerializeToString(), plans, runner, seed, (warmup, min_runs, min_time), progress)
+    points, sessions = sweep.run(thread_list, batch_list, lengths, macs)
+    notes.extend(sweep.notes)
+    attach_speedups(points)
+    if q == 99 and min(p.stats.runs for p in points) < 100:
+        notes.append("some points have fewer than 100 runs: their p99 is close to their max; raise "
+                     "--min-runs or --min-time for a steadier tail.")
+    fits = fits_for(points, q, budget_list)
+    env = environment()
+    env["session_options"] = sessions
+    return ProfileReport(
+        model={"path": str(path), "sha256": sha256_file(path), "cost": cost,
+               "inputs": [{"name": p.name, "dtype": p.dtype, "dims": list(p.dims), "vocab": p.vocab}
+                          for p in plans],
+               "fixed_time": axes.fixed_time, "fixed_batch": axes.fixed_batch},
+        source=_source_record(src, sweep.agreement),
+        options={"seq_lens": lengths, "batches": batch_list, "threads": thread_list, "warmup": warmup,
+                 "min_runs": min_runs, "min_time_s": min_time, "percentile": q,
+                 "budgets": [{"seq_len": b.seq_len, "ms": b.ms} for b in budget_list]},
+        seed=seed, points=points, fits=fits, budgets=budget_checks(points, budget_list, q, fits),
+        environment=env, timer=timer_overhead(), notes=notes,
+    )
+
+
+def _parse_source(source: str | None, weights: str | None) -> Any:
+    from seqgate.sources.spec import parse_source
+
+    if source is None:
+        if weights:
+            raise BadInputError("--weights was given without --source; pass the PyTorch factory "
+                                "with --source FILE.py:FACTORY, or drop --weights.")
+        return None
+    return parse_source(source, weights)
+
+
+def _open_runner(src: Any, plans: list[InputPlan], thread_list: list[int]) -> Any:
+    if src is None:
+        return None
+    from seqgate.profile.sources import open_source
+
+    return open_source(src, plans, thread_list)
+
+
+def _source_record(src: Any, agreement: tuple[bool, str] | None) -> dict[str, Any] | None:
+    from seqgate.util.files import sha256_file
+
+    if src is None:
+        return None
+    return {
+        "text": src.text, "framework": src.framework,
+        "files": [{"path": str(f), "sha256": sha256_file(f)} for f in src.files()],
+        "outputs_agree": agreement[0] if agreement else None,
+        "outputs_check": agreement[1] if agreement else None,
+    }
+
+
+class _Sweep:
+    """The nested loop threads → batch → T, ONNX Runtime then the source at each point."""
+
+    def __init__(self, model_bytes: bytes, plans: list[InputPlan], runner: Any, seed: int,
+                 counts: tuple[int, int, float], progress: Progress | None) -> None:
+        self.model_bytes, self.plans, self.runner, self.seed = model_bytes, plans, runner, seed
+        self.counts = counts
+        self.progress = progress
+        self.notes: list[str] = []
+        self.agreement: tuple[bool, str] | None = None
+        self.done = 0
+
+    def run(self, thread_list: list[int], batch_list: list[int], lengths: list[int],
+            macs: dict[int, int]) -> tuple[list[Point], list[dict[str, Any]]]:
+        total = len(thread_list) * len(batch_list) * len(lengths) * (2 if self.runner else 1)
+        points: list[Point] = []
+        sessions: list[dict[str, Any]] = []
+        for th in thread_list:
+            sess, recorded = make_session(self.model_bytes, th)
+            sessions.append(recorded)
+            for b in batch_list:
+                for t in lengths:
+                    feeds = make_inputs(self.plans, b, t, self.seed)
+                    call = ort_call(sess, feeds)
+                    self._tick(total, f"{ONNXRUNTIME} T={t} batch={b} threads={th}")
+                    points.append(Point(t, b, th, ONNXRUNTIME, summarize_ns(time_call(call, *self.counts)),
+                                        macs[t]))
+                    if self.runner is not None:
+                        self._tick(total, f"{self.runner.runtime} T={t} batch={b} threads={th}")
+                        points.append(self._source_point(call, feeds, t, b, th, macs[t]))
+        self._tick(total, "done")
+        return points, sessions
+
+    def _source_point(self, ort: Callable[[], Any], feeds: dict[str, Any], t: int, b: int, th: int,
+                      macs: int) -> Point:
+        runner = self.runner
+        try:
+            with runner.bind(feeds, th) as call:
+                if self.agreement is None:
+                    self._check_agreement(ort, call)
+                samples = time_call(call, *self.counts)
+                used = runner.framework_threads()
+        except Exception as e:  # the user's model code failing on the ONNX model's inputs
+            shapes = ", ".join(f"{k} {list(v.shape)} {v.dtype}" for k, v in feeds.items())
+            raise BadInputError(
+                f"the {runner.runtime} source failed on the inputs the ONNX model takes ({shapes}) at "
+                f"T={t}, batch {b}: {type(e).__name__}: {str(e).strip()[:300]}. The source must take "
+                f"the exported graph's inputs, in its order and layout; is it the model that was exported?"
+            ) from e
+        if runner.runtime == "keras" and used != th:
+            note = (f"TensorFlow runs with {used or 'its default'} intra-op threads (its thread pool is "
+                    f"fixed at start-up), not the point's threads.")
+            if note not in self.notes:
+                self.notes.append(note)
+        return Point(t, b, th, runner.runtime, summarize_ns(samples), macs, framework_threads=used)
+
+    def _check_agreement(self, ort: Callable[[], Any], call: Callable[[], Any]) -> None:
+        from seqgate.util.frameworks import quiet_stderr
+
+        with quiet_stderr():  # TensorFlow may warn on stderr while tracing the first call
+            src_out = self.runner.outputs(call())
+        self.agreement = _outputs_agree(list(ort()), src_out)
+        if not self.agreement[0]:
+            self.notes.append(f"the source's outputs do not match the ONNX model's "
+                              f"({self.agreement[1]}): is it the model that was exported? "
+                              f"The speed-ups compare different computations; run seqgate verify.")
+
+    def _tick(self, total: int, label: str) -> None:
+        if self.progress is not None:
+            self.progress(self.done, total, label)
+        self.done += 1

@@ -1,0 +1,206 @@
+"""Keras runner: the model's outputs and every probe's state, in one compiled pass.
+
+How the states are obtained: the model's graph is re-executed node by node (as Keras's own
+``Functional`` does: ``node.arguments.fill_in`` then ``layer(*args, **kwargs)``), nested
+models walked in place with ``outer/inner`` names. Each recurrent layer named by the probe
+map is replaced by a clone of its config with ``return_sequences=True, return_state=True``
+and the same weights, called on the same input and ``initial_state``; the layer's own outputs
+are then rebuilt from the clone's:
+
+- plain layer: output = the sequence (as Keras returns it, reversed under ``go_backwards``)
+  or the final ``h``; ``return_state`` appends ``h`` (and ``c``);
+- ``Bidirectional``: forward and backward sublayer clones; the backward sequence is flipped to
+  input order; merge ``concat``/``sum``/``mul``/``ave``/``None`` as Keras does; states follow as
+  fwd ``h[, c]``, bwd ``h[, c]``; an ``initial_state`` list is split in halves.
+
+Probes (DESIGN.md axes): the sequence in input order (flipped back for ``go_backwards``)
+as ``[N, T, 1, H]``; ``h`` and ``c`` as ``[N, 1, H]``. Because the outputs come from this
+re-execution, :meth:`KerasRunner.self_check` compares them once with the original model's own
+outputs; verify refuses to go on if they differ (the capture would not be the model).
+
+Everything runs inside one ``tf.function`` with a signature whose batch (and dynamic time)
+dims are unknown, so a smaller last batch or longer synthetic windows do not retrace.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from seqgate.errors import Unsupported, UnsupportedModelError
+from seqgate.onnxfile.probes import Probe
+from seqgate.sources.keras_graph import graph_nodes, is_nested
+
+SELF_CHECK_ATOL = 1e-6  # the re-execution runs the same TensorFlow kernels; only op fusion may differ
+
+
+def _functional(model: Any) -> Any:
+    if type(model).__name__ == "Sequential":
+        return model._functional
+    return model
+
+
+def _clone(layer: Any, input_shape: tuple[Any, ...], name: str) -> Any:
+    cfg = {**layer.get_config(), "return_sequences": True, "return_state": True, "name": name}
+    clone = type(layer).from_config(cfg)
+    clone.build(input_shape)
+    clone.set_weights(layer.get_weights())
+    return clone
+
+
+class KerasRunner:
+    """Runs a loaded Keras model; see the module docstring."""
+
+    self_check_atol = SELF_CHECK_ATOL
+
+    def __init__(self, model: Any, probes: list[Probe], output_names: list[str], states: bool = True) -> None:
+        from seqgate.util.frameworks import import_keras
+
+        self.keras = import_keras()
+        import tensorflow as tf
+
+        self.tf = tf
+        self.model = model
+        self.graph = _functional(model)
+        self.output_names = list(output_names)
+        if len(self.graph.outputs) != len(self.output_names):
+            raise UnsupportedModelError(model.name, [Unsupported(
+                model.name, f"the Keras model has {len(self.graph.outputs)} outputs, the ONNX file "
+                f"{len(self.output_names)}", "verify the ONNX file exported from this model")])
+        self.input_names = [t.name for t in self.graph.inputs]
+        self.probes = [p for p in probes if states] if probes else []
+        self._layers = {p.source.get("layer", p.layer) for p in self.probes}
+        self._clones: dict[str, Any] = {}
+        self._prepare_clones(self.graph, "")
+        missing = sorted(self._layers - {k.split("#")[0] for k in self._clones})
+        if missing:
+            raise UnsupportedModelError(model.name, [Unsupported(
+                m, "layer named by the probe map is not in the Keras model",
+                "verify the ONNX file against the model it was exported from") for m in missing])
+        sig = [tf.TensorSpec((None, *t.shape[1:]), dtype=str(t.dtype)) for t in self.graph.inputs]
+        self._fn = tf.function(self._forward, input_signature=sig)
+        self._plain = tf.function(
+            lambda *xs: self.model(xs[0] if len(xs) == 1 else list(xs), training=False), input_signature=sig)
+
+    # ----- setup --------------------------------------------------------------------------------
+    def _prepare_clones(self, graph: Any, prefix: str) -> None:
+        for node, layer in graph_nodes(graph):
+            full = f"{prefix}{layer.name}"
+            if is_nested(layer):
+                self._prepare_clones(_functional(layer), f"{full}/")
+                continue
+            if full not in self._layers:
+                continue
+            shape = tuple(node.input_tensors[0].shape)
+            if type(layer).__name__ == "Bidirectional":
+                self._clones[full + "#fw"] = _clone(layer.forward_layer, shape, f"{layer.name}_probe_fw")
+                self._clones[full + "#bw"] = _clone(layer.backward_layer, shape, f"{layer.name}_probe_bw")
+            else:
+                self._clones[full] = _clone(layer, shape, f"{layer.name}_probe")
+
+    # ----- traced forward -----------------------------------------------------------------------
+    def _forward(self, *inputs: Any) -> list[Any]:
+        probes: dict[str, Any] = {}
+        outs = self._walk(self.graph, list(inputs), "", probes)
+        return [*outs, *(probes[p.name] for p in self.probes)]
+
+    def _walk(self, graph: Any, inputs: list[Any], prefix: str, probes: dict[str, Any]) -> list[Any]:
+        tree = self.keras.tree
+        values = {id(x): y for x, y in zip(graph.inputs, inputs, strict=True)}
+        for node, layer in graph_nodes(graph):
+            full = f"{prefix}{layer.name}"
+            args, kwargs = node.arguments.fill_in(values)
+            if is_nested(layer):
+                outs: Any = self._walk(_functional(layer), tree.flatten(args), f"{full}/", probes)
+            elif full in self._layers:
+                outs = self._recurrent(full, layer, args, kwargs, probes)
+            else:
+                outs = layer(*args, **kwargs)
+            for x, y in zip(node.outputs, tree.flatten(outs), strict=True):
+                values[id(x)] = y
+        return [values[id(x)] for x in graph.outputs]
+
+    def _recurrent(self, full: str, layer: Any, args: Any, kwargs: dict[str, Any],
+                   probes: dict[str, Any]) -> list[Any]:
+        x = args[0]
+        init = kwargs.get("initial_state")
+        if init is None and len(args) > 1:
+            init = args[1]
+        init_list = None if init is None else (list(init) if isinstance(init, list | tuple) else [init])
+        if type(layer).__name__ == "Bidirectional":
+            return self._bidirectional(full, layer, x, init_list, probes)
+        seq, states = self._run_clone(self._clones[full], x, init_list)
+        self._record(full, "forward" if not layer.go_backwards else "reverse", seq, states,
+                     layer.go_backwards, probes)
+        outs = [seq if layer.return_sequences else states[0]]
+        return outs + (states if layer.return_state else [])
+
+    def _run_clone(self, clone: Any, x: Any, init: list[Any] | None) -> tuple[Any, list[Any]]:
+        res = clone(x, initial_state=init) if init is not None else clone(x)
+        return res[0], list(res[1:])
+
+    def _record(self, full: str, direction: str, seq: Any, states: list[Any], backwards: bool,
+                probes: dict[str, Any]) -> None:
+        ops = self.keras.ops
+        in_order = ops.flip(seq, axis=1) if backwards else seq
+        found = {"hidden_sequence": ops.expand_dims(in_order, 2),
+                 "hidden_final": ops.expand_dims(states[0], 1)}
+        if len(states) > 1:
+            found["cell_final"] = ops.expand_dims(states[1], 1)
+        for p in self.probes:
+            if p.source.get("layer", p.layer) == full and p.direction == direction and p.kind in found:
+                probes[p.name] = found[p.kind]
+
+    def _bidirectional(self, full: str, layer: Any, x: Any, init: list[Any] | None,
+                       probes: dict[str, Any]) -> list[Any]:
+        ops = self.keras.ops
+        half = None if init is None else len(init) // 2
+        fseq, fstates = self._run_clone(self._clones[full + "#fw"], x, None if init is None else init[:half])
+        bseq, bstates = self._run_clone(self._clones[full + "#bw"], x, None if init is None else init[half:])
+        self._record(full, "forward", fseq, fstates, False, probes)
+        self._record(full, "reverse", bseq, bstates, True, probes)
+        if layer.return_sequences:
+            yf, yb = fseq, ops.flip(bseq, axis=1)
+        else:
+            yf, yb = fstates[0], bstates[0]
+        mode = layer.merge_mode
+        merged: list[Any]
+        if mode == "concat":
+            merged = [ops.concatenate([yf, yb], axis=-1)]
+        elif mode == "sum":
+            merged = [yf + yb]
+        elif mode == "mul":
+            merged = [yf * yb]
+        elif mode == "ave":
+            merged = [(yf + yb) / 2]
+        else:
+            merged = [yf, yb]
+        return merged + (fstates + bstates if layer.return_state else [])
+
+    # ----- public -------------------------------------------------------------------------------
+    def _feeds(self, feeds: dict[str, np.ndarray[Any, Any]]) -> list[Any]:
+        return [self.tf.constant(feeds[n]) for n in self.input_names]
+
+    def run(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
+        res = self._fn(*self._feeds(feeds)) if self.probes else self._plain(*self._feeds(feeds))
+        res = list(res) if isinstance(res, list | tuple) else [res]
+        names = [*self.output_names, *(p.name for p in self.probes)]
+        return {n: np.asarray(v) for n, v in zip(names, res, strict=True)}
+
+    def run_plain(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
+        """The original model alone (the bare inference the benchmark compares against)."""
+        res = self._plain(*self._feeds(feeds))
+        res = list(res) if isinstance(res, list | tuple) else [res]
+        return {n: np.asarray(v) for n, v in zip(self.output_names, res, strict=True)}
+
+    def self_check(self, feeds: dict[str, np.ndarray[Any, Any]], got: dict[str, np.ndarray[Any, Any]]) -> float:
+        """Max |Δ| between the re-executed outputs and the original model's (0 when no probes)."""
+        if not self.probes:
+            return 0.0
+        ref = self.run_plain(feeds)
+        worst = 0.0
+        for n in self.output_names:
+            d = np.abs(ref[n].astype(np.float64) - got[n].astype(np.float64))
+            worst = max(worst, float(d.max()) if d.size else 0.0)
+        return worst

@@ -1,0 +1,176 @@
+"""PyTorch runner: the module's outputs and every probe's state (forward hooks + per-layer runs).
+
+Outputs: ``forward``'s result flattened depth first (tuples/lists in order, dicts in key
+order), matched in order to the ONNX graph outputs (the exporter's naming rule). Inputs are
+passed by name (the ONNX inputs are ``forward``'s parameters).
+
+States, for each recurrent module (``nn.LSTM``/``GRU``/``RNN``) named by the probe map:
+
+- a forward hook records every call's input, ``hx`` and result; the probe's
+  ``source.call_index`` picks the call;
+- finals come from the module's own ``h_n``/``c_n`` ``[L·D, N, H]``, row ``k·D + d`` for layer k,
+  direction d (l0-fwd, l0-bwd, l1-fwd, …; ``batch_first`` never changes ``h_n``);
+- a one-layer module's hidden sequence is its output, ``[..., d·H:(d+1)·H]``, both directions
+  in input order (PyTorch's reverse output at t is the state after consuming x[t]);
+- a stacked module (L > 1) runs, for the duration of the runner, as its per-layer
+  decomposition: layer k is a single-layer module of the same type with layer k's weights
+  (``weight_ih_l{k}[_reverse]`` …) fed layer k−1's output and ``h0[k·D:(k+1)·D]``; the module
+  returns the last layer's output and ``h_n = cat_k(h_k)`` (likewise ``c_n``), exactly PyTorch's
+  definition of stacking (inter-layer dropout is inert in eval mode). This gives every layer's
+  sequence without computing the stack twice; :meth:`TorchRunner.self_check` runs the
+  module's own ``forward`` on the first batch and refuses to go on if the decomposition's
+  outputs and states differ from it.
+
+Sequences are returned as ``[N, T, 1, H]``, finals as ``[N, 1, H]`` (DESIGN.md).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from seqgate.errors import Unsupported, UnsupportedModelError
+from seqgate.onnxfile.probes import Probe
+
+SELF_CHECK_ATOL = 1e-5
+
+
+def _flatten(x: Any) -> list[Any]:
+    if isinstance(x, dict):
+        return [leaf for v in x.values() for leaf in _flatten(v)]
+    if isinstance(x, list | tuple):
+        return [leaf for v in x for leaf in _flatten(v)]
+    return [x]
+
+
+class TorchRunner:
+    """Runs a loaded module in eval mode; see the module docstring."""
+
+    self_check_atol = SELF_CHECK_ATOL
+
+    def __init__(self, module: Any, probes: list[Probe], output_names: list[str], states: bool = True) -> None:
+        from seqgate.util.frameworks import import_torch
+
+        self.torch = import_torch()
+        self.module = module.eval()
+        self.output_names = list(output_names)
+        self.probes = list(probes) if states else []
+        self._mods = dict(module.named_modules())
+        self._calls: dict[str, list[tuple[Any, Any, Any]]] = {}
+        self._layer_cache: dict[tuple[str, int], Any] = {}
+        wanted = {p.source.get("module", p.layer) for p in self.probes}
+        missing = sorted(w for w in wanted if w not in self._mods)
+        if missing:
+            raise UnsupportedModelError(type(module).__name__, [Unsupported(
+                m, "module named by the probe map is not in the PyTorch model",
+                "verify the ONNX file against the model it was exported from") for m in missing])
+        self._seqs: dict[str, list[list[Any]]] = {}
+        self._stacked = sorted(w for w in wanted if int(self._mods[w].num_layers) > 1)
+        for name in wanted:
+            self._mods[name].register_forward_hook(self._hook(name), with_kwargs=True)
+        for name in self._stacked:
+            self._mods[name].forward = self._stacked_forward(name)
+
+    def _hook(self, name: str) -> Any:
+        def hook(mod: Any, args: tuple[Any, ...], kwargs: dict[str, Any], out: Any) -> None:
+            x = args[0] if args else kwargs.get("input")
+            hx = args[1] if len(args) > 1 else kwargs.get("hx")
+            self._calls.setdefault(name, []).append((x, hx, out))
+
+        return hook
+
+    # ----- per-layer runs ---------------------------------------------------------------------------
+    def _single_layer(self, name: str, k: int) -> Any:
+        key = (name, k)
+        if key not in self._layer_cache:
+            m = self._mods[name]
+            nn = self.torch.nn
+            kind = next(c for c in type(m).__mro__ if c in (nn.LSTM, nn.GRU, nn.RNN))
+            opts: dict[str, Any] = {"nonlinearity": m.nonlinearity} if kind is nn.RNN else {}
+            d = 2 if m.bidirectional else 1
+            in_size = m.input_size if k == 0 else d * m.hidden_size
+            one = kind(in_size, m.hidden_size, num_layers=1, bias=m.bias, batch_first=m.batch_first,
+                       bidirectional=m.bidirectional, **opts)
+            state = {}
+            for pname, _ in one.named_parameters():
+                state[pname] = getattr(m, pname.replace("_l0", f"_l{k}")).detach()
+            one.load_state_dict(state)
+            self._layer_cache[key] = one.eval()
+        return self._layer_cache[key]
+
+    def _stacked_forward(self, name: str) -> Any:
+        m = self._mods[name]
+        d = 2 if m.bidirectional else 1
+        torch = self.torch
+
+        def forward(input: Any, hx: Any = None) -> Any:
+            is_lstm = isinstance(m, torch.nn.LSTM)
+            inp, seqs, hs, cs = input, [], [], []
+            for k in range(m.num_layers):
+                sl = slice(k * d, (k + 1) * d)
+                h0 = None if hx is None else ((hx[0][sl], hx[1][sl]) if is_lstm else hx[sl])
+                y, hk = self._single_layer(name, k)(inp, h0)
+                seqs.append(y)
+                hs.append(hk[0] if is_lstm else hk)
+                if is_lstm:
+                    cs.append(hk[1])
+                inp = y
+            self._seqs.setdefault(name, []).append(seqs)
+            h_n = torch.cat(hs, 0)
+            return (inp, (h_n, torch.cat(cs, 0))) if is_lstm else (inp, h_n)
+
+        return forward
+
+    def _probe_values(self) -> dict[str, np.ndarray[Any, Any]]:
+        found: dict[str, np.ndarray[Any, Any]] = {}
+        for p in self.probes:
+            src = p.source
+            name, call = src.get("module", p.layer), int(src.get("call_index", 0))
+            calls = self._calls.get(name, [])
+            if call >= len(calls):
+                raise UnsupportedModelError(name, [Unsupported(
+                    name, f"call {call} of the module did not happen in forward", "export the model again")])
+            out = calls[call][2]
+            m = self._mods[name]
+            d_all, h = (2 if m.bidirectional else 1), m.hidden_size
+            k, d = int(src.get("layer_index", p.stack_index)), p.direction_index
+            if p.kind == "hidden_sequence":
+                seq = self._seqs[name][call][k] if name in self._stacked else out[0]
+                y = seq if m.batch_first else seq.transpose(0, 1)
+                found[p.name] = y[..., d * h:(d + 1) * h].unsqueeze(2).numpy()
+            else:
+                states = out[1]
+                if p.kind == "cell_final":
+                    states = states[1]
+                elif isinstance(states, tuple):
+                    states = states[0]
+                found[p.name] = states[k * d_all + d].unsqueeze(1).numpy()
+        return found
+
+    # ----- public --------------------------------------------------------------------------------------
+    def run(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
+        torch = self.torch
+        self._calls, self._seqs = {}, {}
+        with torch.inference_mode():
+            res = self.module(**{k: torch.from_numpy(np.ascontiguousarray(v)) for k, v in feeds.items()})
+            leaves = _flatten(res)
+            if len(leaves) != len(self.output_names):
+                raise UnsupportedModelError(type(self.module).__name__, [Unsupported(
+                    "forward", f"returns {len(leaves)} tensors, the ONNX file has {len(self.output_names)} "
+                    f"outputs", "verify the ONNX file exported from this model")])
+            out = {n: v.detach().numpy() for n, v in zip(self.output_names, leaves, strict=True)}
+            out.update(self._probe_values())
+        return out
+
+    def self_check(self, feeds: dict[str, np.ndarray[Any, Any]], got: dict[str, np.ndarray[Any, Any]]) -> float:
+        """Max |Δ| between each stacked module's decomposition and its own ``forward`` (last batch)."""
+        worst = 0.0
+        with self.torch.inference_mode():
+            for name in self._stacked:
+                m = self._mods[name]
+                for x, hx, out in self._calls.get(name, []):
+                    ref = type(m).forward(m, x, hx)
+                    for r, o in zip(_flatten(ref), _flatten(out), strict=True):
+                        worst = max(worst, float((r - o).abs().max()) if r.numel() else 0.0)
+        return worst

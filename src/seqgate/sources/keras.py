@@ -1,0 +1,77 @@
+"""Safe loading of Keras files: ``keras.models.load_model(path, safe_mode=True, compile=False)``.
+
+Lambda layers and classes from outside Keras are refused, because loading them would run code
+from the file; every failure becomes one clear paragraph (exit 2).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from seqgate.errors import BadInputError, UnsafeSourceError
+from seqgate.util.text import first_line
+
+
+def load_keras(path: Path) -> Any:
+    """Load a Keras model with ``safe_mode=True``; translate every failure to a clear error."""
+    from seqgate.util.frameworks import import_keras, quiet_stderr
+
+    keras = import_keras()
+    _check_container(path)
+    try:
+        with quiet_stderr():
+            return keras.models.load_model(str(path), safe_mode=True, compile=False)
+    except ValueError as e:
+        msg = str(e)
+        if "Lambda" in msg or "lambda" in msg or "safe_mode" in msg:
+            raise UnsafeSourceError(
+                f"{path}: refused to load a Lambda layer — loading it would run Python code "
+                f"stored in the file. Replace the Lambda with built-in layers, or export from "
+                f"a model rebuilt without it. (Keras said: {first_line(msg)})"
+            ) from e
+        raise BadInputError(f"{path}: Keras could not load the model: {first_line(msg)}") from e
+    except TypeError as e:
+        msg = str(e)
+        if "Could not locate" in msg or "custom" in msg.lower() or "register" in msg:
+            raise UnsafeSourceError(
+                f"{path}: {_custom_class_what(msg)} that is not part of Keras; building it would run "
+                f"code from outside Keras, so safe loading refuses it. seqgate loads only Keras's own "
+                f"layers: rebuild the model from built-in layers and save it again."
+            ) from e
+        raise BadInputError(f"{path}: Keras could not load the model: {first_line(msg)}") from e
+    except (OSError, KeyError, AttributeError, IndexError) as e:
+        raise BadInputError(
+            f"{path}: not a readable Keras model file ({type(e).__name__}: "
+            f"{first_line(str(e))}). Save the model with model.save('model.keras')."
+        ) from e
+
+
+def _custom_class_what(msg: str) -> str:
+    """'layer 'doubler' uses the custom class Doubler' from Keras's TypeError text, when present."""
+    import re
+
+    cls = re.search(r"Could not locate (?:class|function) '([^']+)'", msg)
+    name = re.search(r"Full object config: \{.*?'name': '([^']+)'", msg)
+    if cls and name:
+        return f"layer {name.group(1)!r} uses the custom class {cls.group(1)}"
+    if cls:
+        return f"the model uses the custom class {cls.group(1)}"
+    return f"the model uses a custom class ({first_line(msg)})"
+
+
+def _check_container(path: Path) -> None:
+    """A .keras file is a complete zip archive; an .h5 file has the HDF5 signature."""
+    import zipfile
+
+    with open(path, "rb") as f:
+        head = f.read(8)
+    if path.suffix.lower() == ".keras" and not head.startswith(b"PK"):
+        raise BadInputError(f"{path}: not a Keras archive (a .keras file is a zip file; this one "
+                            f"is not). It may be truncated or of another format.")
+    if path.suffix.lower() == ".keras" and not zipfile.is_zipfile(path):
+        raise BadInputError(f"{path}: the Keras archive is incomplete (its zip directory is missing); "
+                            f"the file is probably truncated. Copy or save the model again.")
+    if path.suffix.lower() in (".h5", ".hdf5") and head != b"\x89HDF\r\n\x1a\n":
+        raise BadInputError(f"{path}: not an HDF5 file (wrong signature). It may be truncated or "
+                            f"of another format.")

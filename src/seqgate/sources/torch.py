@@ -1,0 +1,251 @@
+"""Build a PyTorch module from a factory source and load its state dict safely.
+
+A PyTorch source is ``path/to/file.py:FACTORY`` or ``package.module:FACTORY`` (see
+``seqgate.sources``). FACTORY is a zero-argument callable — a function or a class — that
+returns the ``torch.nn.Module``.
+
+**Naming a Python file runs it.** seqgate imports the file (its directory is put first on
+``sys.path`` while it is imported, so it can import its neighbours) and calls FACTORY. That is
+the user's own code, run by the user's choice; seqgate never runs code found in a weights file.
+
+Weights (``--weights``) must be a state dict saved with ``torch.save(model.state_dict(), path)``.
+They are read with ``torch.load(weights_only=True, map_location="cpu")``, which refuses pickled
+classes, so a pickled whole module (``torch.save(model, path)``) is refused with a message that
+says how to save a state dict instead. Keys and shapes are compared with the module's own state
+dict before ``load_state_dict(strict=True)`` so the message can list every mismatch.
+
+The module is then put in ``eval()`` mode (dropout inert, batch-norm running statistics);
+:func:`load_torch_with_info` also says whether it was in training mode before.
+
+Every failure is a :class:`~seqgate.errors.BadInputError` (exit 2) with one paragraph: what
+failed, what was expected, what was found, what to do.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib
+import importlib.util
+import sys
+import traceback
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from seqgate.errors import BadInputError, UnsafeSourceError
+from seqgate.sources.spec import Source
+
+_MAX_LISTED = 12
+
+
+@dataclass(frozen=True)
+class LoadInfo:
+    """What loading did besides building the module."""
+
+    was_training: bool
+    weights_loaded: bool
+
+
+def load_torch(src: Source) -> Any:
+    """The source's ``nn.Module``, weights loaded, in ``eval()`` mode (see module docstring)."""
+    return load_torch_with_info(src)[0]
+
+
+def load_torch_with_info(src: Source) -> tuple[Any, LoadInfo]:
+    """:func:`load_torch` plus :class:`LoadInfo`."""
+    from seqgate.util.frameworks import import_torch
+
+    torch = import_torch()
+    if src.framework != "torch" or src.factory is None:
+        raise BadInputError(f"{src.text} is not a PyTorch source; use FILE.py:FACTORY or "
+                            f"package.module:FACTORY.")
+    factory = _find_factory(src)
+    module = _call_factory(src, factory, torch)
+    if src.weights is not None:
+        _load_weights(module, src.weights, torch)
+    was_training = bool(module.training)
+    module.eval()
+    return module, LoadInfo(was_training=was_training, weights_loaded=src.weights is not None)
+
+
+# ----- importing the factory --------------------------------------------------------------
+def _find_factory(src: Source) -> Any:
+    assert src.factory is not None
+    if src.path is not None:
+        mod = _import_file(src.path)
+        name = src.factory
+        where = str(src.path)
+    else:
+        modname, _, name = src.factory.rpartition(":")
+        mod = _import_module(modname)
+        where = modname
+    if not hasattr(mod, name):
+        names = sorted(k for k, v in vars(mod).items() if callable(v) and not k.startswith("_")
+                       and getattr(v, "__module__", None) == mod.__name__)
+        listed = ", ".join(names[:_MAX_LISTED]) or "none"
+        raise BadInputError(
+            f"{where} defines no {name!r}; expected a zero-argument function or class that returns "
+            f"the torch.nn.Module. Callables defined there: {listed}. Name one of them after the colon."
+        )
+    factory = getattr(mod, name)
+    if not callable(factory):
+        raise BadInputError(f"{where}:{name} is a {type(factory).__name__}, not a callable; point "
+                            f"at a function or class that returns the torch.nn.Module.")
+    return factory
+
+
+def _import_file(path: Path) -> Any:
+    """Import ``path`` under a private module name derived from its absolute path."""
+    resolved = path.resolve()
+    tag = hashlib.sha256(str(resolved).encode()).hexdigest()[:12]
+    modname = f"seqgate_user_{_identifier(resolved.stem)}_{tag}"
+    spec = importlib.util.spec_from_file_location(modname, resolved)
+    if spec is None or spec.loader is None:
+        raise BadInputError(f"{path} cannot be imported as a Python file.")
+    mod = importlib.util.module_from_spec(spec)
+    sys.modules[modname] = mod
+    folder = str(resolved.parent)
+    sys.path.insert(0, folder)
+    try:
+        spec.loader.exec_module(mod)
+    except SyntaxError as e:
+        sys.modules.pop(modname, None)
+        raise BadInputError(f"{path} has a Python syntax error at line {e.lineno}: {e.msg}. "
+                            f"Fix the file and run again.") from None
+    except BaseException as e:
+        sys.modules.pop(modname, None)
+        if isinstance(e, KeyboardInterrupt):
+            raise
+        raise BadInputError(
+            f"running {path} failed with {type(e).__name__}: {_short(e)}{_user_line(e, resolved)}. "
+            f"seqgate imports the file to find the factory; make it importable on its own."
+        ) from None
+    finally:
+        if folder in sys.path:
+            sys.path.remove(folder)
+    return mod
+
+
+def _import_module(modname: str) -> Any:
+    try:
+        return importlib.import_module(modname)
+    except ModuleNotFoundError as e:
+        raise BadInputError(f"Python module {modname!r} cannot be found ({_short(e)}); install the "
+                            f"package or pass FILE.py:FACTORY instead.") from None
+    except Exception as e:
+        raise BadInputError(f"importing {modname} failed with {type(e).__name__}: {_short(e)}.") from None
+
+
+def _call_factory(src: Source, factory: Any, torch: Any) -> Any:
+    label = f"{src.path}:{src.factory}" if src.path is not None else src.factory
+    try:
+        module = factory()
+    except Exception as e:
+        raise BadInputError(
+            f"the factory {label} raised {type(e).__name__}: {_short(e)}"
+            f"{_user_line(e, src.path.resolve() if src.path else None)}. It is called with no "
+            f"arguments and must return the torch.nn.Module; fix it so that it does."
+        ) from None
+    if not isinstance(module, torch.nn.Module):
+        raise BadInputError(
+            f"the factory {label} returned a {type(module).__module__}.{type(module).__name__}, "
+            f"expected a torch.nn.Module. Return the module itself (not a state dict, tuple or "
+            f"class)."
+        )
+    wrong = sorted({str(p.dtype) for p in module.parameters() if p.dtype != torch.float32})
+    if wrong:
+        raise BadInputError(
+            f"the module from {label} has parameters of dtype {', '.join(wrong)}; seqgate exports "
+            f"float32 models. Convert with model.float() in the factory."
+        )
+    return module
+
+
+# ----- weights ----------------------------------------------------------------------------
+def _load_weights(module: Any, path: Path, torch: Any) -> None:
+    state = _read_state_dict(path, torch)
+    own = module.state_dict()
+    missing = [k for k in own if k not in state]
+    unexpected = [k for k in state if k not in own]
+    if missing or unexpected:
+        prefixed = bool(unexpected) and all(k.startswith("module.") for k in unexpected) and \
+            {k[len("module."):] for k in unexpected} >= set(missing)
+        hint = (" The saved keys start with 'module.' (a DataParallel or DistributedDataParallel "
+                "wrapper): save model.module.state_dict() instead." if prefixed else "")
+        raise BadInputError(
+            f"weights {path} do not fit the module: {_listing('missing', missing)}"
+            f"{'; ' if missing and unexpected else ''}{_listing('unexpected', unexpected)}. "
+            f"Expected exactly the keys of model.state_dict() ({len(own)} entries); save the "
+            f"weights of the same architecture with torch.save(model.state_dict(), path).{hint}"
+        )
+    bad = [f"{k}: expected {tuple(own[k].shape)}, found {tuple(state[k].shape)}"
+           for k in own if tuple(own[k].shape) != tuple(state[k].shape)]
+    if bad:
+        shown = "; ".join(bad[:_MAX_LISTED]) + ("; …" if len(bad) > _MAX_LISTED else "")
+        raise BadInputError(
+            f"weights {path} have {len(bad)} tensor(s) of the wrong shape ({shown}). The factory "
+            f"builds a different size of model than the one saved; make them agree."
+        )
+    try:
+        module.load_state_dict(state, strict=True)
+    except Exception as e:
+        raise BadInputError(f"loading weights {path} failed: {_short(e)}.") from None
+
+
+def _read_state_dict(path: Path, torch: Any) -> dict[str, Any]:
+    try:
+        obj = torch.load(str(path), weights_only=True, map_location="cpu")
+    except Exception as e:
+        msg = str(e)
+        if "Unsupported global" in msg or "weights_only" in msg.lower() or "WeightsUnpickler" in msg:
+            raise UnsafeSourceError(
+                f"{path} holds pickled Python objects (a whole module or custom classes), not a "
+                f"state dict; seqgate loads weights with torch.load(weights_only=True) and will "
+                f"not run code stored in a file. Save the weights with "
+                f"torch.save(model.state_dict(), '{path.name}') and pass that file."
+            ) from None
+        raise BadInputError(
+            f"{path} is not a readable PyTorch weights file ({type(e).__name__}: {_short(e)}). It "
+            f"may be truncated or of another format; save it with "
+            f"torch.save(model.state_dict(), path)."
+        ) from None
+    if not isinstance(obj, dict) or not all(isinstance(v, torch.Tensor) for v in obj.values()):
+        if isinstance(obj, dict):
+            keys = ", ".join(repr(k) for k in list(obj)[:_MAX_LISTED])
+            found = f"a dict whose values are not all tensors (keys: {keys})"
+        else:
+            found = f"a {type(obj).__name__}"
+        raise BadInputError(
+            f"{path} holds {found}, expected a state dict (parameter name → tensor). If it is a "
+            f"training checkpoint, save just the model part: "
+            f"torch.save(model.state_dict(), path)."
+        )
+    return obj
+
+
+# ----- message helpers --------------------------------------------------------------------
+def _listing(label: str, keys: list[str]) -> str:
+    if not keys:
+        return ""
+    shown = ", ".join(keys[:_MAX_LISTED]) + (", …" if len(keys) > _MAX_LISTED else "")
+    return f"{len(keys)} {label} key(s) ({shown})"
+
+
+def _short(e: BaseException) -> str:
+    text = str(e).strip().splitlines()
+    return (text[0] if text else "no message")[:300]
+
+
+def _user_line(e: BaseException, path: Path | None) -> str:
+    """`` at FILE:LINE`` for the deepest traceback frame in the user's file, if any."""
+    if path is None:
+        return ""
+    frames = [f for f in traceback.extract_tb(e.__traceback__) if Path(f.filename) == path]
+    if not frames:
+        return ""
+    f = frames[-1]
+    return f" (at {path.name}:{f.lineno}: {(f.line or '').strip()})"
+
+
+def _identifier(text: str) -> str:
+    return "".join(c if c.isalnum() else "_" for c in text) or "file"

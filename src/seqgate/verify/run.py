@@ -1,0 +1,399 @@
+"""``verify_model``: replay windows through the source framework and ONNX Runtime and compare.
+
+Contract:
+- Compared tensors: every graph output and, unless ``states=False``, every probe of the probe
+  map (``seqgate.probes``), all in DESIGN.md's axes. Order = graph order: probes in map order
+  (the exporter records them as it emits nodes), then the outputs.
+- Rule: ``|onnx − source| ≤ atol + rtol·|source|`` elementwise (``seqgate.compare``), with
+  per-tensor overrides from the tolerance file.
+- Each recording, and each synthetic kind, is its own *set*; stats are kept per set and per
+  tensor, streaming batch by batch (memory flat), then merged per tensor for the headline.
+- First divergence: the earliest tensor in graph order that leaves tolerance in any set; the
+  first set (in processing order) where it does, the first step outside tolerance (for
+  time-indexed tensors) and the worst window there.
+- Class-score outputs: the producing op (through Identity) is Softmax/LogSoftmax/Sigmoid, or
+  ``task="classify"`` marks every output (``"regress"`` none); their top-1 agreement and label
+  flips are reported.
+- Outputs are compared batch-major (DESIGN.md ``[batch, time, ...]``): an output whose windows
+  axis is not 0 (PyTorch ``h_n`` ``[L·D, N, H]``: the ONNX dim named like the input batch dim,
+  else the first axis as long as the batch) is moved to axis 0; the entry's ``batch_axis``
+  says where it was.
+- Time-indexed outputs: rank ≥ 3 and (batch-major) axis 1 is the input's time dim (by ONNX dim
+  name; when the dim is unnamed, by length).
+- Synthetic sets take their per-feature scale from the first recording.
+- The report never claims more than was compared: a file without a probe map is compared on
+  outputs only and says so in ``warnings``.
+"""
+
+from __future__ import annotations
+
+import heapq
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
+from seqgate.onnxfile.probes import Probe, read_metadata, read_probe_map
+from seqgate.sources.spec import Source, parse_source
+from seqgate.util.files import sha256_file
+from seqgate.verify.compare import TensorStats, Tolerances, load_tolerances, merge_stats
+from seqgate.verify.recordings import (
+    InputSpec,
+    Recording,
+    feature_stats,
+    input_specs,
+    load_recording,
+    to_model_layout,
+)
+
+SCHEMA = "seqgate.verify/1"
+DEFAULT_BATCH = 64
+WORST_KEPT = 3  # windows per set kept for the oracle
+CLASS_OPS = ("Softmax", "LogSoftmax", "Sigmoid")
+
+
+@dataclass(frozen=True)
+class TensorInfo:
+    name: str
+    kind: str  # output | hidden_sequence | hidden_final | cell_final
+    layer: str | None = None
+    direction: str | None = None
+
+
+@dataclass
+class VerifyReport:
+    """Everything verify found; :meth:`to_json` is the ``seqgate.verify/1`` document."""
+
+    passed: bool
+    tensors: list[dict[str, Any]]
+    first_divergence: dict[str, Any] | None
+    recordings: list[dict[str, Any]]
+    model: dict[str, Any]
+    source: dict[str, Any]
+    seed: int
+    settings: dict[str, Any]
+    environment: dict[str, Any]
+    versions: dict[str, str]
+    oracle: dict[str, Any] | None = None
+    warnings: list[str] = field(default_factory=list)
+
+    @property
+    def exit_code(self) -> int:
+        return 0 if self.passed else 1
+
+    def headline(self) -> str:
+        if self.passed:
+            worst = max((t["metrics"]["max_abs"] or 0.0 for t in self.tensors), default=0.0)
+            return (f"PASSED: {len(self.tensors)} tensors on {len(self.recordings)} window sets within "
+                    f"tolerance (largest |Δ| {worst:.3g}).")
+        fd = self.first_divergence or {}
+        step = f" from step {fd['step']}" if fd.get("step") is not None else ""
+        return (f"FAILED: first divergence at {fd.get('kind')} '{fd.get('tensor')}'"
+                f"{' (layer ' + str(fd['layer']) + ')' if fd.get('layer') else ''}{step} in "
+                f"{fd.get('recording')}, window {fd.get('window')}: max |Δ| {fd.get('max_abs', 0):.3g} "
+                f"(atol {fd.get('atol'):g}, rtol {fd.get('rtol'):g}); {fd.get('outside')} elements outside.")
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "schema": SCHEMA, "passed": self.passed, "headline": self.headline(),
+            "first_divergence": self.first_divergence, "tensors": self.tensors,
+            "recordings": self.recordings, "model": self.model, "source": self.source,
+            "seed": self.seed, "settings": self.settings, "oracle": self.oracle,
+            "warnings": self.warnings, "environment": self.environment, "versions": self.versions,
+        }
+
+
+# ----- setup ---------------------------------------------------------------------------------
+def _class_outputs(model: Any) -> set[str]:
+    producer = {o: n for n in model.graph.node for o in n.output if o}
+    found = set()
+    for out in model.graph.output:
+        n = producer.get(out.name)
+        while n is not None and n.op_type == "Identity":
+            n = producer.get(n.input[0])
+        if n is not None and n.op_type in CLASS_OPS:
+            found.add(out.name)
+    return found
+
+
+def make_source_runner(src: Source, model: Any, probes: list[Probe], output_names: list[str],
+                       states: bool) -> Any:
+    """The source-framework runner for ``src`` (imports the framework)."""
+    if src.framework == "keras":
+        from seqgate.runtimes.keras import KerasRunner
+        from seqgate.sources.keras import load_keras
+
+        assert src.path is not None
+        return KerasRunner(load_keras(src.path), probes, output_names, states)
+    from seqgate.runtimes.torch import TorchRunner
+    from seqgate.sources.torch import load_torch  # type: ignore[import-not-found]
+
+    return TorchRunner(load_torch(src), probes, output_names, states)
+
+
+def _check_framework(model: Any, src: Source, warnings: list[str]) -> None:
+    meta = read_metadata(model)
+    fw = meta.get("seqgate.source.framework")
+    if fw and fw != src.framework:
+        raise BadInputError(f"the ONNX file was exported from a {fw} model, but --source is a {src.framework} "
+                            f"source ({src.text}). Verify against the model it was exported from.")
+    want = meta.get("seqgate.source.sha256")
+    if want and src.path is not None and src.path.is_file() and sha256_file(src.path) != want:
+        warnings.append(f"{src.path} differs from the file the ONNX model was exported from (sha256 in "
+                        f"the metadata); the comparison below says whether they still compute the same.")
+
+
+def _output_dims(model: Any) -> dict[str, list[Any]]:
+    from seqgate.onnxfile.load import value_dims
+
+    return {o.name: value_dims(o) for o in model.graph.output}
+
+
+def _tensor_infos(model: Any, probes: list[Probe]) -> list[TensorInfo]:
+    infos = [TensorInfo(p.name, p.kind, p.layer, p.direction) for p in probes]
+    return infos + [TensorInfo(o.name, "output") for o in model.graph.output]
+
+
+# ----- the run -------------------------------------------------------------------------------
+@dataclass
+class _SetResult:
+    recording: Recording
+    stats: dict[str, TensorStats]
+    worst: list[tuple[float, int, dict[str, np.ndarray[Any, Any]]]]
+
+
+class _Comparer:
+    def __init__(self, infos: list[TensorInfo], tol: Tolerances, class_names: set[str], specs: list[InputSpec],
+                 out_dims: dict[str, list[Any]]):
+        self.infos, self.tol, self.class_names, self.out_dims = infos, tol, class_names, out_dims
+        self.specs = specs
+        self.seq_input = next((s.name for s in specs if s.is_sequence), None)
+        self.time_dims = {s.window_dims[1] for s in specs
+                          if s.is_sequence and isinstance(s.window_dims[1], str)}
+        self.batch_dims = {s.window_dims[0] for s in specs if s.dims and isinstance(s.window_dims[0], str)}
+        self.batch_axis: dict[str, int] = {}
+
+    def _find_batch_axis(self, name: str, shape: tuple[int, ...], n: int) -> int:
+        """Outputs may hold the windows on another axis (PyTorch ``h_n`` is ``[L·D, N, H]``)."""
+        dims = self.out_dims.get(name, [])
+        named = [i for i, d in enumerate(dims) if d in self.batch_dims]
+        if named:
+            return named[0]
+        sized = [i for i, d in enumerate(shape) if d == n]
+        return 0 if not sized or sized[0] == 0 else sized[0]
+
+    def to_batch_major(self, name: str, x: np.ndarray[Any, Any]) -> np.ndarray[Any, Any]:
+        ax = self.batch_axis.get(name, 0)
+        return x if ax == 0 else np.moveaxis(x, ax, 0)
+
+    def _timed_output(self, name: str, shape: tuple[int, ...], steps: int | None) -> bool:
+        """Axis 1 is time: the ONNX dim names the input's time dim, else (unknown dim) its length matches."""
+        if len(shape) < 3:
+            return False
+        dims = list(self.out_dims.get(name, []))
+        ax = self.batch_axis.get(name, 0)
+        if ax and len(dims) > ax:
+            dims.insert(0, dims.pop(ax))
+        d1 = dims[1] if len(dims) > 1 else None
+        if isinstance(d1, str) and d1:
+            return d1 in self.time_dims
+        return d1 is None and shape[1] == steps
+
+    def new_stats(self, feeds: dict[str, np.ndarray[Any, Any]], first: dict[str, np.ndarray[Any, Any]]
+                  ) -> dict[str, TensorStats]:
+        steps = feeds[self.seq_input].shape[1] if self.seq_input else None
+        n = next(iter(feeds.values())).shape[0]
+        out = {}
+        for t in self.infos:
+            a, r = self.tol.for_tensor(t.name)
+            if t.kind == "output":
+                self.batch_axis[t.name] = self._find_batch_axis(t.name, first[t.name].shape, n)
+            shape = self.to_batch_major(t.name, first[t.name]).shape
+            timed = t.kind == "hidden_sequence" or (
+                t.kind == "output" and self._timed_output(t.name, shape, steps))
+            out[t.name] = TensorStats(a, r, timed, t.name in self.class_names)
+        return out
+
+    def run_set(self, rec: Recording, onnx_runner: Any, src_runner: Any, batch: int,
+                progress: Any, check: list[bool]) -> _SetResult:
+        stats: dict[str, TensorStats] = {}
+        worst: list[tuple[float, int, dict[str, np.ndarray[Any, Any]]]] = []
+        task = progress.add_task(rec.label, total=rec.windows) if progress else None
+        for start, feeds in rec.batches(batch):  # window-first arrays
+            model_feeds = to_model_layout(feeds, self.specs)
+            a = onnx_runner.run(model_feeds)
+            s = src_runner.run(model_feeds)
+            if check[0]:
+                _self_check(src_runner, model_feeds, s)
+                check[0] = False
+            if not stats:
+                stats = self.new_stats(feeds, s)
+            score = np.zeros(next(iter(feeds.values())).shape[0])
+            for t in self.infos:
+                _check_shapes(t, a[t.name], s[t.name])
+                st = stats[t.name]
+                st.update(self.to_batch_major(t.name, a[t.name]), self.to_batch_major(t.name, s[t.name]), start)
+                if st.window_max is not None:
+                    score = np.maximum(score, st.window_max)
+            _keep_worst(worst, score, start, model_feeds)
+            if progress:
+                progress.advance(task, len(score))
+        for st in stats.values():
+            st.release()
+        return _SetResult(rec, stats, worst)
+
+
+def _self_check(runner: Any, feeds: dict[str, np.ndarray[Any, Any]], got: dict[str, Any]) -> None:
+    check = getattr(runner, "self_check", None)
+    if check is None:
+        return
+    d = check(feeds, got)
+    if d > runner.self_check_atol:
+        raise UnsupportedModelError("the source model", [Unsupported(
+            "state capture", f"re-executing the model to read its states changes its outputs (max |Δ| {d:.3g})",
+            "run with --no-states to compare outputs only, and report this model to the seqgate developers")])
+
+
+def _check_shapes(t: TensorInfo, a: np.ndarray[Any, Any], s: np.ndarray[Any, Any]) -> None:
+    if a.shape != s.shape:
+        raise UnsupportedModelError("the exported model", [Unsupported(
+            t.name, f"ONNX Runtime gives shape {list(a.shape)}, the source {list(s.shape)}",
+            "the file does not compute the same tensor as the source; export it again")])
+
+
+def _keep_worst(worst: list[Any], score: np.ndarray[Any, Any], start: int, feeds: dict[str, Any]) -> None:
+    for i in np.argsort(-score)[:WORST_KEPT]:
+        item = (float(score[i]), -(start + int(i)), {k: v[i:i + 1].copy() for k, v in feeds.items()})
+        if len(worst) < WORST_KEPT:
+            heapq.heappush(worst, item)  # type: ignore[misc]
+        elif item[0] > worst[0][0]:
+            heapq.heapreplace(worst, item)  # type: ignore[misc]
+
+
+# ----- report --------------------------------------------------------------------------------
+def _tensor_entry(t: TensorInfo, results: list[_SetResult], batch_axis: int) -> dict[str, Any]:
+    parts = [r.stats[t.name] for r in results if t.name in r.stats]
+    merged = merge_stats(parts)
+    by = {}
+    for r in results:
+        st = r.stats.get(t.name)
+        if st is not None:
+            by[r.recording.label] = {"metrics": st.metrics(), "passed": st.passed,
+                                     "per_step_max_abs": st.per_step_max_abs()}
+    return {"name": t.name, "kind": t.kind, "layer": t.layer, "direction": t.direction,
+            "atol": merged.atol, "rtol": merged.rtol, "passed": merged.passed,
+            "metrics": merged.metrics(), "per_step_max_abs": merged.per_step_max_abs(), "by_recording": by,
+            "batch_axis": batch_axis}
+
+
+def _first_divergence(infos: list[TensorInfo], results: list[_SetResult]) -> dict[str, Any] | None:
+    for t in infos:
+        for r in results:
+            st = r.stats.get(t.name)
+            if st is None or st.passed:
+                continue
+            m = st.metrics()
+            return {"tensor": t.name, "kind": t.kind, "layer": t.layer, "direction": t.direction,
+                    "recording": r.recording.label, "step": st.first_bad_step(),
+                    "window": m["worst"]["window"] if m["worst"] else None, "max_abs": m["max_abs"],
+                    "outside": st.outside, "atol": st.atol, "rtol": st.rtol, "worst": m["worst"]}
+    return None
+
+
+def verify_model(
+    model_path: str | Path,
+    source: str | Source,
+    weights: str | None = None,
+    windows: Sequence[str | Path] = (),
+    synthetic: bool = False,
+    atol: float | None = None,
+    rtol: float | None = None,
+    tolerances: str | Tolerances | None = None,
+    batch_size: int = DEFAULT_BATCH,
+    states: bool = True,
+    oracle: bool = False,
+    progress: bool = False,
+    task: str | None = None,
+    seed: int = 0,
+) -> VerifyReport:
+    """Compare the ONNX file with its source on every window; see the module docstring."""
+    from seqgate.onnxfile.load import load_onnx
+    from seqgate.util.environment import environment
+    from seqgate.verify.synthetic import synthetic_sets
+
+    if batch_size < 1:
+        raise BadInputError(f"--batch-size must be ≥ 1, got {batch_size}.")
+    if task not in (None, "classify", "regress"):
+        raise BadInputError(f"--task {task!r}: choose 'classify' (every output holds class scores) or "
+                            f"'regress' (none does); without --task, softmax/sigmoid outputs are detected.")
+    if not windows and not synthetic:
+        raise BadInputError("nothing to compare: give recorded windows with --windows REC.npz and/or "
+                            "--synthetic.")
+    if isinstance(tolerances, Tolerances):  # built by a caller (the gate config), not read from a file
+        tol, tolerances = tolerances, None
+    else:
+        tol = load_tolerances(tolerances, atol, rtol)
+    path = Path(model_path)
+    model = load_onnx(path)
+    src = source if isinstance(source, Source) else parse_source(source, weights)
+    warnings: list[str] = []
+    _check_framework(model, src, warnings)
+    probes = read_probe_map(model) if states else []
+    if states and not probes:
+        warnings.append("the ONNX file has no seqgate probe map: only the model outputs were compared.")
+    specs = input_specs(model)
+    recs = [load_recording(w, specs) for w in windows]
+    if synthetic:
+        stats = feature_stats(recs[0], batch_size) if recs else None
+        recs += synthetic_sets(specs, stats, seed)
+    infos = _tensor_infos(model, probes)
+    warnings += [f"tolerance pattern {p!r} matches no tensor" for p in tol.unmatched([t.name for t in infos])]
+    from seqgate.runtimes.onnx import OnnxRunner
+
+    onnx_runner = OnnxRunner(model, probes)
+    output_names = [o.name for o in model.graph.output]
+    src_runner = make_source_runner(src, model, probes, output_names, states)
+    if task == "classify":
+        classes = set(output_names)
+    elif task == "regress":
+        classes = set()
+    else:
+        classes = _class_outputs(model)
+    comparer = _Comparer(infos, tol, classes, specs, _output_dims(model))
+    results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress)
+    entries = [_tensor_entry(t, results, comparer.batch_axis.get(t.name, 0)) for t in infos]
+    first = _first_divergence(infos, results)
+    oracle_out = None
+    if oracle:
+        from seqgate.verify.oracle import run_oracle
+
+        oracle_out = run_oracle(model, probes, infos, results, onnx_runner, src_runner, tol)
+    env = environment()
+    return VerifyReport(
+        passed=first is None, tensors=entries, first_divergence=first,
+        recordings=[r.recording.to_json() for r in results],
+        model={"path": str(path), "sha256": sha256_file(path), "inputs": [
+            {"name": s.name, "dtype": s.dtype.name, "dims": list(s.dims)} for s in specs]},
+        source={"text": src.text, "framework": src.framework,
+                "files": [{"path": str(f), "sha256": sha256_file(f)} for f in src.files()]},
+        seed=seed, settings={"atol": tol.atol, "rtol": tol.rtol, "batch_size": batch_size, "states": states,
+                             "synthetic": synthetic, "task": task, "tolerances_file": tolerances,
+                             "overrides": [list(o) for o in tol.overrides]},
+        environment=env, versions={"seqgate": env["seqgate"], **env["libraries"]}, oracle=oracle_out,
+        warnings=warnings)
+
+
+def _run_all(comparer: _Comparer, recs: list[Recording], onnx_runner: Any, src_runner: Any, batch: int,
+             show: bool) -> list[_SetResult]:
+    check = [True]
+    if not show:
+        return [comparer.run_set(r, onnx_runner, src_runner, batch, None, check) for r in recs]
+    from rich.console import Console
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
+
+    cols = (TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn())
+    with Progress(*cols, console=Console(stderr=True), transient=True) as bar:
+        return [comparer.run_set(r, onnx_runner, src_runner, batch, bar, check) for r in recs]
