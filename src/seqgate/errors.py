@@ -15,6 +15,7 @@ EXIT_CHECK_FAILED = 1
 EXIT_BAD_INPUT = 2
 EXIT_UNSUPPORTED = 3
 EXIT_INTERNAL = 4  # a bug in seqgate; the CLI reports it in one paragraph
+EXIT_INTERRUPTED = 130  # 128 + SIGINT, the shell's convention for a run stopped by Ctrl-C
 
 
 class SeqgateError(Exception):
@@ -31,6 +32,12 @@ class BadInputError(SeqgateError):
 
 class UnsafeSourceError(BadInputError):
     """Loading the artifact would execute code from the file (exit 2)."""
+
+
+class InterruptedRun(SeqgateError):
+    """The run was interrupted (SIGINT/SIGTERM) and cleaned up after itself (exit 130)."""
+
+    exit_code = EXIT_INTERRUPTED
 
 
 class CheckFailedError(SeqgateError):

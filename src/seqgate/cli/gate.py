@@ -18,13 +18,20 @@ def gate(
 ) -> None:
     """Export, verify and profile as the config declares; exit 0 only when every check passes."""
     from seqgate.cli.app import _fail
+    from seqgate.errors import InterruptedRun
     from seqgate.gate.run import run_gate
 
     try:
         report = run_gate(config, out, progress=not quiet)
+    except InterruptedRun as e:
+        typer.echo(str(e), err=True)
+        raise typer.Exit(e.exit_code) from None
     except SeqgateError as e:
         raise _fail(e) from None
-    _print_summary(report)
+    try:
+        _print_summary(report)
+    except KeyboardInterrupt:
+        pass  # the outputs are complete and in place: the exit code must stay the report's verdict
     raise typer.Exit(report.exit_code)
 
 

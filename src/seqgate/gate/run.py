@@ -25,6 +25,8 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
+import signal
+import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -33,6 +35,7 @@ from seqgate.errors import (
     EXIT_CHECK_FAILED,
     EXIT_PASSED,
     BadInputError,
+    InterruptedRun,
     SeqgateError,
 )
 from seqgate.gate.config import GateConfig, load_gate_config
@@ -52,6 +55,7 @@ class GateReport:
     error: dict[str, Any] | None = None
     files: dict[str, str] = field(default_factory=dict)
     model_name: str = ""
+    build_dir: Path | None = None  # where the run writes; becomes out_dir at the end
     stage: str = "export"  # the step running now; names the failed check when a step raises
 
     @property
@@ -64,7 +68,15 @@ class GateReport:
             return int(self.error["exit_code"])
         return EXIT_PASSED if self.passed else EXIT_CHECK_FAILED
 
+    @property
+    def work_dir(self) -> Path:
+        return self.build_dir if self.build_dir is not None else self.out_dir
+
     def to_dict(self) -> dict[str, Any]:
+        """``report.json``; paths inside the private build folder are given as their final place."""
+        return _relocated(self._dict(), self.work_dir, self.out_dir)
+
+    def _dict(self) -> dict[str, Any]:
         from seqgate import __version__
         from seqgate.util.environment import environment
 
@@ -83,20 +95,67 @@ class GateReport:
             "error": self.error,
             "verify": self.verify,
             "profile": self.profile,
-            "provenance": {"files": self.files},
+            "provenance": {"files": self.files,
+                           "model_sha256": self.files.get(str(self.work_dir / "model.onnx"))},
             "environment": environment(),
         }
 
 
+def _relocated(value: Any, old: Path, new: Path) -> Any:
+    """Every string path under ``old`` rewritten under ``new`` (dict keys included)."""
+    if old == new:
+        return value
+    a, b = str(old), str(new)
+    if isinstance(value, dict):
+        return {_relocated(k, old, new): _relocated(v, old, new) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return type(value)(_relocated(v, old, new) for v in value)
+    if isinstance(value, str) and value.startswith(a):
+        return b + value[len(a):]
+    return value
+
+
 def run_gate(config: str | Path, out: str | Path | None = None, progress: bool = False) -> GateReport:
-    """Run the whole gate (see the module docstring); reports are written even when a check fails."""
+    """Run the whole gate (see the module docstring); reports are written even when a check fails.
+
+    Outputs are built in a private folder and replace ``out`` in one step at the end, under a
+    lock on ``out`` (``seqgate.gate.outdir``); a run that does not finish changes nothing there.
+    """
+    from seqgate.gate import outdir
+
     cfg = load_gate_config(config)
     out_dir = Path(out) if out is not None else cfg.base / f"{cfg.path.stem}-report"
-    try:
-        out_dir.mkdir(parents=True, exist_ok=True)
-    except OSError as e:
-        raise BadInputError(f"cannot create the output directory {out_dir} ({e.strerror}).") from e
-    report = GateReport(cfg, out_dir, model_name=Path(cfg.source.split(":")[0]).stem)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise BadInputError(f"gate output {out_dir} is a file, not a folder; choose a folder with --out.")
+    with outdir.folder_lock(out_dir, cfg.path), _InterruptWatch() as watch:
+        outdir.check_replaceable(out_dir)
+        outdir.clear_stale(out_dir)
+        build = outdir.make_build_dir(out_dir)
+        try:
+            report = _run_into(cfg, out_dir, build, progress)
+            watch.raising = False  # from here on a signal is noted, never raised mid-swap
+            if watch.seen:
+                raise KeyboardInterrupt
+            outdir.commit(build, out_dir)
+            report.build_dir = None
+        except BaseException as e:
+            outdir.discard(build)
+            # A signal can surface as another exception (an import interrupted mid-way raises
+            # ImportError; a wrapped one may become a SeqgateError): the flag decides.
+            if watch.seen or isinstance(e, KeyboardInterrupt):
+                raise InterruptedRun(f"interrupted; nothing written to {out_dir} (what it held before "
+                                     f"is unchanged).") from None
+            if isinstance(e, OSError):
+                where = e.filename or build
+                raise BadInputError(f"the gate could not write its outputs ({e.strerror or e} at {where}); "
+                                    f"nothing was written to {out_dir}. Free space or choose another "
+                                    f"folder with --out.") from e
+            raise
+    return report
+
+
+def _run_into(cfg: GateConfig, out_dir: Path, build: Path, progress: bool) -> GateReport:
+    report = GateReport(cfg, out_dir, model_name=Path(cfg.source.split(":")[0]).stem, build_dir=build)
     report.files[str(cfg.path)] = _sha(cfg.path)
     try:
         _run_checks(report, progress)
@@ -108,6 +167,31 @@ def run_gate(config: str | Path, out: str | Path | None = None, progress: bool =
     return report
 
 
+class _InterruptWatch:
+    """SIGINT and SIGTERM (what CI systems send on cancel) during a gate: note them, and raise
+    KeyboardInterrupt while ``raising`` so long work stops at once. Main thread only."""
+
+    def __init__(self) -> None:
+        self.seen = False
+        self.raising = True
+        self._previous: dict[int, Any] = {}
+
+    def _handle(self, signum: int, frame: object) -> None:
+        self.seen = True
+        if self.raising:
+            raise KeyboardInterrupt
+
+    def __enter__(self) -> _InterruptWatch:
+        if threading.current_thread() is threading.main_thread():
+            for sig in (signal.SIGINT, signal.SIGTERM):
+                self._previous[sig] = signal.signal(sig, self._handle)
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        for sig, handler in self._previous.items():
+            signal.signal(sig, handler)
+
+
 def _sha(path: Path) -> str:
     from seqgate.util.files import sha256_file
 
@@ -116,8 +200,7 @@ def _sha(path: Path) -> str:
 
 def _run_checks(report: GateReport, progress: bool) -> None:
     cfg = report.config
-    model_path = report.out_dir / "model.onnx"
-    model_path.unlink(missing_ok=True)  # a model left by an earlier run must not pass for this one's
+    model_path = report.work_dir / "model.onnx"
     weights = str(cfg.weights) if cfg.weights else None
     if cfg.onnx is not None:
         model = _adopt_onnx(report, model_path)
@@ -241,7 +324,7 @@ def write_reports(report: GateReport) -> None:
     from seqgate.util.files import write_atomic, write_text_atomic
 
     d = report.to_dict()
-    out = report.out_dir
+    out = report.work_dir
     write_text_atomic(out / "report.json", json.dumps(strict_json(d), indent=2, sort_keys=True) + "\n")
     write_text_atomic(out / "report.md", gate_markdown(d))
     write_atomic(out / "junit.xml", gate_junit(d))
