@@ -85,7 +85,7 @@ def plot_png(report: dict[str, Any]) -> bytes:
     ax.legend(fontsize=7, loc="upper left")
     fig.tight_layout()
     out = io.BytesIO()
-    fig.savefig(out, format="png")
+    fig.savefig(out, format="png", metadata={"Software": "seqgate"})  # the mark util.ownership reads
     return out.getvalue()
 
 

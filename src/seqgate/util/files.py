@@ -28,14 +28,19 @@ def check_output_path(path: Path, option: str = "output file") -> None:
                             f"or choose another path.")
 
 
-def check_writable(path: Path, force: bool) -> None:
-    """Refuse to overwrite an existing file unless ``force``; then :func:`check_output_path`."""
-    if path.exists() and not path.is_dir() and not force:
+def check_writable(path: Path, force: bool, option: str = "output file") -> None:
+    """The one overwrite policy (``seqgate.util.ownership``), then :func:`check_output_path`.
+
+    A file seqgate wrote earlier is replaced; any other existing file only with ``force``.
+    """
+    from seqgate.util.ownership import written_by_seqgate
+
+    if path.exists() and not path.is_dir() and not force and not written_by_seqgate(path):
         raise BadInputError(
-            f"output file {path} already exists; seqgate does not overwrite files unless asked. "
-            f"Pass --force to replace it, or choose another path with -o."
+            f"{option} {path} already exists and was not written by seqgate; seqgate replaces only "
+            f"files it wrote itself. Pass --force to replace it, or choose another path."
         )
-    check_output_path(path, "output file")
+    check_output_path(path, option)
 
 
 def write_atomic(path: str | os.PathLike[str], data: bytes) -> None:
