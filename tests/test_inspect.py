@@ -144,3 +144,50 @@ def test_inspect_refuses_files_that_are_not_onnx(tmp_path: Path) -> None:
     r = CliRunner().invoke(app, ["inspect", str(junk)])
     assert r.exit_code == 2 and "not a readable ONNX model" in r.output
     assert "Traceback" not in r.output
+
+
+def test_a_module_called_twice_counts_its_parameters_once(tmp_path: Path) -> None:
+    """Reference: PyTorch's own count, ``sum(p.numel() for p in module.parameters())``."""
+    import importlib.util
+
+    import torch
+
+    from seqgate.export.run import export_source
+
+    body = '''
+import torch
+from torch import nn
+
+
+class Twice(nn.Module):
+    def __init__(self) -> None:
+        super().__init__()
+        self.lstm = nn.LSTM(4, 8, batch_first=True)
+        self.fc = nn.Linear(8, 8)
+
+    def forward(self, x):
+        out, _ = self.lstm(x)
+        return self.fc(torch.relu(self.fc(out[:, -1])))
+
+
+def build():
+    return Twice()
+'''
+    py = tmp_path / "twice.py"
+    py.write_text(body)
+    torch.manual_seed(0)
+    spec = importlib.util.spec_from_file_location("twice_ref", py)
+    assert spec is not None and spec.loader is not None
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    module = mod.build()
+    pt = tmp_path / "twice.pt"
+    torch.save(module.state_dict(), pt)
+    out = tmp_path / "twice.onnx"
+    export_source(f"{py}:build", out, weights=str(pt))
+    r = runner.invoke(app, ["inspect", str(out), "--json"])
+    assert r.exit_code == 0, r.output
+    assert json.loads(r.output)["totals"]["params"] == sum(p.numel() for p in module.parameters())
+    # the file holds the shared Linear weight once
+    weights = [i for i in onnx.load(str(out)).graph.initializer if list(i.dims) == [8, 8]]
+    assert len(weights) == 1

@@ -56,7 +56,9 @@ def describe(model: onnx.ModelProto) -> dict[str, Any]:
         "producer": f"{model.producer_name} {model.producer_version}".strip(),
         "layers": layer_rows,
         "totals": {
-            "params": sum(r["params"] for r in layer_rows),
+            # each initializer once, however many layers (or calls of one module) read it
+            "params": sum(init_sizes[i] for i in {i for n in model.graph.node for i in n.input
+                                                  if i in init_sizes}),
             "macs_per_step": sum(r["macs_per_step"] for r in layer_rows),
             "macs_per_sequence": sum(r["macs_per_sequence"] for r in layer_rows),
         },
@@ -67,7 +69,7 @@ def describe(model: onnx.ModelProto) -> dict[str, Any]:
 
 def _layer_row(name: str, kind: str, nodes: list[str], costs: dict[str, Any],
                by_name: dict[str, onnx.NodeProto], init_sizes: dict[str, int]) -> dict[str, Any]:
-    # a shared initializer is counted once per layer
+    # a row counts every initializer its nodes read; the totals count each initializer once
     inits = {i for n in nodes for i in by_name[n].input if i in init_sizes}
     return {
         "layer": name,

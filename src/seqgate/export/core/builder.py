@@ -63,6 +63,9 @@ class Value:
         return len(self.shape)
 
 
+SHARE_MIN = 2  # arrays, not float scalars (whose names readers of the graph rely on)
+
+
 def np_to_onnx_type(dtype: np.dtype[Any] | type) -> int:
     """ONNX TensorProto element type of a NumPy dtype."""
     return helper.np_dtype_to_tensor_dtype(np.dtype(dtype))
@@ -84,6 +87,7 @@ class GraphBuilder:
         self._names: set[str] = set()
         self._nodes: list[onnx.NodeProto] = []
         self._inits: dict[str, onnx.TensorProto] = {}
+        self._by_content: dict[tuple[str, tuple[int, ...], bytes], str] = {}
         self._inputs: list[onnx.ValueInfoProto] = []
         self._outputs: list[tuple[str, str, int, list[DimSpec]]] = []
         self._probes: list[Probe] = []
@@ -134,11 +138,23 @@ class GraphBuilder:
         return name
 
     def const(self, array: np.ndarray[Any, Any], hint: str) -> str:
-        """Add an initializer (kept in its dtype) and return its name."""
-        name = self.fresh(hint)
+        """Add an initializer (kept in its dtype) and return its name.
+
+        A floating-point array of at least ``SHARE_MIN`` elements that is byte-for-byte equal to
+        one already added (a module called twice, a weight tied to another) reuses that
+        initializer: the file holds each weight once, and counts of parameters stay true.
+        """
         # np.ascontiguousarray would turn a 0-d array into shape [1]; keep scalars scalar.
         data = np.array(array, copy=True, order="C")
+        key = None
+        if data.dtype.kind == "f" and data.size >= SHARE_MIN:
+            key = (data.dtype.str, data.shape, data.tobytes())
+            if key in self._by_content:
+                return self._by_content[key]
+        name = self.fresh(hint)
         self._inits[name] = numpy_helper.from_array(data, name)
+        if key is not None:
+            self._by_content[key] = name
         return name
 
     def ints(self, values: Sequence[int], hint: str = "shape") -> str:
