@@ -36,6 +36,7 @@ from seqgate.errors import (
     SeqgateError,
 )
 from seqgate.gate.config import GateConfig, load_gate_config
+from seqgate.util.text import first_line
 
 SCHEMA = "seqgate.gate/1"
 
@@ -103,7 +104,7 @@ def run_gate(config: str | Path, out: str | Path | None = None, progress: bool =
     except SeqgateError as e:
         report.error = {"exit_code": e.exit_code, "message": str(e), "kind": type(e).__name__,
                         "stage": report.stage}
-        report.checks.append({"name": report.stage, "passed": False, "detail": str(e).splitlines()[0]})
+        report.checks.append({"name": report.stage, "passed": False, "detail": first_line(e)})
     write_reports(report)
     return report
 

@@ -32,6 +32,7 @@ from seqgate.profile.budgets import Budget, check_percentile, parse_budgets, par
 from seqgate.profile.inputs import InputPlan, make_inputs, model_axes, plan_inputs
 from seqgate.profile.result import ONNXRUNTIME, Point, ProfileReport, attach_speedups, budget_checks, fits_for
 from seqgate.profile.stats import summarize_ns
+from seqgate.util.text import first_line
 
 DEFAULT_SEQ_LENS = (1, 8, 32, 128, 512)
 DEFAULT_WARMUP = 10
@@ -98,7 +99,7 @@ def make_session(model_bytes: bytes, threads: int) -> tuple[Any, dict[str, Any]]
     try:
         sess = ort.InferenceSession(model_bytes, so, providers=["CPUExecutionProvider"])
     except Exception as e:  # onnxruntime raises its own exception types for invalid graphs
-        raise BadInputError(f"onnxruntime could not load the model: {str(e).strip()[:400]}. Check it "
+        raise BadInputError(f"onnxruntime could not load the model: {first_line(e)}. Check it "
                             f"with `seqgate inspect`, or export it again.") from e
     recorded = {
         "intra_op_num_threads": threads, "inter_op_num_threads": 1,
@@ -319,7 +320,7 @@ class _Sweep:
             shapes = ", ".join(f"{k} {list(v.shape)} {v.dtype}" for k, v in feeds.items())
             raise BadInputError(
                 f"the {runner.runtime} source failed on the inputs the ONNX model takes ({shapes}) at "
-                f"T={t}, batch {b}: {type(e).__name__}: {str(e).strip()[:300]}. The source must take "
+                f"T={t}, batch {b}: {type(e).__name__}: {first_line(e)}. The source must take "
                 f"the exported graph's inputs, in its order and layout; is it the model that was exported?"
             ) from e
         if runner.runtime == "keras" and used != th:

@@ -8,6 +8,7 @@ import numpy as np
 
 from seqgate.errors import BadInputError
 from seqgate.onnxfile.probes import Probe, to_canonical, with_probe_outputs
+from seqgate.util.text import first_line
 
 
 class OnnxRunner:
@@ -32,7 +33,7 @@ class OnnxRunner:
         try:
             self.session = ort.InferenceSession(m.SerializeToString(), opts, providers=["CPUExecutionProvider"])
         except Exception as e:  # onnxruntime raises its own exception types
-            raise BadInputError(f"onnxruntime cannot load the model: {str(e).splitlines()[0][:300]}") from e
+            raise BadInputError(f"onnxruntime cannot load the model: {first_line(e)}") from e
         values = list(dict.fromkeys([*self.output_names, *(p.value for p in self.probes)]))
         self._fetch = values
 
