@@ -32,10 +32,11 @@ from typing import Any
 from seqgate.errors import (
     EXIT_CHECK_FAILED,
     EXIT_PASSED,
-    BadInputError,
     SeqgateError,
 )
 from seqgate.gate.config import GateConfig, load_gate_config
+from seqgate.util.files import check_output_dir
+from seqgate.util.progress import SILENT, Progress
 from seqgate.util.text import first_line
 
 SCHEMA = "seqgate.gate/1"
@@ -89,14 +90,16 @@ class GateReport:
         }
 
 
-def run_gate(config: str | Path, out: str | Path | None = None, progress: bool = False) -> GateReport:
-    """Run the whole gate (see the module docstring); reports are written even when a check fails."""
+def run_gate(config: str | Path, out: str | Path | None = None, progress: Progress | None = None) -> GateReport:
+    """Run the whole gate (see the module docstring); reports are written even when a check fails.
+
+    ``progress`` receives one stage per step (exporting, verifying N window sets, profiling K
+    points); see ``seqgate.util.progress``.
+    """
+    progress = progress or SILENT
     cfg = load_gate_config(config)
     out_dir = Path(out) if out is not None else cfg.base / f"{cfg.path.stem}-report"
-    try:
-        out_dir.mkdir(parents=True, exist_ok=True)
-    except OSError as e:
-        raise BadInputError(f"cannot create the output directory {out_dir} ({e.strerror}).") from e
+    check_output_dir(out_dir)
     report = GateReport(cfg, out_dir, model_name=Path(cfg.source.split(":")[0]).stem)
     report.files[str(cfg.path)] = _sha(cfg.path)
     try:
@@ -115,7 +118,7 @@ def _sha(path: Path) -> str:
     return sha256_file(path)
 
 
-def _run_checks(report: GateReport, progress: bool) -> None:
+def _run_checks(report: GateReport, progress: Progress) -> None:
     cfg = report.config
     model_path = report.out_dir / "model.onnx"
     model_path.unlink(missing_ok=True)  # a model left by an earlier run must not pass for this one's
@@ -123,7 +126,9 @@ def _run_checks(report: GateReport, progress: bool) -> None:
     if cfg.onnx is not None:
         model = _adopt_onnx(report, model_path)
     else:
+        progress.start("exporting")
         model = _export(report, model_path, weights)
+        progress.finish()
     report.stage = "latency"
     _check_lengths(cfg, model)
     report.stage = "verify"
@@ -178,7 +183,7 @@ def _check_lengths(cfg: GateConfig, model: Any) -> None:
         lengths_to_measure(model, cfg.seq_lens, [f"{b.seq_len}={b.ms}" for b in cfg.budgets])
 
 
-def _verify(report: GateReport, model_path: Path, weights: str | None, progress: bool) -> None:
+def _verify(report: GateReport, model_path: Path, weights: str | None, progress: Progress) -> None:
     from seqgate.verify.compare import Tolerances, load_tolerances
     from seqgate.verify.run import verify_model
 
@@ -198,15 +203,9 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
     report.checks.append({"name": "verify", "passed": vr.passed, "detail": vr.headline()})
 
 
-def _profile(report: GateReport, model_path: Path, weights: str | None, progress: bool) -> None:
+def _profile(report: GateReport, model_path: Path, weights: str | None, progress: Progress) -> None:
     cfg = report.config
-    if progress:
-        from seqgate.cli.profile import _progress
-
-        with _progress() as bar:
-            pr = _measure(cfg, model_path, weights, bar)
-    else:
-        pr = _measure(cfg, model_path, weights, None)
+    pr = _measure(cfg, model_path, weights, progress)
     report.profile = pr.to_dict()
     budgets = report.profile.get("budgets") or []
     missed = [b for b in budgets if not b["passed"]]
@@ -222,7 +221,7 @@ def _profile(report: GateReport, model_path: Path, weights: str | None, progress
     report.checks.append({"name": "latency", "passed": pr.passed, "detail": detail})
 
 
-def _measure(cfg: GateConfig, model_path: Path, weights: str | None, bar: Any) -> Any:
+def _measure(cfg: GateConfig, model_path: Path, weights: str | None, progress: Progress) -> Any:
     from seqgate.profile.run import profile_model
 
     return profile_model(
@@ -230,7 +229,7 @@ def _measure(cfg: GateConfig, model_path: Path, weights: str | None, bar: Any) -
         min_runs=cfg.min_runs, min_time=cfg.min_time,
         budgets=[f"{b.seq_len}={b.ms}" for b in cfg.budgets], percentile=cfg.percentile,
         source=cfg.source if cfg.compare_source else None,
-        weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=bar,
+        weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=progress,
     )
 
 
