@@ -2,7 +2,9 @@
 
 Outputs: ``forward``'s result flattened by ``seqgate.util.outputs.flatten_outputs`` (depth
 first, dicts in insertion order: the exporter's rule), matched in order to the ONNX graph
-outputs. Inputs are passed by name (the ONNX inputs are ``forward``'s parameters).
+outputs. Inputs are passed by name when ``forward`` has parameters of those names (the ONNX
+inputs of a PyTorch export are ``forward``'s parameters), else by position in the ONNX input
+order (an ONNX file exported from another source, profiled beside this module).
 
 Two calls: :meth:`TorchRunner.run` (outputs and probes, for verify) and
 :meth:`TorchRunner.timed_call` (the bare module under ``inference_mode`` with the point's
@@ -161,13 +163,23 @@ class TorchRunner:
         self._recording = True
         try:
             with torch.inference_mode():
-                res = self.module(**self._tensors(feeds))
-                return self._collect(res)
+                args, kwargs = self._arguments(feeds)
+                return self._collect(self.module(*args, **kwargs))
         finally:
             self._recording = False
 
-    def _tensors(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, Any]:
-        return {k: self.torch.from_numpy(np.ascontiguousarray(v)) for k, v in feeds.items()}
+    def _arguments(self, feeds: dict[str, np.ndarray[Any, Any]]) -> tuple[list[Any], dict[str, Any]]:
+        """``forward``'s arguments: by name when it takes these names, else by position."""
+        import inspect
+
+        tensors = {k: self.torch.from_numpy(np.ascontiguousarray(v)) for k, v in feeds.items()}
+        try:
+            params = inspect.signature(self.module.forward).parameters
+        except (TypeError, ValueError):
+            params = {}
+        if all(k in params for k in tensors):
+            return [], tensors
+        return list(tensors.values()), {}
 
     def _collect(self, res: Any) -> dict[str, np.ndarray[Any, Any]]:
         leaves = self.outputs(res)
@@ -186,14 +198,14 @@ class TorchRunner:
         ``threads`` intra-op threads and ``inference_mode`` hold while the call is used.
         """
         torch = self.torch
-        tensors = self._tensors(feeds)
+        args, kwargs = self._arguments(feeds)
         previous = torch.get_num_threads()
         torch.set_num_threads(threads)
         self._threads = torch.get_num_threads()
         module = self.module
         try:
             with torch.inference_mode():
-                yield lambda: module(**tensors)
+                yield lambda: module(*args, **kwargs)
         finally:
             torch.set_num_threads(previous)
 
