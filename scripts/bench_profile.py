@@ -2,7 +2,7 @@
 
 A demo-sized model (Keras LSTM I=8 H=64 → Dense 4, exported by seqgate) at T=128, batch 1,
 1 thread. One onnxruntime session, one set of inputs; in each round the profiler's timing loop
-(``seqgate.profile.time_call`` on ``ort_call``, exactly what ``profile_model`` times) and an
+(``seqgate.profile.run.time_call`` on ``OnnxRunner.timed_call``, exactly what ``profile_model`` times) and an
 independent bare loop (``time.perf_counter`` around ``session.run``, median by
 ``statistics.median``) run back to back, their order alternating between rounds so drift on a
 shared machine falls on both. The headline figure is the median over rounds of the per-round
@@ -59,21 +59,23 @@ def main() -> int:
     import onnx
 
     from seqgate.profile.inputs import make_inputs, plan_inputs
-    from seqgate.profile.run import make_session, ort_call, time_call
+    from seqgate.profile.run import time_call
     from seqgate.profile.stats import summarize_ns
+    from seqgate.runtimes.onnx import OnnxRunner
 
     with tempfile.TemporaryDirectory() as tmp:
         path = _export(Path(tmp))
         model = onnx.load(str(path))
-        sess, _ = make_session(model.SerializeToString(), THREADS)
+        runner = OnnxRunner(model, [], THREADS, timing=True)
+        sess = runner.session
         feeds = make_inputs(plan_inputs(model), BATCH, T, seed=0)
-        call = ort_call(sess, feeds)
         prof, bare = [], []
         for r in range(ROUNDS):
             order = ("profiler", "bare") if r % 2 == 0 else ("bare", "profiler")
             for which in order:
                 if which == "profiler":
-                    prof.append(summarize_ns(time_call(call, 10, RUNS, 0.0)).p50_ms)
+                    with runner.timed_call(feeds) as call:
+                        prof.append(summarize_ns(time_call(call, 10, RUNS, 0.0)).p50_ms)
                 else:
                     bare.append(_bare(sess, feeds, RUNS))
     p, b = statistics.median(prof), statistics.median(bare)

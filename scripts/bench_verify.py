@@ -88,17 +88,19 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
     import onnx
 
     from seqgate.onnxfile.probes import read_probe_map
+    from seqgate.runtimes.factory import open_source_runner
     from seqgate.runtimes.onnx import OnnxRunner
     from seqgate.sources.spec import parse_source
+    from seqgate.util.progress import SILENT
     from seqgate.verify.compare import load_tolerances
     from seqgate.verify.recordings import input_specs, load_recording
-    from seqgate.verify.run import _Comparer, _output_dims, _tensor_infos, make_source_runner, verify_model
+    from seqgate.verify.run import Comparer, output_dims, tensor_infos, verify_model
 
     model = onnx.load(str(onnx_path))
     probes = read_probe_map(model)
     names = [o.name for o in model.graph.output]
     src = parse_source(source, weights)
-    bare_src = make_source_runner(src, model, [], names, states=False)
+    bare_src = open_source_runner(src, [], names, states=False)
     import onnxruntime as ort
 
     plain = ort.InferenceSession(str(onnx_path), providers=["CPUExecutionProvider"])  # default options
@@ -108,19 +110,19 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
             return plain.run(None, feeds)
 
     bare_ort = _BareOrt()
-    full_src = make_source_runner(src, model, probes, names, states=True)
+    full_src = open_source_runner(src, probes, names, states=True)
     full_ort = OnnxRunner(model, probes)
     for r in (bare_src, bare_ort, full_src, full_ort):  # warm up (tracing, first-run allocations)
         r.run({"x": x[:BATCH]})
         r.run({"x": x[:BATCH]})
     specs = input_specs(model)
-    comparer = _Comparer(_tensor_infos(model, probes), load_tolerances(None), set(), specs, _output_dims(model))
+    comparer = Comparer(tensor_infos(model, probes), load_tolerances(None), set(), specs, output_dims(model))
     rec_obj = load_recording(rec, specs)
     best_bare, best_loop = float("inf"), float("inf")
     for _ in range(5):  # interleaved, best of 5: the machine is shared
         best_bare = min(best_bare, _loop(bare_src.run, x) + _loop(bare_ort.run, x))
         t0 = time.perf_counter()
-        comparer.run_set(rec_obj, full_ort, full_src, BATCH, None, [False])
+        comparer.run_set(rec_obj, full_ort, full_src, BATCH, SILENT, [False])
         best_loop = min(best_loop, time.perf_counter() - t0)
     t0 = time.perf_counter()
     rep = verify_model(onnx_path, source, weights, windows=[rec], batch_size=BATCH)

@@ -132,8 +132,8 @@ def test_interrupt_into_new_folder_leaves_nothing(passed_once: tuple, tmp_path: 
     p = _start(cfg, out)
     _wait_for(lambda: _build_has_model(out))
     p.send_signal(signal.SIGINT)
-    p.communicate(timeout=120)
-    assert p.returncode == 130
+    _, stderr = p.communicate(timeout=120)
+    assert p.returncode == 130, stderr
     assert not out.exists()
     _no_leftovers(out)
 

@@ -1,14 +1,17 @@
 """Error classes: each carries its exit code and a one-paragraph message.
 
-Exit codes (DESIGN.md): 0 passed; 1 a check failed; 2 bad usage or bad input file;
-3 a model seqgate cannot export. Messages read: what failed, what was expected, what was
-received, what to do. The CLI prints ``str(error)`` and exits with ``error.exit_code``;
-it never shows a traceback for these.
+Exit codes (DESIGN.md): 0 passed; 1 a check failed; 2 bad usage or bad input file (also an
+operating-system error on a path: permission, no space, read-only, not a directory);
+3 a model seqgate cannot export; 4 a bug in seqgate (:class:`InternalError`). Messages read:
+what failed, what was expected, what was received, what to do. The CLI prints ``str(error)``
+and exits with ``error.exit_code``; it never shows a traceback for these.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+
+from seqgate.util.text import first_line
 
 EXIT_PASSED = 0
 EXIT_CHECK_FAILED = 1
@@ -38,6 +41,44 @@ class InterruptedRun(SeqgateError):
     """The run was interrupted (SIGINT/SIGTERM) and cleaned up after itself (exit 130)."""
 
     exit_code = EXIT_INTERRUPTED
+
+
+class OutputPathError(BadInputError):
+    """The operating system refused a file seqgate reads or writes (exit 2).
+
+    The message names the path and the system's reason (``strerror``: "Permission denied",
+    "No space left on device", "Read-only file system", "Not a directory", …).
+    """
+
+    def __init__(self, path: object, error: OSError, doing: str = "write") -> None:
+        self.path = str(path)
+        self.reason = error.strerror or type(error).__name__
+        super().__init__(
+            f"cannot {doing} {self.path}: {self.reason}. Choose a path in a writable directory on a "
+            f"regular filesystem with free space, or fix the permissions."
+            if doing == "write" else f"cannot {doing} {self.path}: {self.reason}.")
+
+
+class InternalError(SeqgateError):
+    """A bug in seqgate, not in the user's files (exit 4); the message says where it happened."""
+
+    exit_code = EXIT_INTERNAL
+
+
+class MappingError(InternalError):
+    """A layer mapping raised something other than :class:`Refusal` (exit 4).
+
+    Names the layer, its class and the mapping function, so the bug report says where to look.
+    """
+
+    def __init__(self, layer: str, cls: str, mapping: object, error: BaseException) -> None:
+        fn = f"{getattr(mapping, '__module__', '?')}.{getattr(mapping, '__qualname__', repr(mapping))}"
+        self.layer, self.cls, self.mapping = layer, cls, fn
+        super().__init__(
+            f"internal error while exporting layer {layer!r} (class {cls}) with the mapping {fn}: "
+            f"{type(error).__name__}: {first_line(error)}. This is a bug in seqgate, not in your "
+            f"model; please report it with the layer's configuration. Run again with SEQGATE_DEBUG=1 "
+            f"to see the traceback.")
 
 
 class CheckFailedError(SeqgateError):

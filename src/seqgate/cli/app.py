@@ -12,12 +12,13 @@ import json
 import os
 import sys
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
 from seqgate import __version__
-from seqgate.errors import EXIT_INTERNAL, SeqgateError
+from seqgate.cli.errors import exit_for, exits_on_error, report_internal_error
+from seqgate.errors import SeqgateError
 
 app = typer.Typer(
     name="seqgate",
@@ -27,16 +28,6 @@ app = typer.Typer(
     add_completion=False,
     pretty_exceptions_enable=False,
 )
-
-
-def _fail(e: SeqgateError) -> typer.Exit:
-    from rich.console import Console
-    from rich.markup import escape
-
-    # escape: messages quote shapes like [batch, time, features], which rich would read as markup
-    console = Console(stderr=True, highlight=False, soft_wrap=True)
-    console.print(f"[bold red]error:[/] {escape(str(e))}", markup=True)
-    return typer.Exit(e.exit_code)
 
 
 def _version(value: bool) -> None:
@@ -54,6 +45,7 @@ def _root(
 
 
 @app.command()
+@exits_on_error
 def export(
     source: Annotated[str, typer.Argument(help="Keras .keras/.h5 file, or FILE.py:FACTORY for PyTorch.")],
     out: Annotated[Path, typer.Option("-o", "--out", help="Where to write the ONNX file.")],
@@ -66,16 +58,14 @@ def export(
     """Write the ONNX graph of a trained model, with native RNN/GRU/LSTM ops and a probe map."""
     from seqgate.export.run import DEFAULT_OPSET, export_source
 
-    try:
-        options = {"inputs": input_spec} if input_spec else {}
-        res = export_source(source, out, opset or DEFAULT_OPSET, force, weights, **options)
-    except SeqgateError as e:
-        raise _fail(e) from None
+    options = {"inputs": input_spec} if input_spec else {}
+    res = export_source(source, out, opset or DEFAULT_OPSET, force, weights, **options)
     n_nodes = len(res.model.graph.node)
     typer.echo(f"wrote {res.path} (opset {res.opset}, {n_nodes} nodes, {res.probes} probes)")
 
 
 @app.command()
+@exits_on_error
 def inspect(
     model: Annotated[Path, typer.Argument(help="ONNX file written by seqgate export.")],
     as_json: Annotated[bool, typer.Option("--json", help="Print JSON instead of tables.")] = False,
@@ -84,10 +74,7 @@ def inspect(
     from seqgate.onnxfile.inspect import describe
     from seqgate.onnxfile.load import load_onnx
 
-    try:
-        info = describe(load_onnx(model))
-    except SeqgateError as e:
-        raise _fail(e) from None
+    info = describe(load_onnx(model))
     if as_json:
         typer.echo(json.dumps(info, indent=2, sort_keys=True))
         return
@@ -98,20 +85,20 @@ def _print_inspection(info: dict) -> None:  # type: ignore[type-arg]
     from rich.console import Console
     from rich.table import Table
 
-    c = Console(highlight=False)
+    c = Console(highlight=False)  # names are user text: every cell below is plain Text
     io = Table(title=f"tensors (opset {info['opset']})")
     for col in ("role", "name", "dtype", "dims"):
         io.add_column(col)
     for role in ("inputs", "outputs"):
         for t in info[role]:
-            io.add_row(role[:-1], t["name"], t["dtype"], str(t["dims"]))
+            io.add_row(*_plain(role[:-1], t["name"], t["dtype"], str(t["dims"])))
     c.print(io)
     lt = Table(title="layers")
     for col in ("layer", "kind", "ONNX nodes", "params", "MACs/step", "MACs/sequence"):
         lt.add_column(col, justify="right" if col.startswith(("params", "MACs")) else "left")
     for r in info["layers"]:
-        lt.add_row(r["layer"], r["kind"], " ".join(r["nodes"]) or "(none at inference)",
-                   f"{r['params']:,}", f"{r['macs_per_step']:,}", f"{r['macs_per_sequence']:,}")
+        lt.add_row(*_plain(r["layer"], r["kind"], " ".join(r["nodes"]) or "(none at inference)",
+                           f"{r['params']:,}", f"{r['macs_per_step']:,}", f"{r['macs_per_sequence']:,}"))
     tot = info["totals"]
     lt.add_row("total", "", "", f"{tot['params']:,}", f"{tot['macs_per_step']:,}",
                f"{tot['macs_per_sequence']:,}", style="bold")
@@ -120,14 +107,21 @@ def _print_inspection(info: dict) -> None:  # type: ignore[type-arg]
     for col in ("probe", "kind", "layer", "direction", "ONNX value"):
         pt.add_column(col)
     for p in info["probes"]:
-        pt.add_row(p["name"], p["kind"], p["layer"], p["direction"], p["value"])
+        pt.add_row(*_plain(p["name"], p["kind"], p["layer"], p["direction"], p["value"]))
     c.print(pt)
     mt = Table(title="metadata")
     mt.add_column("key")
     mt.add_column("value")
     for k, v in sorted(info["metadata"].items()):
-        mt.add_row(k, v)
+        mt.add_row(*_plain(k, v))
     c.print(mt)
+
+
+def _plain(*cells: object) -> list[Any]:
+    """Table cells as rich ``Text``: user names like ``head [out]`` are shown, not read as markup."""
+    from rich.text import Text
+
+    return [Text(str(x)) for x in cells]
 
 
 # Each command module defines ``register(app)``; list it here so ``seqgate --help`` shows it.
@@ -140,23 +134,28 @@ for _module in COMMAND_MODULES:
 
 def main() -> None:
     """Console-script entry point."""
+    from seqgate.cli import errors as cli_errors
+
     try:
         app()
-    except SeqgateError as e:  # a command that forgot to translate
-        raise SystemExit(_fail(e).exit_code) from None
+    except SystemExit:
+        if cli_errors.interrupted:
+            # An interrupt that landed inside an import can leave CPython's "unhandled
+            # KeyboardInterrupt" mark set, and the interpreter would then end itself with SIGINT
+            # (exit -2) instead of 130. The run has cleaned up and said so: end now, with 130.
+            sys.stdout.flush()
+            sys.stderr.flush()
+            os._exit(130)
+        raise
+    except (SeqgateError, OSError) as e:  # raised outside a command (typer's own parsing)
+        raise SystemExit(exit_for(e).exit_code) from None
     except KeyboardInterrupt:
         sys.stderr.write("interrupted\n")
         raise SystemExit(130) from None
     except Exception as e:  # a bug in seqgate: say so in one paragraph, keep the traceback opt-in
         if os.environ.get("SEQGATE_DEBUG"):
             raise
-        first = (str(e).strip().splitlines() or [""])[0][:400]
-        sys.stderr.write(
-            f"internal error: seqgate failed unexpectedly ({type(e).__name__}: {first}). This is a bug in "
-            f"seqgate, not in your files as far as it can tell; please report it with the command line. "
-            f"Run again with SEQGATE_DEBUG=1 to see the traceback.\n"
-        )
-        raise SystemExit(EXIT_INTERNAL) from None
+        raise SystemExit(report_internal_error(e)) from None
 
 
 if __name__ == "__main__":

@@ -7,9 +7,11 @@ from typing import Annotated
 
 import typer
 
-from seqgate.errors import SeqgateError
+from seqgate.cli.errors import exits_on_error
+from seqgate.cli.progress import stage_display
 
 
+@exits_on_error
 def gate(
     config: Annotated[Path, typer.Argument(help="The gate config (TOML); see fixtures/gate_example.toml.")],
     out: Annotated[Path | None, typer.Option("--out", help="Directory for model.onnx and the reports "
@@ -17,17 +19,10 @@ def gate(
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display.")] = False,
 ) -> None:
     """Export, verify and profile as the config declares; exit 0 only when every check passes."""
-    from seqgate.cli.app import _fail
-    from seqgate.errors import InterruptedRun
     from seqgate.gate.run import run_gate
 
-    try:
-        report = run_gate(config, out, progress=not quiet)
-    except InterruptedRun as e:
-        typer.echo(str(e), err=True)
-        raise typer.Exit(e.exit_code) from None
-    except SeqgateError as e:
-        raise _fail(e) from None
+    with stage_display(quiet) as progress:
+        report = run_gate(config, out, progress=progress)
     try:
         _print_summary(report)
     except KeyboardInterrupt:
@@ -38,21 +33,26 @@ def gate(
 def _print_summary(report: object) -> None:
     from rich.console import Console
     from rich.table import Table
+    from rich.text import Text
 
+    from seqgate.cli.errors import print_error
+
+    # every name, path and message below is user text: Text objects, never markup
     r = report  # GateReport
     c = Console(highlight=False)
-    t = Table(title=f"seqgate gate — {r.model_name}")  # type: ignore[attr-defined]
+    t = Table(title=Text(f"seqgate gate — {r.model_name}"))  # type: ignore[attr-defined]
     for col in ("check", "verdict", "detail"):
         t.add_column(col, overflow="fold")
     for ch in r.checks:  # type: ignore[attr-defined]
-        t.add_row(ch["name"], "[green]pass[/]" if ch["passed"] else "[bold red]FAIL[/]", ch["detail"])
+        t.add_row(Text(ch["name"]), Text("pass", "green") if ch["passed"] else Text("FAIL", "bold red"),
+                  Text(ch["detail"]))
     c.print(t)
     if r.error:  # type: ignore[attr-defined]
-        Console(stderr=True, highlight=False).print(f"[bold red]error:[/] {r.error['message']}")  # type: ignore[attr-defined]
-    verdict = "[bold green]PASSED[/]" if r.passed else "[bold red]FAILED[/]"  # type: ignore[attr-defined]
+        print_error(r.error["message"])  # type: ignore[attr-defined]
+    verdict = Text("PASSED", "bold green") if r.passed else Text("FAILED", "bold red")  # type: ignore[attr-defined]
     names = [n for n in ("report.html", "report.json", "report.md", "junit.xml", "model.onnx")
              if (r.out_dir / n).is_file()]  # type: ignore[attr-defined]
-    c.print(f"{verdict}  reports in {r.out_dir}: {' '.join(names)}")  # type: ignore[attr-defined]
+    c.print(Text.assemble(verdict, f"  reports in {r.out_dir}: {' '.join(names)}"))  # type: ignore[attr-defined]
 
 
 def register(app: typer.Typer) -> None:

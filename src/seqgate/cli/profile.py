@@ -13,10 +13,13 @@ from typing import Annotated, Any
 
 import typer
 
-from seqgate.errors import EXIT_CHECK_FAILED, SeqgateError
+from seqgate.cli.errors import exits_on_error
+from seqgate.cli.progress import stage_display
+from seqgate.errors import EXIT_CHECK_FAILED
 from seqgate.util.files import check_output_path
 
 
+@exits_on_error
 def profile_command(
     model: Annotated[Path, typer.Argument(help="ONNX file written by seqgate export.")],
     seq_lens: Annotated[str, typer.Option("--seq-lens", help="Sequence lengths, comma-separated.")] = (
@@ -37,59 +40,31 @@ def profile_command(
     report: Annotated[Path | None, typer.Option("--report", help="Write the JSON report here.")] = None,
     csv: Annotated[Path | None, typer.Option("--csv", help="Write one CSV row per point here.")] = None,
     plot: Annotated[Path | None, typer.Option("--plot", help="Write a PNG plot of latency vs T here.")] = None,
+    quiet: Annotated[bool, typer.Option("--quiet", help="No progress display.")] = False,
 ) -> None:
     """Measure CPU latency per sequence length with ONNX Runtime, against budgets and the source."""
-    from seqgate.cli.app import _fail
     from seqgate.profile.run import profile_model
     from seqgate.report.profile_report import write_csv, write_json, write_plot
 
-    try:
-        for path, option in ((report, "--report"), (csv, "--csv"), (plot, "--plot")):
-            if path is not None:
-                check_output_path(path, option)
-        with _progress() as progress:
-            result = profile_model(
-                model, seq_lens=seq_lens, batches=batch, threads=threads, warmup=warmup,
-                min_runs=min_runs, min_time=min_time, budgets=budget or [], percentile=percentile,
-                source=source, weights=weights, seed=seed, progress=progress,
-            )
-        data = result.to_dict()
-        if report is not None:
-            write_json(data, report)
-        if csv is not None:
-            write_csv(data, csv)
-        if plot is not None:
-            write_plot(data, plot)
-    except SeqgateError as e:
-        raise _fail(e) from None
+    for path, option in ((report, "--report"), (csv, "--csv"), (plot, "--plot")):
+        if path is not None:
+            check_output_path(path, option)
+    with stage_display(quiet) as progress:
+        result = profile_model(
+            model, seq_lens=seq_lens, batches=batch, threads=threads, warmup=warmup,
+            min_runs=min_runs, min_time=min_time, budgets=budget or [], percentile=percentile,
+            source=source, weights=weights, seed=seed, progress=progress,
+        )
+    data = result.to_dict()
+    if report is not None:
+        write_json(data, report)
+    if csv is not None:
+        write_csv(data, csv)
+    if plot is not None:
+        write_plot(data, plot)
     print_tables(data)
     if not data["passed"]:
         raise typer.Exit(EXIT_CHECK_FAILED)
-
-
-class _progress:
-    """Context manager: a rich progress bar on stderr, handed out as a ``(done, total, label)`` callback."""
-
-    def __enter__(self) -> Any:
-        from rich.console import Console
-        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
-
-        # no auto-refresh: a render thread waking up 10 times a second would run during the timed
-        # calls; the bar is redrawn between points only
-        self._bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
-                             TimeElapsedColumn(), console=Console(stderr=True), transient=True,
-                             auto_refresh=False)
-        self._bar.__enter__()
-        self._task = self._bar.add_task("loading", total=None)
-
-        def update(done: int, total: int, label: str) -> None:
-            self._bar.update(self._task, completed=done, total=total, description=f"profiling {label}",
-                             refresh=True)
-
-        return update
-
-    def __exit__(self, *exc: object) -> None:
-        self._bar.__exit__(*exc)  # type: ignore[arg-type]
 
 
 def _f(x: float | None, digits: int = 3) -> str:
@@ -102,12 +77,13 @@ def print_tables(data: dict[str, Any]) -> None:
     """The points table, then fits, budgets and notes."""
     from rich.console import Console
     from rich.table import Table
+    from rich.text import Text
 
     probe = Console()
     # piped output has no terminal width: rich would squeeze the table into 80 columns
     c = Console(highlight=False, width=None if probe.is_terminal else 150)
     q = data["options"]["percentile"]
-    t = Table(title=f"latency per point (ms) — {Path(data['model']['path']).name}")
+    t = Table(title=Text(f"latency per point (ms) — {Path(data['model']['path']).name}"))
     cols = ("runtime", "threads", "batch", "T", "p50", "p90", "p99", "max", "mean", "std", "runs",
             "seq/s", "µs/step", "GFLOP/s", "speed-up")
     for col in cols:
@@ -135,15 +111,16 @@ def print_tables(data: dict[str, Any]) -> None:
         for b in data["budgets"]:
             bt.add_row(str(b["seq_len"]), str(b["threads"]), str(b["batch"]), f"{b['budget_ms']:g}",
                        _f(b["measured_ms"], 4), _f(b["margin_ms"], 4),
-                       "[green]holds[/]" if b["passed"] else "[bold red]missed[/]")
+                       Text("holds", "green") if b["passed"] else Text("missed", "bold red"))
         c.print(bt)
     timer, env = data["timer"], data["environment"]
-    c.print(f"seed {data['seed']}; timer overhead {timer['overhead_median_ns']} ns per run (reported, "
-            f"not subtracted); {env['cpu']}, {env['logical_cores']} logical cores")
+    c.print(Text(f"seed {data['seed']}; timer overhead {timer['overhead_median_ns']} ns per run (reported, "
+                 f"not subtracted); {env['cpu']}, {env['logical_cores']} logical cores"))
     for note in data["notes"]:
-        c.print(f"[yellow]note:[/] {note}")
+        c.print(Text.assemble(("note:", "yellow"), " ", note))
     if data["budgets"]:
-        c.print("[bold green]every budget holds[/]" if data["passed"] else "[bold red]a budget was missed[/]")
+        c.print(Text("every budget holds", "bold green") if data["passed"]
+                else Text("a budget was missed", "bold red"))
 
 
 def _longest(t: int | None) -> str:

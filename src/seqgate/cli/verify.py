@@ -11,7 +11,8 @@ from typing import Annotated, Any
 
 import typer
 
-from seqgate.errors import SeqgateError
+from seqgate.cli.errors import exits_on_error
+from seqgate.cli.progress import stage_display
 from seqgate.util.files import check_output_path
 
 TOLERANCE_HELP = (
@@ -20,16 +21,11 @@ TOLERANCE_HELP = (
 )
 
 
-def _fail(e: SeqgateError) -> typer.Exit:
-    from seqgate.cli.app import _fail as fail
-
-    return fail(e)
-
-
 def _split(text: str | None) -> list[str] | None:
     return [c.strip() for c in text.split(",") if c.strip()] if text else None
 
 
+@exits_on_error
 def verify(
     model: Annotated[Path, typer.Argument(help="ONNX file written by seqgate export.")],
     source: Annotated[str, typer.Option("--source", help="The trained model: .keras/.h5, or FILE.py:FACTORY.")],
@@ -55,15 +51,13 @@ def verify(
     """Replay windows through the source framework and ONNX Runtime; compare outputs and every hidden state."""
     from seqgate.verify.run import verify_model
 
-    try:
-        for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
-            if p is not None:
-                check_output_path(p, option)
+    for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
+        if p is not None:
+            check_output_path(p, option)
+    with stage_display(quiet) as progress:
         rep = verify_model(model, source, weights, [str(w) for w in windows or []], synthetic, atol, rtol,
                            str(tolerances) if tolerances else None, batch_size, not no_states, oracle,
-                           progress=not quiet, task=task, seed=seed)
-    except SeqgateError as e:
-        raise _fail(e) from None
+                           progress=progress, task=task, seed=seed)
     _write_reports(rep, report, junit, summary)
     if not quiet:
         _print_table(rep)
@@ -89,6 +83,7 @@ def _write_reports(rep: Any, report: Path | None, junit: Path | None, summary: P
 def _print_table(rep: Any) -> None:
     from rich.console import Console
     from rich.table import Table
+    from rich.text import Text
 
     st = rep.settings
     n_over = len(st["overrides"])
@@ -103,18 +98,20 @@ def _print_table(rep: Any) -> None:
     first = (rep.first_divergence or {}).get("tensor")
     for t in rep.tensors:
         m = t["metrics"]
-        fail = "[bold red]FIRST[/]" if t["name"] == first else "[red]fail[/]"
-        mark = "[green]ok[/]" if t["passed"] else fail
-        table.add_row(t["name"], t["kind"], f"{m['max_abs']:.2e}", f"{m['p99_abs']:.2e}", str(m["outside"]),
-                      mark)
+        fail = Text("FIRST", "bold red") if t["name"] == first else Text("fail", "red")
+        mark = Text("ok", "green") if t["passed"] else fail
+        # tensor names are user text (layer names may hold brackets): Text, never markup
+        table.add_row(Text(t["name"]), t["kind"], f"{m['max_abs']:.2e}", f"{m['p99_abs']:.2e}",
+                      str(m["outside"]), mark)
     c = Console(highlight=False)
     c.print(table)
     for w in rep.warnings:
-        c.print(f"[yellow]warning:[/] {w}")
+        c.print(Text.assemble(("warning:", "yellow"), " ", w))
     if rep.oracle is not None and not rep.oracle.get("ran"):
-        c.print(f"[yellow]oracle:[/] {rep.oracle['reason']}")
+        c.print(Text.assemble(("oracle:", "yellow"), " ", rep.oracle["reason"]))
 
 
+@exits_on_error
 def windows(
     data: Annotated[Path, typer.Argument(help="Time-series CSV with a header row.")],
     out: Annotated[Path, typer.Option("-o", "--out", help="The NPZ recording to write.")],
@@ -130,10 +127,7 @@ def windows(
     """Build sliding windows (samples × steps × features, plus targets) from a CSV into an NPZ recording."""
     from seqgate.verify.csv_windows import build_recording
 
-    try:
-        meta = build_recording(data, out, window, stride, horizon, _split(columns), _split(targets), force)
-    except SeqgateError as e:
-        raise _fail(e) from None
+    meta = build_recording(data, out, window, stride, horizon, _split(columns), _split(targets), force)
     tshape = f", targets {meta['targets_shape']}" if meta["targets_shape"] else ""
     typer.echo(f"wrote {out}: windows {meta['windows_shape']}{tshape} from {meta['rows']} rows")
 

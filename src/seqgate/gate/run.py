@@ -36,9 +36,13 @@ from seqgate.errors import (
     EXIT_PASSED,
     BadInputError,
     InterruptedRun,
+    OutputPathError,
     SeqgateError,
 )
 from seqgate.gate.config import GateConfig, load_gate_config
+from seqgate.util.files import check_output_dir
+from seqgate.util.progress import SILENT, Progress
+from seqgate.util.text import first_line
 
 SCHEMA = "seqgate.gate/1"
 
@@ -115,18 +119,22 @@ def _relocated(value: Any, old: Path, new: Path) -> Any:
     return value
 
 
-def run_gate(config: str | Path, out: str | Path | None = None, progress: bool = False) -> GateReport:
+def run_gate(config: str | Path, out: str | Path | None = None, progress: Progress | None = None) -> GateReport:
     """Run the whole gate (see the module docstring); reports are written even when a check fails.
 
     Outputs are built in a private folder and replace ``out`` in one step at the end, under a
     lock on ``out`` (``seqgate.gate.outdir``); a run that does not finish changes nothing there.
+    ``progress`` receives one stage per step (exporting, verifying N window sets, profiling K
+    points); see ``seqgate.util.progress``.
     """
     from seqgate.gate import outdir
 
+    progress = progress or SILENT
     cfg = load_gate_config(config)
     out_dir = Path(out) if out is not None else cfg.base / f"{cfg.path.stem}-report"
     if out_dir.exists() and not out_dir.is_dir():
         raise BadInputError(f"gate output {out_dir} is a file, not a folder; choose a folder with --out.")
+    check_output_dir(out_dir.parent, "folder of the gate output")  # the run builds beside out_dir
     with outdir.folder_lock(out_dir, cfg.path), _InterruptWatch() as watch:
         outdir.check_replaceable(out_dir)
         outdir.clear_stale(out_dir)
@@ -145,16 +153,15 @@ def run_gate(config: str | Path, out: str | Path | None = None, progress: bool =
             if watch.seen or isinstance(e, KeyboardInterrupt):
                 raise InterruptedRun(f"interrupted; nothing written to {out_dir} (what it held before "
                                      f"is unchanged).") from None
-            if isinstance(e, OSError):
-                where = e.filename or build
-                raise BadInputError(f"the gate could not write its outputs ({e.strerror or e} at {where}); "
-                                    f"nothing was written to {out_dir}. Free space or choose another "
-                                    f"folder with --out.") from e
+            if isinstance(e, OSError | OutputPathError):
+                reason = str(e) if isinstance(e, OutputPathError) else f"{e.strerror or e} at {e.filename}"
+                raise BadInputError(f"the gate could not write its outputs ({reason}); nothing was written "
+                                    f"to {out_dir}. Free space or choose another folder with --out.") from e
             raise
     return report
 
 
-def _run_into(cfg: GateConfig, out_dir: Path, build: Path, progress: bool) -> GateReport:
+def _run_into(cfg: GateConfig, out_dir: Path, build: Path, progress: Progress) -> GateReport:
     report = GateReport(cfg, out_dir, model_name=Path(cfg.source.split(":")[0]).stem, build_dir=build)
     report.files[str(cfg.path)] = _sha(cfg.path)
     try:
@@ -162,7 +169,7 @@ def _run_into(cfg: GateConfig, out_dir: Path, build: Path, progress: bool) -> Ga
     except SeqgateError as e:
         report.error = {"exit_code": e.exit_code, "message": str(e), "kind": type(e).__name__,
                         "stage": report.stage}
-        report.checks.append({"name": report.stage, "passed": False, "detail": str(e).splitlines()[0]})
+        report.checks.append({"name": report.stage, "passed": False, "detail": first_line(e)})
     write_reports(report)
     return report
 
@@ -198,14 +205,16 @@ def _sha(path: Path) -> str:
     return sha256_file(path)
 
 
-def _run_checks(report: GateReport, progress: bool) -> None:
+def _run_checks(report: GateReport, progress: Progress) -> None:
     cfg = report.config
     model_path = report.work_dir / "model.onnx"
     weights = str(cfg.weights) if cfg.weights else None
     if cfg.onnx is not None:
         model = _adopt_onnx(report, model_path)
     else:
+        progress.start("exporting")
         model = _export(report, model_path, weights)
+        progress.finish()
     report.stage = "latency"
     _check_lengths(cfg, model)
     report.stage = "verify"
@@ -260,7 +269,7 @@ def _check_lengths(cfg: GateConfig, model: Any) -> None:
         lengths_to_measure(model, cfg.seq_lens, [f"{b.seq_len}={b.ms}" for b in cfg.budgets])
 
 
-def _verify(report: GateReport, model_path: Path, weights: str | None, progress: bool) -> None:
+def _verify(report: GateReport, model_path: Path, weights: str | None, progress: Progress) -> None:
     from seqgate.verify.compare import Tolerances, load_tolerances
     from seqgate.verify.run import verify_model
 
@@ -280,15 +289,9 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
     report.checks.append({"name": "verify", "passed": vr.passed, "detail": vr.headline()})
 
 
-def _profile(report: GateReport, model_path: Path, weights: str | None, progress: bool) -> None:
+def _profile(report: GateReport, model_path: Path, weights: str | None, progress: Progress) -> None:
     cfg = report.config
-    if progress:
-        from seqgate.cli.profile import _progress
-
-        with _progress() as bar:
-            pr = _measure(cfg, model_path, weights, bar)
-    else:
-        pr = _measure(cfg, model_path, weights, None)
+    pr = _measure(cfg, model_path, weights, progress)
     report.profile = pr.to_dict()
     budgets = report.profile.get("budgets") or []
     missed = [b for b in budgets if not b["passed"]]
@@ -304,7 +307,7 @@ def _profile(report: GateReport, model_path: Path, weights: str | None, progress
     report.checks.append({"name": "latency", "passed": pr.passed, "detail": detail})
 
 
-def _measure(cfg: GateConfig, model_path: Path, weights: str | None, bar: Any) -> Any:
+def _measure(cfg: GateConfig, model_path: Path, weights: str | None, progress: Progress) -> Any:
     from seqgate.profile.run import profile_model
 
     return profile_model(
@@ -312,7 +315,7 @@ def _measure(cfg: GateConfig, model_path: Path, weights: str | None, bar: Any) -
         min_runs=cfg.min_runs, min_time=cfg.min_time,
         budgets=[f"{b.seq_len}={b.ms}" for b in cfg.budgets], percentile=cfg.percentile,
         source=cfg.source if cfg.compare_source else None,
-        weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=bar,
+        weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=progress,
     )
 
 

@@ -4,7 +4,10 @@ Measurement hygiene (the contract of :func:`profile_model`):
 
 - one onnxruntime session per thread setting: ``intra_op_num_threads`` as asked,
   ``inter_op_num_threads = 1``, ``ORT_SEQUENTIAL``, ``ORT_ENABLE_ALL`` (all recorded);
-- inputs generated once per point from a seeded generator (``seqgate.profile_inputs``), the
+- every runtime is driven through ``seqgate.runtimes`` (the same runners verify uses): what is
+  timed is each runner's ``timed_call``, whose outputs are flattened by the one rule of
+  ``seqgate.util.outputs`` for the sanity comparison with ONNX Runtime;
+- inputs generated once per point from a seeded generator (``seqgate.profile.inputs``), the
   same arrays for every thread count and runtime;
 - ``warmup`` runs discarded, then timed runs until both ``min_runs`` runs and ``min_time``
   seconds are reached; each run is timed alone with ``time.perf_counter_ns`` while garbage
@@ -13,7 +16,7 @@ Measurement hygiene (the contract of :func:`profile_model`):
   not subtracted: the figures are raw wall times of the calls;
 - a model that fixes its time dim is measured at that length only (noted); a budget at another
   length is then an error (exit 2);
-- budget lengths missing from ``seq_lens`` are added to the sweep (``seqgate.budgets``).
+- budget lengths missing from ``seq_lens`` are added to the sweep (``seqgate.profile.budgets``).
 """
 
 from __future__ import annotations
@@ -32,6 +35,8 @@ from seqgate.profile.budgets import Budget, check_percentile, parse_budgets, par
 from seqgate.profile.inputs import InputPlan, make_inputs, model_axes, plan_inputs
 from seqgate.profile.result import ONNXRUNTIME, Point, ProfileReport, attach_speedups, budget_checks, fits_for
 from seqgate.profile.stats import summarize_ns
+from seqgate.util.progress import SILENT, Progress
+from seqgate.util.text import first_line
 
 DEFAULT_SEQ_LENS = (1, 8, 32, 128, 512)
 DEFAULT_WARMUP = 10
@@ -40,7 +45,6 @@ DEFAULT_MIN_TIME = 1.0
 # Loose on purpose: this only catches a --source that is not the exported model; `seqgate verify`
 # is the real comparison.
 _SANITY_ATOL = _SANITY_RTOL = 1e-3
-Progress = Callable[[int, int, str], None]
 
 
 def time_call(call: Callable[[], Any], warmup: int, min_runs: int, min_time: float) -> list[int]:
@@ -83,37 +87,6 @@ def timer_overhead(n: int = 20000) -> dict[str, Any]:
         "resolution_ns": time.get_clock_info("perf_counter").resolution * 1e9,
         "subtracted": False,
     }
-
-
-def make_session(model_bytes: bytes, threads: int) -> tuple[Any, dict[str, Any]]:
-    """One CPU session for ``threads`` intra-op threads; returns it and its recorded options."""
-    import onnxruntime as ort
-
-    so = ort.SessionOptions()
-    so.intra_op_num_threads = threads
-    so.inter_op_num_threads = 1
-    so.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-    so.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
-    so.log_severity_level = 3
-    try:
-        sess = ort.InferenceSession(model_bytes, so, providers=["CPUExecutionProvider"])
-    except Exception as e:  # onnxruntime raises its own exception types for invalid graphs
-        raise BadInputError(f"onnxruntime could not load the model: {str(e).strip()[:400]}. Check it "
-                            f"with `seqgate inspect`, or export it again.") from e
-    recorded = {
-        "intra_op_num_threads": threads, "inter_op_num_threads": 1,
-        "execution_mode": so.execution_mode.name,
-        "graph_optimization_level": so.graph_optimization_level.name,
-        "providers": sess.get_providers(),
-    }
-    return sess, recorded
-
-
-def ort_call(sess: Any, feeds: dict[str, np.ndarray[Any, Any]]) -> Callable[[], Any]:
-    """The exact call the profiler times for ONNX Runtime (the bench times the same)."""
-    names = [o.name for o in sess.get_outputs()]
-    run = sess.run
-    return lambda: run(names, feeds)
 
 
 def _sweep_lengths(axes: Any, seq_lens: list[int], budgets: list[Budget], notes: list[str]) -> list[int]:
@@ -216,8 +189,8 @@ def profile_model(
                      f"those points measure oversubscription.")
     cost = summary(model)  # one pass of the cost model (two shape inferences) for every length
     macs = {t: cost["macs_per_sequence"] + cost["macs_per_step"] * t for t in lengths}
-    runner = _open_runner(src, plans, thread_list)
-    sweep = _Sweep(model.SerializeToString(), plans, runner, seed, (warmup, min_runs, min_time), progress)
+    runner = _open_runner(src, model, thread_list)
+    sweep = _Sweep(model, plans, runner, seed, (warmup, min_runs, min_time), progress or SILENT)
     points, sessions = sweep.run(thread_list, batch_list, lengths, macs)
     notes.extend(sweep.notes)
     attach_speedups(points)
@@ -252,12 +225,13 @@ def _parse_source(source: str | None, weights: str | None) -> Any:
     return parse_source(source, weights)
 
 
-def _open_runner(src: Any, plans: list[InputPlan], thread_list: list[int]) -> Any:
+def _open_runner(src: Any, model: Any, thread_list: list[int]) -> Any:
     if src is None:
         return None
-    from seqgate.profile.sources import open_source
+    from seqgate.runtimes.factory import open_source_runner
 
-    return open_source(src, plans, thread_list)
+    return open_source_runner(src, [], [o.name for o in model.graph.output], states=False,
+                              threads=thread_list[0])
 
 
 def _source_record(src: Any, agreement: tuple[bool, str] | None) -> dict[str, Any] | None:
@@ -276,41 +250,45 @@ def _source_record(src: Any, agreement: tuple[bool, str] | None) -> dict[str, An
 class _Sweep:
     """The nested loop threads → batch → T, ONNX Runtime then the source at each point."""
 
-    def __init__(self, model_bytes: bytes, plans: list[InputPlan], runner: Any, seed: int,
-                 counts: tuple[int, int, float], progress: Progress | None) -> None:
-        self.model_bytes, self.plans, self.runner, self.seed = model_bytes, plans, runner, seed
+    def __init__(self, model: Any, plans: list[InputPlan], runner: Any, seed: int,
+                 counts: tuple[int, int, float], progress: Progress) -> None:
+        self.model, self.plans, self.runner, self.seed = model, plans, runner, seed
         self.counts = counts
         self.progress = progress
         self.notes: list[str] = []
         self.agreement: tuple[bool, str] | None = None
-        self.done = 0
 
     def run(self, thread_list: list[int], batch_list: list[int], lengths: list[int],
             macs: dict[int, int]) -> tuple[list[Point], list[dict[str, Any]]]:
+        from seqgate.runtimes.onnx import OnnxRunner
+
         total = len(thread_list) * len(batch_list) * len(lengths) * (2 if self.runner else 1)
+        self.progress.start(f"profiling {total} points", total)
         points: list[Point] = []
         sessions: list[dict[str, Any]] = []
         for th in thread_list:
-            sess, recorded = make_session(self.model_bytes, th)
-            sessions.append(recorded)
+            ort = OnnxRunner(self.model, [], th, timing=True)
+            sessions.append(ort.recorded)
             for b in batch_list:
                 for t in lengths:
                     feeds = make_inputs(self.plans, b, t, self.seed)
-                    call = ort_call(sess, feeds)
-                    self._tick(total, f"{ONNXRUNTIME} T={t} batch={b} threads={th}")
-                    points.append(Point(t, b, th, ONNXRUNTIME, summarize_ns(time_call(call, *self.counts)),
-                                        macs[t]))
-                    if self.runner is not None:
-                        self._tick(total, f"{self.runner.runtime} T={t} batch={b} threads={th}")
-                        points.append(self._source_point(call, feeds, t, b, th, macs[t]))
-        self._tick(total, "done")
+                    with ort.timed_call(feeds) as call:
+                        self.progress.advance(0, f"{ONNXRUNTIME} T={t} batch={b} threads={th}")
+                        points.append(Point(t, b, th, ONNXRUNTIME,
+                                            summarize_ns(time_call(call, *self.counts)), macs[t]))
+                        self.progress.advance(1)
+                        if self.runner is not None:
+                            self.progress.advance(0, f"{self.runner.runtime} T={t} batch={b} threads={th}")
+                            points.append(self._source_point(call, feeds, t, b, th, macs[t]))
+                            self.progress.advance(1)
+        self.progress.finish()
         return points, sessions
 
     def _source_point(self, ort: Callable[[], Any], feeds: dict[str, Any], t: int, b: int, th: int,
                       macs: int) -> Point:
         runner = self.runner
         try:
-            with runner.bind(feeds, th) as call:
+            with runner.timed_call(feeds, th) as call:
                 if self.agreement is None:
                     self._check_agreement(ort, call)
                 samples = time_call(call, *self.counts)
@@ -319,7 +297,7 @@ class _Sweep:
             shapes = ", ".join(f"{k} {list(v.shape)} {v.dtype}" for k, v in feeds.items())
             raise BadInputError(
                 f"the {runner.runtime} source failed on the inputs the ONNX model takes ({shapes}) at "
-                f"T={t}, batch {b}: {type(e).__name__}: {str(e).strip()[:300]}. The source must take "
+                f"T={t}, batch {b}: {type(e).__name__}: {first_line(e)}. The source must take "
                 f"the exported graph's inputs, in its order and layout; is it the model that was exported?"
             ) from e
         if runner.runtime == "keras" and used != th:
@@ -334,13 +312,9 @@ class _Sweep:
 
         with quiet_stderr():  # TensorFlow may warn on stderr while tracing the first call
             src_out = self.runner.outputs(call())
-        self.agreement = _outputs_agree(list(ort()), src_out)
+        self.agreement = _outputs_agree([np.asarray(r) for r in ort()], src_out)
         if not self.agreement[0]:
             self.notes.append(f"the source's outputs do not match the ONNX model's "
                               f"({self.agreement[1]}): is it the model that was exported? "
                               f"The speed-ups compare different computations; run seqgate verify.")
 
-    def _tick(self, total: int, label: str) -> None:
-        if self.progress is not None:
-            self.progress(self.done, total, label)
-        self.done += 1

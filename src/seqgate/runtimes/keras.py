@@ -20,10 +20,22 @@ outputs; verify refuses to go on if they differ (the capture would not be the mo
 
 Everything runs inside one ``tf.function`` with a signature whose batch (and dynamic time)
 dims are unknown, so a smaller last batch or longer synthetic windows do not retrace.
+
+Two calls: :meth:`KerasRunner.run` (outputs and probes, for verify) and
+:meth:`KerasRunner.timed_call` (the original model alone through its compiled
+``tf.function``, for profile). Outputs are flattened by ``seqgate.util.outputs``.
+
+Layer names: Keras accepts any string (``encoder lstm (v2) "ü"``), TensorFlow refuses most of
+them as name scopes, which every layer call opens. While a function is traced (the only time
+Python code inside it runs) every layer carries a scope-safe name (:func:`scope_name`); the
+original names come back right after, and the probe map is matched on the original names.
 """
 
 from __future__ import annotations
 
+import contextlib
+import re
+from collections.abc import Callable, Iterator
 from typing import Any
 
 import numpy as np
@@ -31,6 +43,7 @@ import numpy as np
 from seqgate.errors import Unsupported, UnsupportedModelError
 from seqgate.onnxfile.probes import Probe
 from seqgate.sources.keras_graph import graph_nodes, is_nested
+from seqgate.util.outputs import flatten_outputs
 
 SELF_CHECK_ATOL = 1e-6  # the re-execution runs the same TensorFlow kernels; only op fusion may differ
 
@@ -39,6 +52,43 @@ def _functional(model: Any) -> Any:
     if type(model).__name__ == "Sequential":
         return model._functional
     return model
+
+
+def scope_name(name: str) -> str:
+    """``name`` made acceptable to ``tf.name_scope`` (pattern ``[A-Za-z0-9.][A-Za-z0-9_.>-]*``,
+    TensorFlow's rule for a root scope); other characters, ``/`` included, become ``_``."""
+    safe = re.sub(r"[^A-Za-z0-9_.>-]", "_", name)
+    return safe if re.match(r"[A-Za-z0-9.]", safe) else f"x{safe}"
+
+
+def _all_operations(model: Any) -> list[Any]:
+    """Every operation of ``model`` that may open a name scope: the model, its graph's nodes
+    (layers and ``keras.ops``), nested models and the sublayers of each (``Bidirectional``)."""
+    found: dict[int, Any] = {id(model): model}
+    stack = [model]
+    while stack:
+        m = stack.pop()
+        ops = [op for _, op in graph_nodes(_functional(m))] if is_nested(m) else []
+        for op in ops + list(getattr(m, "_flatten_layers", lambda: [])()):
+            if id(op) not in found:
+                found[id(op)] = op
+                stack.append(op)
+    return list(found.values())
+
+
+@contextlib.contextmanager
+def _scope_safe_names(operations: list[Any]) -> Iterator[None]:
+    renamed = []
+    for op in operations:
+        safe = scope_name(op.name)
+        if safe != op.name:
+            renamed.append((op, op.name))
+            op.name = safe
+    try:
+        yield
+    finally:
+        for op, name in renamed:
+            op.name = name
 
 
 def _clone(layer: Any, input_shape: tuple[Any, ...], name: str) -> Any:
@@ -53,6 +103,7 @@ class KerasRunner:
     """Runs a loaded Keras model; see the module docstring."""
 
     self_check_atol = SELF_CHECK_ATOL
+    runtime = "keras"
 
     def __init__(self, model: Any, probes: list[Probe], output_names: list[str], states: bool = True) -> None:
         from seqgate.util.frameworks import import_keras
@@ -69,6 +120,8 @@ class KerasRunner:
                 model.name, f"the Keras model has {len(self.graph.outputs)} outputs, the ONNX file "
                 f"{len(self.output_names)}", "verify the ONNX file exported from this model")])
         self.input_names = [t.name for t in self.graph.inputs]
+        self._operations = _all_operations(model)
+        self._names = {id(op): op.name for op in self._operations}  # the names the probe map uses
         self.probes = [p for p in probes if states] if probes else []
         self._layers = {p.source.get("layer", p.layer) for p in self.probes}
         self._clones: dict[str, Any] = {}
@@ -80,36 +133,44 @@ class KerasRunner:
                 "verify the ONNX file against the model it was exported from") for m in missing])
         sig = [tf.TensorSpec((None, *t.shape[1:]), dtype=str(t.dtype)) for t in self.graph.inputs]
         self._fn = tf.function(self._forward, input_signature=sig)
-        self._plain = tf.function(
-            lambda *xs: self.model(xs[0] if len(xs) == 1 else list(xs), training=False), input_signature=sig)
+        self._plain = tf.function(self._model_call, input_signature=sig)
+
+    def _name(self, layer: Any) -> str:
+        return self._names.get(id(layer), layer.name)
 
     # ----- setup --------------------------------------------------------------------------------
     def _prepare_clones(self, graph: Any, prefix: str) -> None:
         for node, layer in graph_nodes(graph):
-            full = f"{prefix}{layer.name}"
+            full = f"{prefix}{self._name(layer)}"
             if is_nested(layer):
                 self._prepare_clones(_functional(layer), f"{full}/")
                 continue
             if full not in self._layers:
                 continue
+            n = len(self._clones)
             shape = tuple(node.input_tensors[0].shape)
             if type(layer).__name__ == "Bidirectional":
-                self._clones[full + "#fw"] = _clone(layer.forward_layer, shape, f"{layer.name}_probe_fw")
-                self._clones[full + "#bw"] = _clone(layer.backward_layer, shape, f"{layer.name}_probe_bw")
+                self._clones[full + "#fw"] = _clone(layer.forward_layer, shape, f"seqgate_probe_{n}_fw")
+                self._clones[full + "#bw"] = _clone(layer.backward_layer, shape, f"seqgate_probe_{n}_bw")
             else:
-                self._clones[full] = _clone(layer, shape, f"{layer.name}_probe")
+                self._clones[full] = _clone(layer, shape, f"seqgate_probe_{n}")
 
     # ----- traced forward -----------------------------------------------------------------------
+    def _model_call(self, *xs: Any) -> Any:
+        with _scope_safe_names(self._operations):  # runs while tracing only
+            return self.model(xs[0] if len(xs) == 1 else list(xs), training=False)
+
     def _forward(self, *inputs: Any) -> list[Any]:
         probes: dict[str, Any] = {}
-        outs = self._walk(self.graph, list(inputs), "", probes)
+        with _scope_safe_names(self._operations):  # runs while tracing only
+            outs = self._walk(self.graph, list(inputs), "", probes)
         return [*outs, *(probes[p.name] for p in self.probes)]
 
     def _walk(self, graph: Any, inputs: list[Any], prefix: str, probes: dict[str, Any]) -> list[Any]:
         tree = self.keras.tree
         values = {id(x): y for x, y in zip(graph.inputs, inputs, strict=True)}
         for node, layer in graph_nodes(graph):
-            full = f"{prefix}{layer.name}"
+            full = f"{prefix}{self._name(layer)}"
             args, kwargs = node.arguments.fill_in(values)
             if is_nested(layer):
                 outs: Any = self._walk(_functional(layer), tree.flatten(args), f"{full}/", probes)
@@ -180,19 +241,44 @@ class KerasRunner:
 
     # ----- public -------------------------------------------------------------------------------
     def _feeds(self, feeds: dict[str, np.ndarray[Any, Any]]) -> list[Any]:
-        return [self.tf.constant(feeds[n]) for n in self.input_names]
+        """Tensors in the model's input order: by name, else (renamed inputs) by position."""
+        if all(n in feeds for n in self.input_names):
+            arrays = [feeds[n] for n in self.input_names]
+        else:
+            arrays = list(feeds.values())
+        return [self.tf.constant(a) for a in arrays]
 
     def run(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
+        """Outputs by ONNX output name, then every probe (the model alone when there are none)."""
         res = self._fn(*self._feeds(feeds)) if self.probes else self._plain(*self._feeds(feeds))
-        res = list(res) if isinstance(res, list | tuple) else [res]
         names = [*self.output_names, *(p.name for p in self.probes)]
-        return {n: np.asarray(v) for n, v in zip(names, res, strict=True)}
+        return dict(zip(names, self.outputs(res), strict=True))
 
     def run_plain(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
         """The original model alone (the bare inference the benchmark compares against)."""
         res = self._plain(*self._feeds(feeds))
-        res = list(res) if isinstance(res, list | tuple) else [res]
-        return {n: np.asarray(v) for n, v in zip(self.output_names, res, strict=True)}
+        return dict(zip(self.output_names, self.outputs(res), strict=True))
+
+    @contextlib.contextmanager
+    def timed_call(self, feeds: dict[str, np.ndarray[Any, Any]], threads: int) -> Iterator[Callable[[], Any]]:
+        """Yield a zero-argument call of the compiled original model on ``feeds`` (tensors made once).
+
+        ``threads`` is not applied: TensorFlow fixes its thread pools when its runtime starts
+        (:func:`seqgate.runtimes.open_source_runner` asks for a count before loading);
+        :meth:`framework_threads` says what TensorFlow uses.
+        """
+        tensors = self._feeds(feeds)
+        fn = self._plain
+        yield lambda: fn(*tensors)
+
+    def framework_threads(self) -> int:
+        """TensorFlow's intra-op thread count (0 = its default, one per core)."""
+        return int(self.tf.config.threading.get_intra_op_parallelism_threads())
+
+    @staticmethod
+    def outputs(result: Any) -> list[np.ndarray[Any, Any]]:
+        """A call's result as arrays in the ONNX output order (``seqgate.util.outputs``)."""
+        return [np.asarray(r) for r in flatten_outputs(result)]
 
     def self_check(self, feeds: dict[str, np.ndarray[Any, Any]], got: dict[str, np.ndarray[Any, Any]]) -> float:
         """Max |Δ| between the re-executed outputs and the original model's (0 when no probes)."""

@@ -1,8 +1,14 @@
 """PyTorch runner: the module's outputs and every probe's state (forward hooks + per-layer runs).
 
-Outputs: ``forward``'s result flattened depth first (tuples/lists in order, dicts in key
-order), matched in order to the ONNX graph outputs (the exporter's naming rule). Inputs are
-passed by name (the ONNX inputs are ``forward``'s parameters).
+Outputs: ``forward``'s result flattened by ``seqgate.util.outputs.flatten_outputs`` (depth
+first, dicts in insertion order: the exporter's rule), matched in order to the ONNX graph
+outputs. Inputs are passed by name when ``forward`` has parameters of those names (the ONNX
+inputs of a PyTorch export are ``forward``'s parameters), else by position in the ONNX input
+order (an ONNX file exported from another source, profiled beside this module).
+
+Two calls: :meth:`TorchRunner.run` (outputs and probes, for verify) and
+:meth:`TorchRunner.timed_call` (the bare module under ``inference_mode`` with the point's
+``torch.set_num_threads``, restored afterwards; the hooks below stay idle, for profile).
 
 States, for each recurrent module (``nn.LSTM``/``GRU``/``RNN``) named by the probe map:
 
@@ -26,28 +32,24 @@ Sequences are returned as ``[N, T, 1, H]``, finals as ``[N, 1, H]`` (DESIGN.md).
 
 from __future__ import annotations
 
+import contextlib
+from collections.abc import Callable, Iterator
 from typing import Any
 
 import numpy as np
 
 from seqgate.errors import Unsupported, UnsupportedModelError
 from seqgate.onnxfile.probes import Probe
+from seqgate.util.outputs import flatten_outputs
 
 SELF_CHECK_ATOL = 1e-5
-
-
-def _flatten(x: Any) -> list[Any]:
-    if isinstance(x, dict):
-        return [leaf for v in x.values() for leaf in _flatten(v)]
-    if isinstance(x, list | tuple):
-        return [leaf for v in x for leaf in _flatten(v)]
-    return [x]
 
 
 class TorchRunner:
     """Runs a loaded module in eval mode; see the module docstring."""
 
     self_check_atol = SELF_CHECK_ATOL
+    runtime = "torch"
 
     def __init__(self, module: Any, probes: list[Probe], output_names: list[str], states: bool = True) -> None:
         from seqgate.util.frameworks import import_torch
@@ -66,6 +68,8 @@ class TorchRunner:
                 m, "module named by the probe map is not in the PyTorch model",
                 "verify the ONNX file against the model it was exported from") for m in missing])
         self._seqs: dict[str, list[list[Any]]] = {}
+        self._recording = False  # hooks and the stacked decomposition act inside run() only
+        self._threads = 0
         self._stacked = sorted(w for w in wanted if int(self._mods[w].num_layers) > 1)
         for name in wanted:
             self._mods[name].register_forward_hook(self._hook(name), with_kwargs=True)
@@ -74,6 +78,8 @@ class TorchRunner:
 
     def _hook(self, name: str) -> Any:
         def hook(mod: Any, args: tuple[Any, ...], kwargs: dict[str, Any], out: Any) -> None:
+            if not self._recording:
+                return
             x = args[0] if args else kwargs.get("input")
             hx = args[1] if len(args) > 1 else kwargs.get("hx")
             self._calls.setdefault(name, []).append((x, hx, out))
@@ -105,6 +111,8 @@ class TorchRunner:
         torch = self.torch
 
         def forward(input: Any, hx: Any = None) -> Any:
+            if not self._recording:
+                return type(m).forward(m, input, hx)
             is_lstm = isinstance(m, torch.nn.LSTM)
             inp, seqs, hs, cs = input, [], [], []
             for k in range(m.num_layers):
@@ -152,16 +160,64 @@ class TorchRunner:
     def run(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
         torch = self.torch
         self._calls, self._seqs = {}, {}
-        with torch.inference_mode():
-            res = self.module(**{k: torch.from_numpy(np.ascontiguousarray(v)) for k, v in feeds.items()})
-            leaves = _flatten(res)
-            if len(leaves) != len(self.output_names):
-                raise UnsupportedModelError(type(self.module).__name__, [Unsupported(
-                    "forward", f"returns {len(leaves)} tensors, the ONNX file has {len(self.output_names)} "
-                    f"outputs", "verify the ONNX file exported from this model")])
-            out = {n: v.detach().numpy() for n, v in zip(self.output_names, leaves, strict=True)}
-            out.update(self._probe_values())
+        self._recording = True
+        try:
+            with torch.inference_mode():
+                args, kwargs = self._arguments(feeds)
+                return self._collect(self.module(*args, **kwargs))
+        finally:
+            self._recording = False
+
+    def _arguments(self, feeds: dict[str, np.ndarray[Any, Any]]) -> tuple[list[Any], dict[str, Any]]:
+        """``forward``'s arguments: by name when it takes these names, else by position."""
+        import inspect
+
+        tensors = {k: self.torch.from_numpy(np.ascontiguousarray(v)) for k, v in feeds.items()}
+        try:
+            params = inspect.signature(self.module.forward).parameters
+        except (TypeError, ValueError):
+            params = {}
+        if all(k in params for k in tensors):
+            return [], tensors
+        return list(tensors.values()), {}
+
+    def _collect(self, res: Any) -> dict[str, np.ndarray[Any, Any]]:
+        leaves = self.outputs(res)
+        if len(leaves) != len(self.output_names):
+            raise UnsupportedModelError(type(self.module).__name__, [Unsupported(
+                "forward", f"returns {len(leaves)} tensors, the ONNX file has {len(self.output_names)} "
+                f"outputs", "verify the ONNX file exported from this model")])
+        out = dict(zip(self.output_names, leaves, strict=True))
+        out.update(self._probe_values())
         return out
+
+    @contextlib.contextmanager
+    def timed_call(self, feeds: dict[str, np.ndarray[Any, Any]], threads: int) -> Iterator[Callable[[], Any]]:
+        """Yield a zero-argument eager call on ``feeds`` (tensors made once); no probes are read.
+
+        ``threads`` intra-op threads and ``inference_mode`` hold while the call is used.
+        """
+        torch = self.torch
+        args, kwargs = self._arguments(feeds)
+        previous = torch.get_num_threads()
+        torch.set_num_threads(threads)
+        self._threads = torch.get_num_threads()
+        module = self.module
+        try:
+            with torch.inference_mode():
+                yield lambda: module(*args, **kwargs)
+        finally:
+            torch.set_num_threads(previous)
+
+    def framework_threads(self) -> int:
+        """The intra-op threads PyTorch used in the last :meth:`timed_call`."""
+        return self._threads
+
+    @staticmethod
+    def outputs(result: Any) -> list[np.ndarray[Any, Any]]:
+        """A call's result as arrays in the ONNX output order (``seqgate.util.outputs``)."""
+        return [r.detach().cpu().numpy() if hasattr(r, "detach") else np.asarray(r)
+                for r in flatten_outputs(result)]
 
     def self_check(self, feeds: dict[str, np.ndarray[Any, Any]], got: dict[str, np.ndarray[Any, Any]]) -> float:
         """Max |Δ| between each stacked module's decomposition and its own ``forward`` (last batch)."""
@@ -171,6 +227,6 @@ class TorchRunner:
                 m = self._mods[name]
                 for x, hx, out in self._calls.get(name, []):
                     ref = type(m).forward(m, x, hx)
-                    for r, o in zip(_flatten(ref), _flatten(out), strict=True):
+                    for r, o in zip(flatten_outputs(ref), flatten_outputs(out), strict=True):
                         worst = max(worst, float((r - o).abs().max()) if r.numel() else 0.0)
         return worst

@@ -34,6 +34,7 @@ from typing import Any
 
 from seqgate.errors import BadInputError, UnsafeSourceError
 from seqgate.sources.spec import Source
+from seqgate.util.text import first_line
 
 _MAX_LISTED = 12
 
@@ -232,8 +233,7 @@ def _listing(label: str, keys: list[str]) -> str:
 
 
 def _short(e: BaseException) -> str:
-    text = str(e).strip().splitlines()
-    return (text[0] if text else "no message")[:300]
+    return first_line(e)
 
 
 def _user_line(e: BaseException, path: Path | None) -> str:

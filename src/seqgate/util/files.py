@@ -1,4 +1,14 @@
-"""File helpers: atomic writes (temp file + rename) and content hashes."""
+"""File helpers: output-path checks, atomic writes (temp file + rename) and content hashes.
+
+Every command that writes calls :func:`check_output_path` (or :func:`check_writable`,
+:func:`check_output_dir`) for each output before any heavy work, so a path the system will
+refuse is exit 2 in a second, not after a long export or verify. The check creates and
+removes a temp file beside the target: that is the only test that holds for every reason a
+write can fail up front (permissions, also for root on read-only mounts; read-only or special
+filesystems such as /proc; a parent that is a file). A full disk or a file-size limit shows
+only while writing: :func:`write_atomic` turns those ``OSError`` exceptions into the same exit-2
+message, naming the path and the system's reason, and leaves nothing half-written behind.
+"""
 
 from __future__ import annotations
 
@@ -7,7 +17,7 @@ import os
 import tempfile
 from pathlib import Path
 
-from seqgate.errors import BadInputError
+from seqgate.errors import BadInputError, OutputPathError
 
 
 def sha256_file(path: str | os.PathLike[str]) -> str:
@@ -23,9 +33,34 @@ def check_output_path(path: Path, option: str = "output file") -> None:
     """Refuse an output path that is a directory or whose directory is missing (named by ``option``)."""
     if path.is_dir():
         raise BadInputError(f"{option} {path} is a directory; give a file name inside it.")
-    if not path.parent.exists():
-        raise BadInputError(f"{option} {path}: directory {path.parent} does not exist; create it first "
+    parent = path.parent
+    if parent.exists() and not parent.is_dir():
+        raise BadInputError(f"{option} {path}: {parent} is a file, not a directory; choose a path inside "
+                            f"a directory.")
+    if not parent.exists():
+        raise BadInputError(f"{option} {path}: directory {parent} does not exist; create it first "
                             f"or choose another path.")
+    _probe_directory(parent, path)
+
+
+def check_output_dir(path: Path, option: str = "output directory") -> None:
+    """Create the output directory ``path`` if needed and check that files can be written in it."""
+    if path.exists() and not path.is_dir():
+        raise BadInputError(f"{option} {path} is a file; give a directory.")
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise OutputPathError(path, e, doing="create the directory") from e
+    _probe_directory(path, path)
+
+
+def _probe_directory(directory: Path, target: Path) -> None:
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=".seqgate-check.", dir=directory)
+    except OSError as e:
+        raise OutputPathError(target, e) from e
+    os.close(fd)
+    Path(tmp).unlink(missing_ok=True)
 
 
 def check_writable(path: Path, force: bool, option: str = "output file") -> None:
@@ -50,13 +85,19 @@ def write_atomic(path: str | os.PathLike[str], data: bytes) -> None:
     over the target (atomic on POSIX). On any failure the temp file is removed.
     """
     target = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    except OSError as e:
+        raise OutputPathError(target, e) from e
     try:
         with os.fdopen(fd, "wb") as f:
             f.write(data)
             f.flush()
             os.fsync(f.fileno())
         os.replace(tmp, target)
+    except OSError as e:  # no space, file too large, …: the system's reason, exit 2
+        Path(tmp).unlink(missing_ok=True)
+        raise OutputPathError(target, e) from e
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
         raise

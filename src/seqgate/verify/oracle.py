@@ -21,6 +21,7 @@ from typing import Any
 import numpy as np
 
 from seqgate.onnxfile.probes import Probe, to_canonical, with_probe_outputs
+from seqgate.util.text import first_line
 from seqgate.verify.compare import Tolerances, within_tolerance
 
 _DEFAULT_ACTS = {"LSTM": ["Sigmoid", "Tanh", "Tanh"], "GRU": ["Sigmoid", "Tanh"]}
@@ -75,7 +76,7 @@ def run_oracle(model: Any, probes: list[Probe], infos: list[Any], results: list[
     try:
         ev = ReferenceEvaluator(full)
     except Exception as e:  # the evaluator raises many types for ops it lacks
-        return {"ran": False, "reason": f"onnx.reference cannot load the model: {str(e).splitlines()[0][:200]}"}
+        return {"ran": False, "reason": f"onnx.reference cannot load the model: {first_line(e)}"}
     outputs = [o.name for o in model.graph.output]
     fetch = list(dict.fromkeys([*outputs, *(p.value for p in probes)]))
     windows = []
@@ -84,7 +85,7 @@ def run_oracle(model: Any, probes: list[Probe], infos: list[Any], results: list[
             try:
                 vals = dict(zip(fetch, ev.run(fetch, feeds), strict=True))
             except Exception as e:
-                return {"ran": False, "reason": f"onnx.reference failed: {str(e).splitlines()[0][:200]}"}
+                return {"ran": False, "reason": f"onnx.reference failed: {first_line(e)}"}
             ref = {n: np.asarray(vals[n]) for n in outputs}
             ref.update({p.name: to_canonical(p, np.asarray(vals[p.value])) for p in probes})
             windows.append(_judge(r.recording.label, -neg_index, score, infos, ref, onnx_runner.run(feeds),

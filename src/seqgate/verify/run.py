@@ -39,6 +39,7 @@ from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
 from seqgate.onnxfile.probes import Probe, read_metadata, read_probe_map
 from seqgate.sources.spec import Source, parse_source
 from seqgate.util.files import sha256_file
+from seqgate.util.progress import SILENT, Progress
 from seqgate.verify.compare import TensorStats, Tolerances, load_tolerances, merge_stats
 from seqgate.verify.recordings import (
     InputSpec,
@@ -119,21 +120,6 @@ def _class_outputs(model: Any) -> set[str]:
     return found
 
 
-def make_source_runner(src: Source, model: Any, probes: list[Probe], output_names: list[str],
-                       states: bool) -> Any:
-    """The source-framework runner for ``src`` (imports the framework)."""
-    if src.framework == "keras":
-        from seqgate.runtimes.keras import KerasRunner
-        from seqgate.sources.keras import load_keras
-
-        assert src.path is not None
-        return KerasRunner(load_keras(src.path), probes, output_names, states)
-    from seqgate.runtimes.torch import TorchRunner
-    from seqgate.sources.torch import load_torch  # type: ignore[import-not-found]
-
-    return TorchRunner(load_torch(src), probes, output_names, states)
-
-
 def _check_framework(model: Any, src: Source, warnings: list[str]) -> None:
     meta = read_metadata(model)
     fw = meta.get("seqgate.source.framework")
@@ -146,13 +132,13 @@ def _check_framework(model: Any, src: Source, warnings: list[str]) -> None:
                         f"the metadata); the comparison below says whether they still compute the same.")
 
 
-def _output_dims(model: Any) -> dict[str, list[Any]]:
+def output_dims(model: Any) -> dict[str, list[Any]]:
     from seqgate.onnxfile.load import value_dims
 
     return {o.name: value_dims(o) for o in model.graph.output}
 
 
-def _tensor_infos(model: Any, probes: list[Probe]) -> list[TensorInfo]:
+def tensor_infos(model: Any, probes: list[Probe]) -> list[TensorInfo]:
     infos = [TensorInfo(p.name, p.kind, p.layer, p.direction) for p in probes]
     return infos + [TensorInfo(o.name, "output") for o in model.graph.output]
 
@@ -165,7 +151,9 @@ class _SetResult:
     worst: list[tuple[float, int, dict[str, np.ndarray[Any, Any]]]]
 
 
-class _Comparer:
+class Comparer:
+    """Runs one window set through both runners and keeps per-tensor stats (module docstring)."""
+
     def __init__(self, infos: list[TensorInfo], tol: Tolerances, class_names: set[str], specs: list[InputSpec],
                  out_dims: dict[str, list[Any]]):
         self.infos, self.tol, self.class_names, self.out_dims = infos, tol, class_names, out_dims
@@ -218,10 +206,9 @@ class _Comparer:
         return out
 
     def run_set(self, rec: Recording, onnx_runner: Any, src_runner: Any, batch: int,
-                progress: Any, check: list[bool]) -> _SetResult:
+                progress: Progress, check: list[bool]) -> _SetResult:
         stats: dict[str, TensorStats] = {}
         worst: list[tuple[float, int, dict[str, np.ndarray[Any, Any]]]] = []
-        task = progress.add_task(rec.label, total=rec.windows) if progress else None
         for start, feeds in rec.batches(batch):  # window-first arrays
             model_feeds = to_model_layout(feeds, self.specs)
             a = onnx_runner.run(model_feeds)
@@ -239,8 +226,7 @@ class _Comparer:
                 if st.window_max is not None:
                     score = np.maximum(score, st.window_max)
             _keep_worst(worst, score, start, model_feeds)
-            if progress:
-                progress.advance(task, len(score))
+            progress.advance(len(score), rec.label)
         for st in stats.values():
             st.release()
         return _SetResult(rec, stats, worst)
@@ -315,7 +301,7 @@ def verify_model(
     batch_size: int = DEFAULT_BATCH,
     states: bool = True,
     oracle: bool = False,
-    progress: bool = False,
+    progress: Progress | None = None,
     task: str | None = None,
     seed: int = 0,
 ) -> VerifyReport:
@@ -349,21 +335,22 @@ def verify_model(
     if synthetic:
         stats = feature_stats(recs[0], batch_size) if recs else None
         recs += synthetic_sets(specs, stats, seed)
-    infos = _tensor_infos(model, probes)
+    infos = tensor_infos(model, probes)
     warnings += [f"tolerance pattern {p!r} matches no tensor" for p in tol.unmatched([t.name for t in infos])]
+    from seqgate.runtimes.factory import open_source_runner
     from seqgate.runtimes.onnx import OnnxRunner
 
     onnx_runner = OnnxRunner(model, probes)
     output_names = [o.name for o in model.graph.output]
-    src_runner = make_source_runner(src, model, probes, output_names, states)
+    src_runner = open_source_runner(src, probes, output_names, states)
     if task == "classify":
         classes = set(output_names)
     elif task == "regress":
         classes = set()
     else:
         classes = _class_outputs(model)
-    comparer = _Comparer(infos, tol, classes, specs, _output_dims(model))
-    results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress)
+    comparer = Comparer(infos, tol, classes, specs, output_dims(model))
+    results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress or SILENT)
     entries = [_tensor_entry(t, results, comparer.batch_axis.get(t.name, 0)) for t in infos]
     first = _first_divergence(infos, results)
     oracle_out = None
@@ -386,14 +373,11 @@ def verify_model(
         warnings=warnings)
 
 
-def _run_all(comparer: _Comparer, recs: list[Recording], onnx_runner: Any, src_runner: Any, batch: int,
-             show: bool) -> list[_SetResult]:
+def _run_all(comparer: Comparer, recs: list[Recording], onnx_runner: Any, src_runner: Any, batch: int,
+             progress: Progress) -> list[_SetResult]:
     check = [True]
-    if not show:
-        return [comparer.run_set(r, onnx_runner, src_runner, batch, None, check) for r in recs]
-    from rich.console import Console
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
-
-    cols = (TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn())
-    with Progress(*cols, console=Console(stderr=True), transient=True) as bar:
-        return [comparer.run_set(r, onnx_runner, src_runner, batch, bar, check) for r in recs]
+    progress.start(f"verifying {len(recs)} window set{'s' if len(recs) != 1 else ''}",
+                   sum(r.windows for r in recs))
+    results = [comparer.run_set(r, onnx_runner, src_runner, batch, progress, check) for r in recs]
+    progress.finish()
+    return results

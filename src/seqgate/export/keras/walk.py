@@ -19,7 +19,14 @@ from typing import Any
 
 import numpy as np
 
-from seqgate.errors import BadInputError, Refusal, Unsupported, UnsupportedModelError
+from seqgate.errors import (
+    BadInputError,
+    MappingError,
+    Refusal,
+    SeqgateError,
+    Unsupported,
+    UnsupportedModelError,
+)
 from seqgate.export.core.builder import DimSpec, GraphBuilder, np_to_onnx_type
 from seqgate.export.keras.call import KV, KerasCall
 from seqgate.sources.keras_graph import graph_nodes, is_nested
@@ -225,13 +232,13 @@ def _map_one(
     except Refusal as r:
         problems.append(Unsupported(where, r.what, r.hint))
         return _placeholders(b, call)
-    except (AttributeError, TypeError, ValueError, KeyError, IndexError) as e:
-        # an option the mapping did not foresee: refuse the layer rather than crash
-        problems.append(Unsupported(where, f"seqgate could not map this layer ({type(e).__name__}: {e})",
-                                    "please report it with the model's config"))
-        return _placeholders(b, call)
+    except SeqgateError:
+        raise
+    except Exception as e:  # a bug in the mapping, not a property of the model: exit 4, never "unsupported"
+        raise MappingError(call.name, cls, fn, e) from e
     if len(names) != len(call.outputs):
-        raise AssertionError(f"mapping for {cls} returned {len(names)} values for {len(call.outputs)} outputs")
+        raise MappingError(call.name, cls, fn, AssertionError(
+            f"the mapping returned {len(names)} values for {len(call.outputs)} outputs"))
     return names
 
 

@@ -8,8 +8,9 @@ Contract:
   and with what dims; batch and time are the symbolic dims ``batch`` and ``time``).
 - Graph outputs: a single returned tensor is ``output``; a returned tuple/list (nested ones
   are flattened depth first, e.g. ``out, (h, c)``) gives ``output_0``, ``output_1``, …; a
-  returned dict gives one output per key, named by the key. A name that a forward parameter
-  already uses gets a trailing ``_``.
+  returned dict gives one output per key, named by the key (``key_0``, ``key_1``, … when the
+  value is itself a tuple), in insertion order (``seqgate.util.outputs``, the rule every
+  runner follows too). A name that a forward parameter already uses gets a trailing ``_``.
 - Each node is mapped by ``MODULES`` (module class), ``FUNCTIONS`` (function object) or
   ``METHODS`` (tensor method name), the tables of ``registry``. Shapes of intermediate
   tensors come from two sample runs.
@@ -29,7 +30,7 @@ import operator
 from pathlib import Path
 from typing import Any
 
-from seqgate.errors import Refusal, Unsupported, UnsupportedModelError
+from seqgate.errors import MappingError, Refusal, SeqgateError, Unsupported, UnsupportedModelError
 from seqgate.export.core.builder import GraphBuilder, np_to_onnx_type
 from seqgate.export.torch.inputs import (
     Plan,
@@ -42,6 +43,8 @@ from seqgate.export.torch.inputs import (
 )
 from seqgate.export.torch.values import TV, UNKNOWN, TorchCall, source_line
 from seqgate.sources.spec import Source
+from seqgate.util.outputs import flatten_with_paths
+from seqgate.util.text import first_line
 
 
 def export_torch_source(src: Source, opset: int, inputs: list[str] | None = None, **options: Any) -> Any:
@@ -185,9 +188,9 @@ def _untraceable(module: Any, e: BaseException) -> Unsupported:
         f = frames[-1]
         code = (f.line or "").strip()
         at = f" at {Path(f.filename).name}:{f.lineno}: `{code}`"
-    msg = str(e).strip().splitlines()[0] if str(e).strip() else type(e).__name__
+    msg = first_line(e)
     return Unsupported(f"{type(module).__name__}.forward{at}",
-                       f"torch.fx cannot trace it ({type(e).__name__}: {msg[:200]})", _trace_hint(msg, code))
+                       f"torch.fx cannot trace it ({type(e).__name__}: {msg})", _trace_hint(msg, code))
 
 
 def _trace_hint(msg: str, code: str) -> str:
@@ -290,7 +293,14 @@ class _Walk:
         except Refusal as r:
             self.problems.append(Unsupported(where, r.what, r.hint))
             return UNKNOWN
-        return _attach(raw, meta, where)
+        except SeqgateError:
+            raise
+        except Exception as e:  # a bug in the mapping: exit 4 naming it, never "unsupported"
+            raise MappingError(where, kind, fn, e) from e
+        try:
+            return _attach(raw, meta, where)
+        except AssertionError as e:
+            raise MappingError(where, kind, fn, e) from e
 
     def _lookup(self, node: Any) -> tuple[Any, str, str, Any]:
         from seqgate.export.torch.functions import function_label
@@ -413,14 +423,12 @@ def _declare_outputs(
 ) -> None:
     """Name and declare the graph outputs (rule in the module docstring)."""
     leaves: list[tuple[str, Any, Any]] = []
-    if isinstance(result, dict):
-        for k, v in result.items():
-            leaves.append((str(k), v, meta.get(k) if isinstance(meta, dict) else None))
-    elif isinstance(result, tuple | list):
-        flat_v, flat_m = _flatten(result, meta)
-        leaves = [(f"output_{i}", v, m) for i, (v, m) in enumerate(zip(flat_v, flat_m, strict=True))]
-    else:
-        leaves = [("output", result, meta)]
+    for i, (path, v) in enumerate(flatten_with_paths(result)):
+        if isinstance(result, dict):
+            oname = "_".join(str(k) for k in path)
+        else:
+            oname = f"output_{i}" if path else "output"
+        leaves.append((oname, v, _meta_at(meta, path)))
     taken = set(plan.params) | {n for s in plan.inputs for n in s.onnx_names}
     problems: list[Unsupported] = []
     for oname, v, m in leaves:
@@ -437,14 +445,13 @@ def _declare_outputs(
         raise UnsupportedModelError(label, problems)
 
 
-def _flatten(v: Any, m: Any) -> tuple[list[Any], list[Any]]:
-    if isinstance(v, tuple | list):
-        vs: list[Any] = []
-        ms: list[Any] = []
-        for i, x in enumerate(v):
-            sub_m = m[i] if isinstance(m, tuple) and i < len(m) else None
-            a, c = _flatten(x, sub_m)
-            vs += a
-            ms += c
-        return vs, ms
-    return [v], [m]
+def _meta_at(meta: Any, path: tuple[Any, ...]) -> Any:
+    """The traced metadata of the output at ``path`` (None where the structures differ)."""
+    for k in path:
+        if isinstance(meta, dict):
+            meta = meta.get(k)
+        elif isinstance(meta, tuple) and isinstance(k, int) and k < len(meta):
+            meta = meta[k]
+        else:
+            return None
+    return meta

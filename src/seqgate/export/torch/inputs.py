@@ -38,6 +38,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
+from seqgate.util.text import first_line
 
 SAMPLE_A = {"batch": 3, "time": 13}
 SAMPLE_B = {"batch": 2, "time": 17}
@@ -392,7 +393,7 @@ def _record(gm: Any, plan: Plan, sizes: dict[str, int], seed: int, label: str) -
         shapes = ", ".join(f"{s.name}: {[sizes.get(d, d) for d in s.dims]}" for s in plan.inputs)
         raise BadInputError(
             f"running {label} on sample inputs ({shapes}) failed at {_where(f.node)} with "
-            f"{type(f.error).__name__}: {str(f.error).strip().splitlines()[0][:300] if str(f.error) else ''}. "
+            f"{type(f.error).__name__}: {first_line(f.error)}. "
             f"seqgate runs the module to learn its shapes; if the inferred input shape is wrong, "
             f"pass --input NAME:DIM,DIM,..."
         ) from None
