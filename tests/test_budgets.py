@@ -6,9 +6,9 @@ The CLI side of the same errors (exit code, message on stderr) is in test_profil
 from __future__ import annotations
 
 import pytest
+from seqgate.profile.budgets import Budget, check_percentile, parse_budget, parse_budgets, parse_int_list
 
 from seqgate.errors import EXIT_BAD_INPUT, BadInputError
-from seqgate.profile.budgets import Budget, check_percentile, parse_budget, parse_budgets, parse_int_list
 
 
 @pytest.mark.parametrize(("text", "expected"), [

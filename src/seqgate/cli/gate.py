@@ -1,4 +1,4 @@
-"""``seqgate gate GATE.toml [--out DIR]``: the release gate as one command."""
+"""``seqgate gate GATE.toml [--out-dir DIR]``: the release gate as one command."""
 
 from __future__ import annotations
 
@@ -12,8 +12,9 @@ from seqgate.errors import SeqgateError
 
 def gate(
     config: Annotated[Path, typer.Argument(help="The gate config (TOML); see fixtures/gate_example.toml.")],
-    out: Annotated[Path | None, typer.Option("--out", help="Directory for model.onnx and the reports "
-                                             "(default: CONFIG-report/ next to the config).")] = None,
+    out_dir: Annotated[Path | None, typer.Option("--out-dir", help="Directory for model.onnx and the reports "
+                                                 "(default: CONFIG-report/ next to the config).")] = None,
+    old_out: Annotated[Path | None, typer.Option("--out", hidden=True)] = None,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display.")] = False,
 ) -> None:
     """Export, verify and profile as the config declares; exit 0 only when every check passes."""
@@ -21,7 +22,7 @@ def gate(
     from seqgate.gate.run import run_gate
 
     try:
-        report = run_gate(config, out, progress=not quiet)
+        report = run_gate(config, out_dir or old_out, progress=not quiet)
     except SeqgateError as e:
         raise _fail(e) from None
     _print_summary(report)
@@ -38,7 +39,7 @@ def _print_summary(report: object) -> None:
     for col in ("check", "verdict", "detail"):
         t.add_column(col, overflow="fold")
     for ch in r.checks:  # type: ignore[attr-defined]
-        t.add_row(ch["name"], "[green]pass[/]" if ch["passed"] else "[bold red]FAIL[/]", ch["detail"])
+        t.add_row(ch["name"], "[green]pass[/]" if ch["passed"] else "[bold red]fail[/]", ch["detail"])
     c.print(t)
     if r.error:  # type: ignore[attr-defined]
         Console(stderr=True, highlight=False).print(f"[bold red]error:[/] {r.error['message']}")  # type: ignore[attr-defined]

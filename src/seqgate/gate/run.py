@@ -71,14 +71,14 @@ class GateReport:
         cfg = self.config
         return {
             "schema": SCHEMA,
-            "tool_version": __version__,
+            "seqgate_version": __version__,
             "created": _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
             "passed": self.passed,
             "exit_code": self.exit_code,
             "model_name": self.model_name,
             "config_path": str(cfg.path),
             "config": {"source": cfg.source, "opset": cfg.opset, "percentile": cfg.percentile,
-                       "budgets": [{"seq_len": b.seq_len, "ms": b.ms} for b in cfg.budgets]},
+                       "budgets": [b.to_json() for b in cfg.budgets]},
             "checks": self.checks,
             "error": self.error,
             "verify": self.verify,
@@ -136,7 +136,7 @@ def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
     from seqgate.export.run import export_source
 
     cfg = report.config
-    options = {"inputs": cfg.inputs} if cfg.inputs else {}
+    options = {"inputs": list(cfg.inputs)} if cfg.inputs else {}
     res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, **options)
     from seqgate.onnxfile.probes import read_metadata
 
@@ -174,21 +174,17 @@ def _check_lengths(cfg: GateConfig, model: Any) -> None:
     if cfg.profile_enabled:
         from seqgate.profile.run import lengths_to_measure
 
-        lengths_to_measure(model, cfg.seq_lens, [f"{b.seq_len}={b.ms}" for b in cfg.budgets])
+        lengths_to_measure(model, cfg.seq_lens, cfg.budgets, cfg.batch_sizes)
 
 
 def _verify(report: GateReport, model_path: Path, weights: str | None, progress: bool) -> None:
-    from seqgate.verify.compare import Tolerances, load_tolerances
     from seqgate.verify.run import verify_model
 
     cfg = report.config
-    base = load_tolerances(None, cfg.atol, cfg.rtol)
-    tol = Tolerances(base.atol, base.rtol, tuple((t.match, t.atol, t.rtol) for t in cfg.tolerances))
     vr = verify_model(
-        model_path, cfg.source, weights=weights, windows=[str(p) for p in cfg.recordings],
-        synthetic=cfg.synthetic, tolerances=tol, batch_size=cfg.batch_size, states=cfg.states,
-        oracle=cfg.oracle, progress=progress, task=None if cfg.task == "auto" else cfg.task,
-        seed=cfg.seed,
+        model_path, cfg.source, weights=weights, recordings=[str(p) for p in cfg.recordings],
+        synthetic=cfg.synthetic, tolerances=cfg.tolerances, batch_size=cfg.batch_size, states=cfg.states,
+        oracle=cfg.oracle, progress=progress, task=cfg.task, seed=cfg.seed,
     )
     report.verify = vr.to_json()
     for r in report.verify["recordings"]:  # hashed once, by verify
@@ -225,9 +221,8 @@ def _measure(cfg: GateConfig, model_path: Path, weights: str | None, bar: Any) -
     from seqgate.profile.run import profile_model
 
     return profile_model(
-        model_path, seq_lens=cfg.seq_lens, batches=cfg.batch, threads=cfg.threads, warmup=cfg.warmup,
-        min_runs=cfg.min_runs, min_time=cfg.min_time,
-        budgets=[f"{b.seq_len}={b.ms}" for b in cfg.budgets], percentile=cfg.percentile,
+        model_path, seq_lens=cfg.seq_lens, batch_sizes=cfg.batch_sizes, threads=cfg.threads, warmup=cfg.warmup,
+        min_runs=cfg.min_runs, min_time=cfg.min_time, budgets=cfg.budgets, percentile=cfg.percentile,
         source=cfg.source if cfg.compare_source else None,
         weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=bar,
     )
