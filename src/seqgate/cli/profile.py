@@ -87,7 +87,7 @@ def _parse_options(seq_lens: str, batch_sizes: str, threads: str, warmup: int, m
         "min_runs": min_runs, "min_time": min_time, "budget": budgets, "percentile": percentile,
     }, CLI, problems)
     checked_seed = problems.take(parse_seed, seed, "--seed")
-    problems.raise_if_any("the command line")
+    problems.raise_if_any()
     return {"seq_lens": opts["seq_lens"], "batch_sizes": opts["batch_sizes"], "threads": opts["threads"],
             "warmup": opts["warmup"], "min_runs": opts["min_runs"], "min_time": opts["min_time"],
             "budgets": opts["budget"], "percentile": opts["percentile"], "seed": checked_seed}

@@ -71,7 +71,7 @@ def verify(
                "atol": atol, "rtol": rtol, "oracle": oracle}
         opts = parse_settings("verify", raw, CLI, problems)
         read_tolerances(tolerances, atol, rtol, problems)
-        problems.raise_if_any("the command line")
+        problems.raise_if_any()
         for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
             if p is not None:
                 check_output_path(p, option)
