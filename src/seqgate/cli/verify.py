@@ -68,9 +68,9 @@ def verify(
     try:
         problems = Problems()
         raw = {"synthetic": synthetic, "seed": seed, "batch_size": batch_size, "states": states, "task": task,
-               "atol": atol, "rtol": rtol, "oracle": oracle}
+               "oracle": oracle}
         opts = parse_settings("verify", raw, CLI, problems)
-        read_tolerances(tolerances, atol, rtol, problems)
+        read_tolerances(tolerances, atol, rtol, problems)  # --atol/--rtol with the file they override
         problems.raise_if_any()
         for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
             if p is not None:
