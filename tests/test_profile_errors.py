@@ -52,7 +52,8 @@ def test_bad_usage_exits_2(model: Path, args: list[str], message: str) -> None:
 
 
 def test_every_option_problem_at_once(model: Path) -> None:
-    code, out = _run(str(model), *FAST, "--min-runs", "0", "--seed", "-3", "--budget", "8=nan", "--percentile", "95")
+    code, out = _run(str(model), *FAST, "--min-runs", "0", "--seed", "-3", "--budget", "8=nan",
+                     "--percentile", "95")
     assert code == 2, out
     assert "4 problems" in out
     for piece in ("--min-runs", "--seed", "--budget '8=nan'", "--percentile 95"):

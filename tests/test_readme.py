@@ -247,7 +247,8 @@ def test_readme_opens_with_the_job_and_keeps_the_cautions() -> None:
         assert phrase in body, f"the cautions do not mention {phrase!r}"
 
 
-@pytest.mark.parametrize("section", ["## Two commands", "## Walk-through", "## Gate config reference", "## Names",
+@pytest.mark.parametrize("section", ["## Two commands", "## Walk-through", "## Gate config reference",
+                                     "## Names",
                                      "## Exit codes", "## Reading the report", "## Python API", "## Cautions"])
 def test_readme_has_section(section: str) -> None:
     assert f"\n{section}\n" in README.read_text(encoding="utf-8")
