@@ -150,10 +150,8 @@ def _tampered_copy(src_dir: Path, dst: Path) -> str:
 
 def test_tampered_model_fails_with_first_divergence(tmp_path: Path) -> None:
     good = tmp_path / "good"
-    assert (
-        runner.invoke(app, ["gate", str(_pressure_config(tmp_path)), "--out-dir", str(good), "--quiet"]).exit_code
-        == 0
-    )
+    r = runner.invoke(app, ["gate", str(_pressure_config(tmp_path)), "--out-dir", str(good), "--quiet"])
+    assert r.exit_code == 0
     layer = _tampered_copy(good, tmp_path / "shipped.onnx")
     cfg = _pressure_config(tmp_path, extra=f'onnx = "{tmp_path / "shipped.onnx"}"')
     out = tmp_path / "bad"

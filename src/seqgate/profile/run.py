@@ -202,14 +202,9 @@ def profile_model(
     from seqgate.util.environment import environment
     from seqgate.util.files import sha256_file
 
-    problems = Problems()
-    opts = parse_settings("profile", {
-        "seq_lens": seq_lens, "batch_sizes": batch_sizes, "threads": threads, "warmup": warmup,
-        "min_runs": min_runs, "min_time": min_time, "budget": budgets, "percentile": percentile,
-    }, PYTHON, problems)
-    seed = problems.take(parse_seed, seed, "argument seed") or 0
-    problems.raise_if_any()
-    warmup, min_runs, min_time, q = opts["warmup"], opts["min_runs"], opts["min_time"], opts["percentile"]
+    opts = _options(locals())
+    warmup, min_runs, min_time = opts["warmup"], opts["min_runs"], opts["min_time"]
+    q, seed = opts["percentile"], opts["seed"]
     budget_list = list(opts["budget"])
     path = Path(model_path)
     model = load_onnx(path)
@@ -250,6 +245,17 @@ def profile_model(
         seed=seed, points=points, fits=fits, budgets=budget_checks(points, budget_list, q, fits),
         environment=env, timer=timer_overhead(), notes=notes,
     )
+
+
+def _options(args: dict[str, Any]) -> dict[str, Any]:
+    """``profile_model``'s arguments through ``seqgate.settings``; every problem in one error (exit 2)."""
+    problems = Problems()
+    keys = ("seq_lens", "batch_sizes", "threads", "warmup", "min_runs", "min_time", "percentile")
+    raw = {**{k: args[k] for k in keys}, "budget": args["budgets"]}
+    opts = parse_settings("profile", raw, PYTHON, problems)
+    opts["seed"] = problems.take(parse_seed, args["seed"], "argument seed")
+    problems.raise_if_any()
+    return opts
 
 
 def _parse_source(source: str | None, weights: str | None) -> Any:
