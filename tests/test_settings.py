@@ -120,7 +120,7 @@ def test_seed_default_is_shared_by_verify_and_profile() -> None:
 
 
 def test_old_spellings_are_hidden_aliases() -> None:
-    assert _options("verify")["--recording"].hidden and _options("profile")["--batch"].hidden
+    assert _options("verify")["--windows"].hidden and _options("profile")["--batch"].hidden
     assert _options("gate")["--out"].hidden
 
 
@@ -150,7 +150,7 @@ def test_verify_non_utf8_tolerance_file_exits_2(tmp_path: Path) -> None:
 
 
 def test_verify_old_windows_option_still_works(tmp_path: Path) -> None:
-    code, out = _run(["verify", str(tmp_path / "m.onnx"), "--source", "m.keras", "--recording", "r.npz"])
+    code, out = _run(["verify", str(tmp_path / "m.onnx"), "--source", "m.keras", "--windows", "r.npz"])
     assert code == EXIT_BAD_INPUT and "No such option" not in out and "does not exist" in out
 
 

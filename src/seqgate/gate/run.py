@@ -15,7 +15,7 @@ Contract:
 - Budgets at lengths the exported model cannot take (a fixed time dim) are refused (exit 2)
   before verification and profiling start.
 - Checks: ``export``, ``verify`` (every output and hidden state within tolerance on every
-  window set) and, when the config has a ``[profile]`` table, ``latency`` (every budget holds).
+  recording) and, when the config has a ``[profile]`` table, ``latency`` (every budget holds).
   The gate passes only when every check that ran passed (exit 0); otherwise exit 1.
 - Outputs, each written atomically: ``model.onnx``, ``report.json`` (``seqgate.gate/1``, embedding
   the verify and profile reports), ``report.md``, ``junit.xml``, ``report.html`` (self-contained).

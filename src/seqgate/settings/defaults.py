@@ -20,7 +20,7 @@ RTOL = 1e-4
 SEED = 0
 # verify
 BATCH_SIZE = 64  # windows per runtime call: large enough to amortise a call, small enough for RAM
-# Off unless asked: the synthetic sets add five window sets, one of them 4× the recorded length.
+# Off unless asked: the synthetic sets add five recordings, one of them 4× the recorded length.
 SYNTHETIC = False
 STATES = True
 TASK = "auto"

@@ -59,7 +59,7 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("verify", "recordings", "--recording", "recordings", (), None,
             "recorded windows (.npz/.npy); repeatable on the command line"),
     Setting("verify", "synthetic", "--synthetic", "settings.synthetic", d.SYNTHETIC, parse_bool,
-            "add the five seeded synthetic window sets"),
+            "add the five seeded synthetic recordings"),
     Setting("verify", "seed", "--seed", "seed", d.SEED, parse_seed,
             "seed of the synthetic windows and of the profile inputs"),
     Setting("verify", "batch_size", "--batch-size", "settings.batch_size", d.BATCH_SIZE, parse_count,

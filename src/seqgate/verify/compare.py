@@ -111,7 +111,7 @@ class TensorStats:
     _scratch: dict[str, np.ndarray[Any, Any]] = field(default_factory=dict, repr=False)
 
     def release(self) -> None:
-        """Free the work arrays (call when a window set is done)."""
+        """Free the work arrays (call when a recording is done)."""
         self._scratch.clear()
 
     def _buf(self, key: str, shape: tuple[int, ...]) -> np.ndarray[Any, Any]:
