@@ -90,9 +90,9 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
     from seqgate.onnxfile.probes import read_probe_map
     from seqgate.runtimes.factory import open_source_runner
     from seqgate.runtimes.onnx import OnnxRunner
+    from seqgate.settings import Tolerances
     from seqgate.sources.spec import parse_source
     from seqgate.util.progress import SILENT
-    from seqgate.verify.compare import load_tolerances
     from seqgate.verify.recordings import input_specs, load_recording
     from seqgate.verify.run import Comparer, output_dims, tensor_infos, verify_model
 
@@ -116,7 +116,7 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
         r.run({"x": x[:BATCH]})
         r.run({"x": x[:BATCH]})
     specs = input_specs(model)
-    comparer = Comparer(tensor_infos(model, probes), load_tolerances(None), set(), specs, output_dims(model))
+    comparer = Comparer(tensor_infos(model, probes), Tolerances(), set(), specs, output_dims(model))
     rec_obj = load_recording(rec, specs)
     best_bare, best_loop = float("inf"), float("inf")
     for _ in range(5):  # interleaved, best of 5: the machine is shared
@@ -125,7 +125,7 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
         comparer.run_set(rec_obj, full_ort, full_src, BATCH, SILENT, [False])
         best_loop = min(best_loop, time.perf_counter() - t0)
     t0 = time.perf_counter()
-    rep = verify_model(onnx_path, source, weights, windows=[rec], batch_size=BATCH)
+    rep = verify_model(onnx_path, source, weights, recordings=[rec], batch_size=BATCH)
     total = time.perf_counter() - t0
     assert rep.passed, rep.headline()
     print(f"{label}: bare inference {best_bare:.3f} s, verify loop {best_loop:.3f} s "
@@ -137,7 +137,7 @@ CHILD = r'''
 import json, resource, sys, tracemalloc
 tracemalloc.start()
 from seqgate.verify.run import verify_model
-rep = verify_model(sys.argv[1], sys.argv[2], None, windows=[sys.argv[3]], batch_size=int(sys.argv[4]))
+rep = verify_model(sys.argv[1], sys.argv[2], None, recordings=[sys.argv[3]], batch_size=int(sys.argv[4]))
 cur, peak = tracemalloc.get_traced_memory()
 print(json.dumps({"passed": rep.passed, "maxrss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
                   "traced_peak_mb": peak / 2**20}))

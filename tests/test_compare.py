@@ -15,10 +15,10 @@ from seqgate.verify.compare import (
     HIST_REL_WIDTH,
     REL_FLOOR,
     TensorStats,
-    load_tolerances,
     merge_stats,
     within_tolerance,
 )
+from seqgate.verify.tolerances import load_tolerances
 
 finite32 = st.floats(-1e6, 1e6, allow_nan=False, width=32)
 
@@ -139,25 +139,56 @@ def test_merge_equals_single_pass(rng: np.random.Generator) -> None:
 
 def test_tolerance_file_precedence(tmp_path) -> None:  # type: ignore[no-untyped-def]
     f = tmp_path / "tol.toml"
-    f.write_text('atol = 2e-5\nrtol = 3e-5\n[[tensor]]\nmatch = "enc/*"\natol = 1e-3\n'
-                 '[[tensor]]\nmatch = "enc/l1/*"\nrtol = 0.0\n')
+    f.write_text('atol = 2e-5\nrtol = 3e-5\n[[tolerance]]\nmatch = "enc/*"\natol = 1e-3\n'
+                 '[[tolerance]]\nmatch = "enc/l1/*"\nrtol = 0.0\n')
     t = load_tolerances(str(f))
+    # hand-worked from the documented precedence: defaults, file top level, then matching entries in order
     assert t.for_tensor("out") == (2e-5, 3e-5)
     assert t.for_tensor("enc/l0/forward/hidden_final") == (1e-3, 3e-5)
     assert t.for_tensor("enc/l1/forward/hidden_final") == (1e-3, 0.0)
     t2 = load_tolerances(str(f), atol=7e-6)
     assert t2.for_tensor("out") == (7e-6, 3e-5) and t2.for_tensor("enc/x") == (1e-3, 3e-5)
     assert t.unmatched(["out"]) == ["enc/*", "enc/l1/*"]
+    # 0 is a valid tolerance, not "not given"
+    assert load_tolerances(str(f), atol=0.0, rtol=0.0).for_tensor("out") == (0.0, 0.0)
 
 
 @pytest.mark.parametrize("text, needle", [
     ("atol = -1", "atol must be a finite number"),
+    ("atol = nan", "atol must be a finite number ≥ 0, got nan"),  # TOML has nan; IEEE-754: nan < 0 is false
+    ("rtol = inf", "rtol must be a finite number ≥ 0, got inf"),
     ("speed = 1", "unknown key"),
-    ("[[tensor]]\natol = 1e-3\n", "match"),
+    ("[[tolerance]]\natol = 1e-3\n", "[[tolerance]] entry 1: match is required"),
+    ('[[tolerance]]\nmatch = "x"\natol = -1.0\n', "[[tolerance]] entry 1: atol must be a finite number"),
+    ('[[tolerance]]\nmatch = "x"\n', "give atol and/or rtol"),
+    ('[[tensor]]\nmatch = "x"\natol = 1e-3\n', "[[tensor]] is now written [[tolerance]]"),
     ("atol = ", "not valid TOML"),
 ])
 def test_bad_tolerance_files(tmp_path, text: str, needle: str) -> None:  # type: ignore[no-untyped-def]
     f = tmp_path / "tol.toml"
     f.write_text(text)
-    with pytest.raises(BadInputError, match=needle):
+    with pytest.raises(BadInputError) as e:
         load_tolerances(str(f))
+    assert needle in str(e.value)
+    assert f"tolerance file {f}" in str(e.value)
+
+
+def test_every_problem_of_a_tolerance_file_at_once(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    f = tmp_path / "tol.toml"
+    f.write_text('atol = nan\n[[tolerance]]\natol = -1.0\n[[tolerance]]\nmatch = "y"\nrtol = 1e-3\n')
+    with pytest.raises(BadInputError) as e:
+        load_tolerances(str(f), rtol=-2.0)
+    msg = str(e.value)
+    assert msg.count("\n  - ") == 4
+    for piece in (f"tolerance file {f}: atol must be", "[[tolerance]] entry 1: match is required",
+                  "[[tolerance]] entry 1: atol must be", "--rtol must be a finite number ≥ 0, got -2.0"):
+        assert piece in msg, piece
+
+
+def test_non_utf8_tolerance_file_is_bad_input(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    # 0xff never occurs in UTF-8 (RFC 3629); the old reader let UnicodeDecodeError through (exit 4)
+    f = tmp_path / "tol.toml"
+    f.write_bytes(b"atol = 1e-4 # \xff\n")
+    with pytest.raises(BadInputError, match="is not UTF-8 text") as e:
+        load_tolerances(str(f))
+    assert e.value.exit_code == 2

@@ -188,7 +188,7 @@ def test_gate_message_keeps_brackets_and_odd_output_path_works(tmp_path: Path) -
     cfg = tmp_path / "gate.toml"
     cfg.write_text(f'[model]\nsource = "{KERAS_DEMO}"\n[verify]\nrecordings = ["{bad}"]\n', encoding="utf-8")
     out = tmp_path / "reports [/] v2"
-    r = _run(["gate", str(cfg), "--out", str(out), "--quiet"])
+    r = _run(["gate", str(cfg), "--out-dir", str(out), "--quiet"])
     text = _flat(r.output)
     assert r.exit_code == 2, text
     assert "Lay the windows out as [windows, steps, features]." in text  # was "Lay the windows out as ."

@@ -22,7 +22,7 @@ runner = CliRunner()
 FAST_PROFILE = """
 [profile]
 seq_lens = [8, 32]
-batch = [1]
+batch_sizes = [1]
 threads = [1]
 percentile = 90
 warmup = 1
@@ -102,7 +102,7 @@ def _assert_self_contained(p: _Html, text: str) -> None:
 
 def test_gate_passes_on_keras_demo(tmp_path: Path) -> None:
     out = tmp_path / "out"
-    r = runner.invoke(app, ["gate", str(_pressure_config(tmp_path)), "--out", str(out), "--quiet"])
+    r = runner.invoke(app, ["gate", str(_pressure_config(tmp_path)), "--out-dir", str(out), "--quiet"])
     assert r.exit_code == 0, r.output
     for name in ("model.onnx", "report.json", "report.md", "junit.xml", "report.html"):
         assert (out / name).is_file(), name
@@ -124,7 +124,7 @@ def test_gate_passes_on_keras_demo(tmp_path: Path) -> None:
 
 def test_gate_passes_on_torch_demo(tmp_path: Path) -> None:
     out = tmp_path / "out"
-    r = runner.invoke(app, ["gate", str(_vibration_config(tmp_path)), "--out", str(out), "--quiet"])
+    r = runner.invoke(app, ["gate", str(_vibration_config(tmp_path)), "--out-dir", str(out), "--quiet"])
     assert r.exit_code == 0, r.output
     rep = json.loads((out / "report.json").read_text())
     assert rep["passed"] is True
@@ -150,14 +150,12 @@ def _tampered_copy(src_dir: Path, dst: Path) -> str:
 
 def test_tampered_model_fails_with_first_divergence(tmp_path: Path) -> None:
     good = tmp_path / "good"
-    assert (
-        runner.invoke(app, ["gate", str(_pressure_config(tmp_path)), "--out", str(good), "--quiet"]).exit_code
-        == 0
-    )
+    r = runner.invoke(app, ["gate", str(_pressure_config(tmp_path)), "--out-dir", str(good), "--quiet"])
+    assert r.exit_code == 0
     layer = _tampered_copy(good, tmp_path / "shipped.onnx")
     cfg = _pressure_config(tmp_path, extra=f'onnx = "{tmp_path / "shipped.onnx"}"')
     out = tmp_path / "bad"
-    r = runner.invoke(app, ["gate", str(cfg), "--out", str(out), "--quiet"])
+    r = runner.invoke(app, ["gate", str(cfg), "--out-dir", str(out), "--quiet"])
     assert r.exit_code == 1, r.output
     rep = json.loads((out / "report.json").read_text())
     assert rep["passed"] is False
@@ -172,7 +170,7 @@ def test_tampered_model_fails_with_first_divergence(tmp_path: Path) -> None:
 def test_impossible_budget_fails(tmp_path: Path) -> None:
     out = tmp_path / "out"
     r = runner.invoke(
-        app, ["gate", str(_pressure_config(tmp_path, budget_ms=1e-6)), "--out", str(out), "--quiet"]
+        app, ["gate", str(_pressure_config(tmp_path, budget_ms=1e-6)), "--out-dir", str(out), "--quiet"]
     )
     assert r.exit_code == 1, r.output
     rep = json.loads((out / "report.json").read_text())
@@ -194,7 +192,7 @@ def test_impossible_budget_fails(tmp_path: Path) -> None:
 def test_bad_config_exit_2(tmp_path: Path, body: str, needle: str) -> None:
     cfg = tmp_path / "gate.toml"
     cfg.write_text(body, encoding="utf-8")
-    r = runner.invoke(app, ["gate", str(cfg), "--out", str(tmp_path / "out")])
+    r = runner.invoke(app, ["gate", str(cfg), "--out-dir", str(tmp_path / "out")])
     assert r.exit_code == 2
     assert needle in r.output
     assert "Traceback" not in r.output
@@ -221,7 +219,7 @@ def test_unsupported_model_exit_3_with_reports(tmp_path: Path, keras) -> None:  
     cfg = tmp_path / "gate.toml"
     body = f'[model]\nsource = "{tmp_path / "masked.keras"}"\n[verify]\nsynthetic = true\n'
     cfg.write_text(body, encoding="utf-8")
-    r = runner.invoke(app, ["gate", str(cfg), "--out", str(tmp_path / "out"), "--quiet"])
+    r = runner.invoke(app, ["gate", str(cfg), "--out-dir", str(tmp_path / "out"), "--quiet"])
     assert r.exit_code == 3, r.output
     rep = json.loads((tmp_path / "out" / "report.json").read_text())
     assert rep["exit_code"] == 3 and rep["error"]["stage"] == "export"

@@ -40,7 +40,7 @@ synthetic = {"true" if synthetic else "false"}
 
 def _start(config: Path, out: Path, **kw: object) -> subprocess.Popen[str]:
     return subprocess.Popen(
-        [sys.executable, "-m", "seqgate.cli.app", "gate", str(config), "--out", str(out)],
+        [sys.executable, "-m", "seqgate.cli.app", "gate", str(config), "--out-dir", str(out)],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw,  # type: ignore[call-overload]
     )
 

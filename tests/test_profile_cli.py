@@ -98,11 +98,11 @@ def _check_side_by_side(report: dict[str, Any], source_runtime: str) -> None:
 
 def test_profile_beside_keras_writes_every_output(exported: dict[str, Path]) -> None:
     d = exported["dir"]
-    r = runner.invoke(app, ["profile", str(exported["onnx"]), *FAST, "--batch", "1,2", "--source",
+    r = runner.invoke(app, ["profile", str(exported["onnx"]), *FAST, "--batch-sizes", "1,2", "--source",
                             str(exported["keras"]), "--budget", "6=100000", "--report", str(d / "k.json"),
                             "--csv", str(d / "k.csv"), "--plot", str(d / "k.png")])
     assert r.exit_code == 0, r.output
-    assert "keras" in r.output and "speed-up" in r.output and "every budget holds" in r.output
+    assert "keras" in r.output and "speed-up" in r.output and "PASSED: every budget met" in r.output
     report = json.loads((d / "k.json").read_text())
     _check_side_by_side(report, "keras")
     assert report["model"]["sha256"] == hashlib.sha256(exported["onnx"].read_bytes()).hexdigest()
@@ -117,7 +117,7 @@ def test_profile_beside_torch(exported: dict[str, Path]) -> None:
 
     before = torch.get_num_threads()
     d = exported["dir"]
-    r = runner.invoke(app, ["profile", str(exported["onnx"]), *FAST, "--batch", "1,2", "--threads", "1",
+    r = runner.invoke(app, ["profile", str(exported["onnx"]), *FAST, "--batch-sizes", "1,2", "--threads", "1",
                             "--source", f"{exported['factory']}:build", "--weights", str(exported["weights"]),
                             "--report", str(d / "t.json")])
     assert r.exit_code == 0, r.output
@@ -131,7 +131,7 @@ def test_missed_budget_on_exported_model_exits_1(exported: dict[str, Path]) -> N
     r = runner.invoke(app, ["profile", str(exported["onnx"]), "--warmup", "0", "--min-runs", "2",
                             "--min-time", "0", "--seq-lens", "1", "--budget", "8=0.000001"])
     assert r.exit_code == 1, r.output
-    assert "missed" in r.output
+    assert "FAILED: 1 of 1 budget verdicts over budget" in " ".join(r.output.split())
     assert "budget length(s) 8 added to the sweep" in " ".join(r.output.split())
 
 

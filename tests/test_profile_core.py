@@ -112,7 +112,7 @@ def test_timer_overhead_reported() -> None:
 
 def test_profile_report_figures(tmp_path: Path) -> None:
     path = save(lstm_model(embedding=True), tmp_path / "m.onnx")
-    r = profile_model(path, seq_lens="2,6", batches="1,3", threads="1", warmup=1, min_runs=5,
+    r = profile_model(path, seq_lens="2,6", batch_sizes="1,3", threads="1", warmup=1, min_runs=5,
                       min_time=0.0, budgets=["6=1000", "4=1000"], percentile=90, seed=3)
     d = json.loads(r.to_json())
     assert d["schema"] == "seqgate.profile/1" and d["seed"] == 3 and d["passed"] is True

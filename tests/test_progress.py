@@ -71,7 +71,7 @@ def test_verify_reports_one_stage_and_every_window() -> None:
         onnx_path = Path(d) / "m.onnx"
         export_source(str(DEMO / "pressure" / "pressure_forecaster.keras"), onnx_path)
         progress = Recorder()
-        verify_model(onnx_path, str(DEMO / "pressure" / "pressure_forecaster.keras"), windows=[str(rec)],
+        verify_model(onnx_path, str(DEMO / "pressure" / "pressure_forecaster.keras"), recordings=[str(rec)],
                      progress=progress)
     assert progress.calls[0] == ("start", "verifying 1 window set", windows)
     assert progress.calls[-1][0] == "finish"
@@ -88,21 +88,21 @@ recordings = ["{DEMO / "pressure" / "field_week.npz"}"]
 synthetic = true
 [profile]
 seq_lens = [8, 32]
-batch = [1]
+batch_sizes = [1]
 threads = [1]
 warmup = 1
 min_runs = 3
 min_time = 0.0
 compare_source = false
 """, encoding="utf-8")
-    r = runner.invoke(app, ["gate", str(cfg), "--out", str(tmp_path / "out")])
+    r = runner.invoke(app, ["gate", str(cfg), "--out-dir", str(tmp_path / "out")])
     assert r.exit_code in (0, 1), r.output
     lines = [ln for ln in r.stderr.splitlines() if ln.startswith("seqgate: ")]
     assert lines[0] == "seqgate: exporting"
     assert lines[1].startswith("seqgate: verifying ") and lines[1].endswith(" window sets")
     assert lines[2] == "seqgate: profiling 2 points"
     assert len(lines) == 3  # one line per stage, nothing per step
-    quiet = runner.invoke(app, ["gate", str(cfg), "--out", str(tmp_path / "out2"), "--quiet"])
+    quiet = runner.invoke(app, ["gate", str(cfg), "--out-dir", str(tmp_path / "out2"), "--quiet"])
     assert "seqgate: " not in quiet.stderr
 
 

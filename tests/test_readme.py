@@ -24,7 +24,7 @@ REPO = Path(__file__).resolve().parents[1]
 README = REPO / "README.md"
 # lines of a bash block that are neither `seqgate` nor `scripts/` commands; the fixture does these
 SETUP_LINES = {"mkdir -p out", "source .venv/bin/activate"}
-OUTPUT_OPTIONS = {"-o", "--out", "--report", "--summary", "--junit", "--csv", "--plot"}
+OUTPUT_OPTIONS = {"-o", "--out", "--out-dir", "--report", "--summary", "--junit", "--csv", "--plot"}
 
 
 def _blocks() -> list[tuple[str, list[str], bool]]:
@@ -143,17 +143,17 @@ def _toml_block(first_line_prefix: str) -> str:
 
 
 def test_readme_tolerance_example_means_what_the_text_says(tmp_path: Path) -> None:
-    from seqgate.verify.compare import load_tolerances
+    from seqgate.verify.tolerances import load_tolerances
 
     path = tmp_path / "tolerances.toml"
     path.write_text(_toml_block("atol"), encoding="utf-8")
     tol = load_tolerances(str(path))
     # hand-worked from the README's example and its stated rule: defaults, then every matching
-    # [[tensor]] entry in file order, field by field
+    # [[tolerance]] entry in file order, field by field
     assert tol.for_tensor("gru/l1/forward/hidden_sequence") == (2e-4, 1e-4)
     assert tol.for_tensor("output") == (1e-4, 1e-3)
     assert tol.for_tensor("gru/l0/forward/hidden_final") == (1e-4, 1e-4)
-    # --atol sits above the file's top level and below the [[tensor]] entries
+    # --atol sits above the file's top level and below the [[tolerance]] entries
     tol = load_tolerances(str(path), atol=5e-4)
     assert tol.for_tensor("output") == (5e-4, 1e-3)
     assert tol.for_tensor("gru/l1/x") == (2e-4, 1e-4)
@@ -184,26 +184,55 @@ def _reference_rows() -> dict[tuple[str, str], str]:
     return rows
 
 
-def test_readme_config_reference_lists_every_key_with_its_default() -> None:
-    from seqgate.gate.config import _BUDGET_KEYS, _SCHEMA, _TOLERANCE_KEYS
-    from seqgate.verify.compare import DEFAULT_ATOL, DEFAULT_RTOL
+def _expected_config_defaults() -> dict[tuple[str, str], object]:
+    """{(section, key): default} from the code: seqgate.settings plus the [model]/[export] keys."""
+    from seqgate.export.run import DEFAULT_OPSET
+    from seqgate.gate.config import MODEL_KEYS
+    from seqgate.settings import SETTINGS
 
+    expected: dict[tuple[str, str], object] = {("model", k): None for k in MODEL_KEYS}
+    expected[("export", "opset")] = DEFAULT_OPSET
+    for st in SETTINGS:
+        if st.table:  # the [[...]] tables: their own keys, each required or optional
+            continue
+        expected[(st.section, st.key)] = list(st.default) if isinstance(st.default, tuple) else st.default
+    expected.update({("verify.tolerance", k): None for k in ("match", "atol", "rtol")})
+    expected.update({("profile.budget", k): None for k in ("seq_len", "ms")})
+    return expected
+
+
+def test_readme_config_reference_lists_every_key_with_its_default() -> None:
     rows = _reference_rows()
-    expected: dict[tuple[str, str], object] = {}
-    for section, keys in _SCHEMA.items():
-        for key, (_, default) in keys.items():
-            if (section, key) in (("verify", "tolerance"), ("profile", "budget")):
-                continue  # the [[...]] tables below
-            expected[(section, key)] = default
-    expected[("verify", "atol")], expected[("verify", "rtol")] = DEFAULT_ATOL, DEFAULT_RTOL
-    expected.update({("verify.tolerance", k): None for k in _TOLERANCE_KEYS})
-    expected.update({("profile.budget", k): None for k in _BUDGET_KEYS})
+    expected = _expected_config_defaults()
     assert set(rows) == set(expected), f"missing {set(expected) - set(rows)}, extra {set(rows) - set(expected)}"
     for k, shown in rows.items():
         if shown in ("required", "none", "keep"):
             assert expected[k] is None, f"{k}: README says {shown}, code default {expected[k]!r}"
             continue
         assert tomllib.loads(f"v = {shown}")["v"] == expected[k], f"{k}: README {shown}, code {expected[k]!r}"
+
+
+def _names_rows() -> list[list[str]]:
+    text = README.read_text(encoding="utf-8").split("\n## Names\n", 1)[1].split("\n## ", 1)[0]
+    rows = [[c.strip() for c in line.strip().strip("|").split("|")] for line in text.splitlines()
+            if line.startswith("| ") and not line.startswith("| concept")]
+    return rows
+
+
+def test_readme_names_table_is_the_settings_table() -> None:
+    # one row per setting of seqgate.settings, with its CLI option, config key, JSON field and default
+    from seqgate.settings import CONFIG, SETTINGS
+
+    rows = _names_rows()
+    assert len(rows) == len(SETTINGS)
+    for row, st in zip(rows, SETTINGS, strict=True):
+        cli, key, json_field, default = (re.findall(r"`([^`]+)`", c) for c in row[1:5])
+        assert key == [st.where(CONFIG)], (row, st)
+        assert json_field == [st.json], (row, st)
+        if st.cli:
+            assert cli[0].split()[0] == st.cli, (row, st)
+        want = list(st.default) if isinstance(st.default, tuple) else st.default
+        assert tomllib.loads(f"v = {default[0]}")["v"] == want, (row, st)
 
 
 def test_readme_opens_with_the_job_and_keeps_the_cautions() -> None:
@@ -219,6 +248,7 @@ def test_readme_opens_with_the_job_and_keeps_the_cautions() -> None:
 
 
 @pytest.mark.parametrize("section", ["## Two commands", "## Walk-through", "## Gate config reference",
+                                     "## Names",
                                      "## Exit codes", "## Reading the report", "## Python API", "## Cautions"])
 def test_readme_has_section(section: str) -> None:
     assert f"\n{section}\n" in README.read_text(encoding="utf-8")

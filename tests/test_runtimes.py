@@ -74,7 +74,7 @@ def test_dict_outputs_pass_verify_in_insertion_order(dict_model: dict[str, Path]
     names = [o.name for o in onnx.load(str(dict_model["onnx"])).graph.output]
     assert names == ["z", "a"]
     report = dict_model["dir"] / "verify.json"
-    _ok(["verify", str(dict_model["onnx"]), "--source", str(dict_model["source"]), "--windows",
+    _ok(["verify", str(dict_model["onnx"]), "--source", str(dict_model["source"]), "--recording",
          str(dict_model["rec"]), "--quiet", "--report", str(report)])
     tensors = {t["name"]: t for t in json.loads(report.read_text())["tensors"]}
     assert tensors["z"]["passed"] and tensors["a"]["passed"]
@@ -110,7 +110,7 @@ def hostile_keras(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
 
 def test_scope_hostile_layer_name_verifies(hostile_keras: dict[str, Path]) -> None:
     report = hostile_keras["dir"] / "v.json"
-    r = _ok(["verify", str(hostile_keras["onnx"]), "--source", str(hostile_keras["keras"]), "--windows",
+    r = _ok(["verify", str(hostile_keras["onnx"]), "--source", str(hostile_keras["keras"]), "--recording",
              str(hostile_keras["rec"]), "--report", str(report)])
     data = json.loads(report.read_text())
     layers = {t["layer"] for t in data["tensors"] if t["kind"] != "output"}

@@ -101,7 +101,7 @@ def _reverse(node: Any, inits: dict[str, Any]) -> None:
 def test_planted_bug_is_caught_at_the_middle_layer(stack: dict[str, Path], name: str, edit: Any,
                                                    step: int | None) -> None:
     bad = _tamper(stack, name, edit)
-    rep = verify_model(bad, str(stack["keras"]), windows=[stack["rec"]], batch_size=16)
+    rep = verify_model(bad, str(stack["keras"]), recordings=[stack["rec"]], batch_size=16)
     assert not rep.passed and rep.exit_code == 1
     fd = rep.first_divergence
     assert fd is not None
@@ -114,7 +114,7 @@ def test_planted_bug_is_caught_at_the_middle_layer(stack: dict[str, Path], name:
 
 
 def test_honest_export_passes_with_every_tensor_compared(stack: dict[str, Path]) -> None:
-    rep = verify_model(stack["onnx"], str(stack["keras"]), windows=[stack["rec"]], synthetic=True,
+    rep = verify_model(stack["onnx"], str(stack["keras"]), recordings=[stack["rec"]], synthetic=True,
                        batch_size=10, oracle=True, seed=3)
     assert rep.passed, rep.headline()
     names = [t["name"] for t in rep.tensors]
@@ -137,7 +137,7 @@ def test_honest_export_passes_with_every_tensor_compared(stack: dict[str, Path])
 def test_cli_reports_and_exit_codes(stack: dict[str, Path]) -> None:
     d = stack["dir"]
     bad = _tamper(stack, "cli_bad", _swap_gates)
-    args = ["verify", str(bad), "--source", str(stack["keras"]), "--windows", str(stack["rec"]), "--quiet",
+    args = ["verify", str(bad), "--source", str(stack["keras"]), "--recording", str(stack["rec"]), "--quiet",
             "--report", str(d / "r.json"), "--junit", str(d / "j.xml"), "--summary", str(d / "s.md")]
     r = runner.invoke(app, args)
     assert r.exit_code == 1, r.output
@@ -145,7 +145,7 @@ def test_cli_reports_and_exit_codes(stack: dict[str, Path]) -> None:
     doc = json.loads((d / "r.json").read_text())
     assert doc["schema"] == "seqgate.verify/1" and doc["passed"] is False
     assert doc["first_divergence"]["tensor"] == "middle/forward/hidden_sequence"
-    for key in ("tensors", "recordings", "environment", "versions", "seed", "model"):
+    for key in ("tensors", "recordings", "environment", "seqgate_version", "seed", "model"):
         assert key in doc
     t = doc["tensors"][0]
     for key in ("name", "kind", "layer", "direction", "metrics", "atol", "rtol", "passed", "per_step_max_abs"):
@@ -156,7 +156,7 @@ def test_cli_reports_and_exit_codes(stack: dict[str, Path]) -> None:
     assert suite is not None and int(suite.get("tests", 0)) == len(doc["tensors"])
     failed = [c.get("name") for c in suite.iter("testcase") if c.find("failure") is not None]
     assert "middle/forward/hidden_sequence" in failed and "first/forward/hidden_sequence" not in failed
-    assert "FAIL" in (d / "s.md").read_text()
+    assert "**fail**" in (d / "s.md").read_text()  # the per-tensor verdict word of every report
     # --no-states: the outputs alone still show the bug; a loose --atol lets everything pass
     r = runner.invoke(app, [*args[:6], "--quiet", "--no-states"])
     assert r.exit_code == 1 and "'probs'" in r.output
@@ -169,14 +169,14 @@ def test_cli_bad_inputs_exit_2(stack: dict[str, Path], tmp_path: Path) -> None:
     r = runner.invoke(app, base)
     assert r.exit_code == 2 and "nothing to compare" in r.output
     np.savez(tmp_path / "wrong.npz", x=np.zeros((2, 9, 4), np.float32))
-    r = runner.invoke(app, [*base, "--windows", str(tmp_path / "wrong.npz")])
+    r = runner.invoke(app, [*base, "--recording", str(tmp_path / "wrong.npz")])
     assert r.exit_code == 2 and "axis 2 has 4" in r.output
     x = np.zeros((5, 9, 3), np.float32)
     x[3, 1, 1] = np.nan
     np.savez(tmp_path / "nan.npz", x=x)
-    r = runner.invoke(app, [*base, "--windows", str(tmp_path / "nan.npz")])
+    r = runner.invoke(app, [*base, "--recording", str(tmp_path / "nan.npz")])
     assert r.exit_code == 2 and "window 3 holds NaN" in r.output
-    r = runner.invoke(app, [*base, "--windows", str(stack["rec"]), "--batch-size", "0"])
+    r = runner.invoke(app, [*base, "--recording", str(stack["rec"]), "--batch-size", "0"])
     assert r.exit_code == 2 and "--batch-size" in r.output
 
 
@@ -203,7 +203,7 @@ def test_nested_bidirectional_backwards_and_initial_state_pass(tmp_path: Path) -
     rng = np.random.default_rng(4)
     np.savez(tmp_path / "r.npz", x=rng.normal(size=(6, 7, 4)).astype(np.float32),
              s=rng.normal(size=(6, 2)).astype(np.float32))
-    rep = verify_model(tmp_path / "n.onnx", str(tmp_path / "n.keras"), windows=[tmp_path / "r.npz"])
+    rep = verify_model(tmp_path / "n.onnx", str(tmp_path / "n.keras"), recordings=[tmp_path / "r.npz"])
     assert rep.passed, rep.headline()
     names = {t["name"] for t in rep.tensors}
     assert {"enc/g/reverse/hidden_sequence", "bi/forward/cell_final", "bi/reverse/hidden_sequence",

@@ -92,7 +92,7 @@ def test_honest_export_passes(nets: Path, factory: str, arrays: dict[str, tuple[
     rec = {k: (rng.integers(0, 40, shape) if kind == "int" else rng.normal(size=shape).astype(np.float32))
            for k, (kind, shape) in arrays.items()}
     np.savez(nets / f"{factory}.npz", **rec)
-    rep = verify_model(onnx_path, src, str(weights), windows=[nets / f"{factory}.npz"], synthetic=True)
+    rep = verify_model(onnx_path, src, str(weights), recordings=[nets / f"{factory}.npz"], synthetic=True)
     assert rep.passed, rep.headline()
     kinds = {r["kind"] for r in rep.recordings}
     assert "synthetic:long" in kinds  # every model here has a dynamic time axis

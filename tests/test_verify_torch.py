@@ -69,7 +69,7 @@ def net(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
 
 def _verify(net: dict[str, Path], model: Path, *extra: str) -> Any:
     return runner.invoke(app, ["verify", str(model), "--source", str(net["source"]), "--weights",
-                               str(net["weights"]), "--windows", str(net["rec"]), "--quiet", *extra])
+                               str(net["weights"]), "--recording", str(net["rec"]), "--quiet", *extra])
 
 
 def test_honest_torch_export_passes_with_every_layer_and_direction(net: dict[str, Path]) -> None:

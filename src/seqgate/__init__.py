@@ -8,7 +8,7 @@ imports no framework::
 
     seqgate.export("forecaster.keras", "forecaster.onnx")             # -> ExportResult
     seqgate.verify("forecaster.onnx", source="forecaster.keras",
-                   windows=["field_week.npz"])                        # -> VerifyReport
+                   recordings=["field_week.npz"])                     # -> VerifyReport
     seqgate.profile("forecaster.onnx", seq_lens=[16, 64])             # -> ProfileReport
     seqgate.gate("gate.toml")                                         # -> GateReport
 """

@@ -1,4 +1,4 @@
-"""``seqgate gate GATE.toml [--out DIR]``: the release gate as one command."""
+"""``seqgate gate GATE.toml [--out-dir DIR]``: the release gate as one command."""
 
 from __future__ import annotations
 
@@ -14,15 +14,16 @@ from seqgate.cli.progress import stage_display
 @exits_on_error
 def gate(
     config: Annotated[Path, typer.Argument(help="The gate config (TOML); see fixtures/gate_example.toml.")],
-    out: Annotated[Path | None, typer.Option("--out", help="Directory for model.onnx and the reports "
-                                             "(default: CONFIG-report/ next to the config).")] = None,
+    out_dir: Annotated[Path | None, typer.Option("--out-dir", help="Directory for model.onnx and the reports "
+                                                 "(default: CONFIG-report/ next to the config).")] = None,
+    old_out: Annotated[Path | None, typer.Option("--out", hidden=True)] = None,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display.")] = False,
 ) -> None:
     """Export, verify and profile as the config declares; exit 0 only when every check passes."""
     from seqgate.gate.run import run_gate
 
     with stage_display(quiet) as progress:
-        report = run_gate(config, out, progress=progress)
+        report = run_gate(config, out_dir or old_out, progress=progress)
     try:
         _print_summary(report)
     except KeyboardInterrupt:
@@ -44,7 +45,7 @@ def _print_summary(report: object) -> None:
     for col in ("check", "verdict", "detail"):
         t.add_column(col, overflow="fold")
     for ch in r.checks:  # type: ignore[attr-defined]
-        t.add_row(Text(ch["name"]), Text("pass", "green") if ch["passed"] else Text("FAIL", "bold red"),
+        t.add_row(Text(ch["name"]), Text("pass", "green") if ch["passed"] else Text("fail", "bold red"),
                   Text(ch["detail"]))
     c.print(t)
     if r.error:  # type: ignore[attr-defined]

@@ -1,6 +1,6 @@
 """``seqgate profile``: the command. Parses, calls ``seqgate.profile.profile_model``, prints with rich.
 
-Exit 0 when every budget holds (or none is given), 1 when one is missed, 2 for bad usage or input.
+Exit 0 when every budget passes (or none is given), 1 when one fails, 2 for bad usage or input.
 Progress goes to stderr while measuring; the tables go to stdout at the end. Report files are
 replaced if they exist (a report is regenerated, not hand-edited); their directory must exist,
 which is checked before anything is timed.
@@ -16,27 +16,37 @@ import typer
 from seqgate.cli.errors import exits_on_error
 from seqgate.cli.progress import stage_display
 from seqgate.errors import EXIT_CHECK_FAILED
+from seqgate.settings import defaults as d
 from seqgate.util.files import check_output_path
+
+
+def _csv(values: tuple[int, ...]) -> str:
+    return ",".join(map(str, values))
 
 
 @exits_on_error
 def profile_command(
     model: Annotated[Path, typer.Argument(help="ONNX file written by seqgate export.")],
     seq_lens: Annotated[str, typer.Option("--seq-lens", help="Sequence lengths, comma-separated.")] = (
-        "1,8,32,128,512"),
-    batch: Annotated[str, typer.Option("--batch", help="Batch sizes, comma-separated.")] = "1",
-    threads: Annotated[str, typer.Option("--threads", help="Intra-op thread counts, comma-separated.")] = "1",
-    warmup: Annotated[int, typer.Option(help="Untimed runs per point.")] = 10,
-    min_runs: Annotated[int, typer.Option("--min-runs", help="At least this many timed runs per point.")] = 100,
-    min_time: Annotated[float, typer.Option("--min-time", help="And at least this many seconds.")] = 1.0,
+        _csv(d.SEQ_LENS)),
+    batch_sizes: Annotated[str, typer.Option("--batch-sizes", help="Batch sizes, comma-separated.")] = (
+        _csv(d.BATCH_SIZES)),
+    old_batch: Annotated[str | None, typer.Option("--batch", hidden=True)] = None,
+    threads: Annotated[str, typer.Option("--threads", help="Intra-op thread counts, comma-separated.")] = (
+        _csv(d.THREADS)),
+    warmup: Annotated[int, typer.Option("--warmup", help="Untimed runs per point.")] = d.WARMUP,
+    min_runs: Annotated[int, typer.Option("--min-runs", help="At least this many timed runs per point.")] = (
+        d.MIN_RUNS),
+    min_time: Annotated[float, typer.Option("--min-time", help="And at least this many seconds.")] = d.MIN_TIME,
     budget: Annotated[list[str] | None, typer.Option(
         "--budget", help="T=MS: at length T the percentile must be <= MS ms (repeatable; "
         "lengths not in --seq-lens are measured too).")] = None,
-    percentile: Annotated[int, typer.Option(help="Percentile judged by budgets: 50, 90 or 99.")] = 99,
+    percentile: Annotated[int, typer.Option(
+        "--percentile", help="Percentile judged by budgets: 50, 90 or 99.")] = d.PERCENTILE,
     source: Annotated[str | None, typer.Option(
         help="Time the source too: a Keras file, or FILE.py:FACTORY for PyTorch.")] = None,
     weights: Annotated[str | None, typer.Option(help="PyTorch state dict for a factory source.")] = None,
-    seed: Annotated[int, typer.Option(help="Seed of the generated inputs.")] = 0,
+    seed: Annotated[int, typer.Option("--seed", help="Seed of the generated inputs.")] = d.SEED,
     report: Annotated[Path | None, typer.Option("--report", help="Write the JSON report here.")] = None,
     csv: Annotated[Path | None, typer.Option("--csv", help="Write one CSV row per point here.")] = None,
     plot: Annotated[Path | None, typer.Option("--plot", help="Write a PNG plot of latency vs T here.")] = None,
@@ -46,15 +56,13 @@ def profile_command(
     from seqgate.profile.run import profile_model
     from seqgate.report.profile_report import write_csv, write_json, write_plot
 
+    opts = _parse_options(seq_lens, old_batch or batch_sizes, threads, warmup, min_runs, min_time,
+                          budget or [], percentile, seed)
     for path, option in ((report, "--report"), (csv, "--csv"), (plot, "--plot")):
         if path is not None:
             check_output_path(path, option)
     with stage_display(quiet) as progress:
-        result = profile_model(
-            model, seq_lens=seq_lens, batches=batch, threads=threads, warmup=warmup,
-            min_runs=min_runs, min_time=min_time, budgets=budget or [], percentile=percentile,
-            source=source, weights=weights, seed=seed, progress=progress,
-        )
+        result = profile_model(model, source=source, weights=weights, progress=progress, **opts)
     data = result.to_dict()
     if report is not None:
         write_json(data, report)
@@ -65,6 +73,23 @@ def profile_command(
     print_tables(data)
     if not data["passed"]:
         raise typer.Exit(EXIT_CHECK_FAILED)
+
+
+def _parse_options(seq_lens: str, batch_sizes: str, threads: str, warmup: int, min_runs: int, min_time: float,
+                   budgets: list[str], percentile: int, seed: int) -> dict[str, Any]:
+    """Every option through its parser in ``seqgate.settings``; all problems in one error (exit 2)."""
+    from seqgate.settings import CLI, Problems, parse_seed, parse_settings
+
+    problems = Problems()
+    opts = parse_settings("profile", {
+        "seq_lens": seq_lens, "batch_sizes": batch_sizes, "threads": threads, "warmup": warmup,
+        "min_runs": min_runs, "min_time": min_time, "budget": budgets, "percentile": percentile,
+    }, CLI, problems)
+    checked_seed = problems.take(parse_seed, seed, "--seed")
+    problems.raise_if_any()
+    return {"seq_lens": opts["seq_lens"], "batch_sizes": opts["batch_sizes"], "threads": opts["threads"],
+            "warmup": opts["warmup"], "min_runs": opts["min_runs"], "min_time": opts["min_time"],
+            "budgets": opts["budget"], "percentile": opts["percentile"], "seed": checked_seed}
 
 
 def _f(x: float | None, digits: int = 3) -> str:
@@ -111,7 +136,7 @@ def print_tables(data: dict[str, Any]) -> None:
         for b in data["budgets"]:
             bt.add_row(str(b["seq_len"]), str(b["threads"]), str(b["batch"]), f"{b['budget_ms']:g}",
                        _f(b["measured_ms"], 4), _f(b["margin_ms"], 4),
-                       Text("holds", "green") if b["passed"] else Text("missed", "bold red"))
+                       Text("pass", "green") if b["passed"] else Text("fail", "bold red"))
         c.print(bt)
     timer, env = data["timer"], data["environment"]
     c.print(Text(f"seed {data['seed']}; timer overhead {timer['overhead_median_ns']} ns per run (reported, "
@@ -119,8 +144,10 @@ def print_tables(data: dict[str, Any]) -> None:
     for note in data["notes"]:
         c.print(Text.assemble(("note:", "yellow"), " ", note))
     if data["budgets"]:
-        c.print(Text("every budget holds", "bold green") if data["passed"]
-                else Text("a budget was missed", "bold red"))
+        over = sum(not b["passed"] for b in data["budgets"])
+        c.print(Text(f"PASSED: every budget met at p{q}", "bold green") if data["passed"] else
+                Text(f"FAILED: {over} of {len(data['budgets'])} budget verdicts over budget at p{q}",
+                     "bold red"))
 
 
 def _longest(t: int | None) -> str:

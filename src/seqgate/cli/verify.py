@@ -13,10 +13,11 @@ import typer
 
 from seqgate.cli.errors import exits_on_error
 from seqgate.cli.progress import stage_display
+from seqgate.settings import defaults as d
 from seqgate.util.files import check_output_path
 
 TOLERANCE_HELP = (
-    "TOML file: top-level atol/rtol, plus \\[\\[tensor]] tables with match = \"fnmatch pattern\" and "
+    "TOML file: top-level atol/rtol, plus \\[\\[tolerance]] tables with match = \"fnmatch pattern\" and "
     "atol and/or rtol; the last matching table wins."
 )
 
@@ -28,36 +29,54 @@ def _split(text: str | None) -> list[str] | None:
 @exits_on_error
 def verify(
     model: Annotated[Path, typer.Argument(help="ONNX file written by seqgate export.")],
-    source: Annotated[str, typer.Option("--source", help="The trained model: .keras/.h5, or FILE.py:FACTORY.")],
+    source: Annotated[str, typer.Option(
+        "--source", help="The trained model: .keras/.h5, or FILE.py:FACTORY.")],
     weights: Annotated[str | None, typer.Option("--weights", help="PyTorch state dict.")] = None,
-    windows: Annotated[list[Path] | None, typer.Option(
-        "--windows", help="Recorded windows (.npz/.npy); repeatable.")] = None,
-    synthetic: Annotated[bool, typer.Option("--synthetic", help="Add seeded stress windows.")] = False,
-    atol: Annotated[float | None, typer.Option("--atol", help="Absolute tolerance (default 1e-4).")] = None,
-    rtol: Annotated[float | None, typer.Option("--rtol", help="Relative tolerance (default 1e-4).")] = None,
+    recordings: Annotated[list[Path] | None, typer.Option(
+        "--recording", help="Recorded windows (.npz/.npy); repeatable.")] = None,
+    old_windows: Annotated[list[Path] | None, typer.Option("--windows", hidden=True)] = None,
+    synthetic: Annotated[bool, typer.Option(
+        "--synthetic/--no-synthetic", help="Add seeded stress windows.")] = d.SYNTHETIC,
+    atol: Annotated[float | None, typer.Option("--atol", help=f"Absolute tolerance (default {d.ATOL:g}).")] = (
+        None),
+    rtol: Annotated[float | None, typer.Option("--rtol", help=f"Relative tolerance (default {d.RTOL:g}).")] = (
+        None),
     tolerances: Annotated[Path | None, typer.Option("--tolerances", help=TOLERANCE_HELP)] = None,
-    batch_size: Annotated[int, typer.Option("--batch-size", help="Windows per batch.")] = 64,
-    no_states: Annotated[bool, typer.Option("--no-states", help="Compare the outputs only.")] = False,
+    batch_size: Annotated[int, typer.Option("--batch-size", help="Windows per runtime call.")] = d.BATCH_SIZE,
+    states: Annotated[bool, typer.Option("--states/--no-states", help="Compare every hidden state "
+                                         "(--no-states: the outputs only).")] = d.STATES,
     report: Annotated[Path | None, typer.Option("--report", help="Write the JSON report here.")] = None,
     junit: Annotated[Path | None, typer.Option("--junit", help="Write JUnit XML here.")] = None,
     summary: Annotated[Path | None, typer.Option("--summary", help="Write a Markdown summary here.")] = None,
-    oracle: Annotated[bool, typer.Option("--oracle", help="Re-check worst windows, onnx.reference.")] = False,
-    task: Annotated[str | None, typer.Option(
-        "--task", help="classify: every output holds class scores; regress: none does "
-        "(default: detect softmax/sigmoid outputs).")] = None,
-    seed: Annotated[int, typer.Option("--seed", help="Seed of the synthetic windows.")] = 0,
-    quiet: Annotated[bool, typer.Option("--quiet", help="No progress bar and no table.")] = False,
+    oracle: Annotated[bool, typer.Option("--oracle", help="Re-check worst windows, onnx.reference.")] = (
+        d.ORACLE),
+    task: Annotated[str, typer.Option(
+        "--task", help="auto: detect softmax/sigmoid outputs; classify: every output holds class scores; "
+        "regress: none does.")] = d.TASK,
+    seed: Annotated[int, typer.Option("--seed", help="Seed of the synthetic windows.")] = d.SEED,
+    quiet: Annotated[bool, typer.Option("--quiet", help="No progress display and no table.")] = False,
 ) -> None:
     """Replay windows through the source framework and ONNX Runtime; compare outputs and every hidden state."""
+    from seqgate.settings import CLI, Problems, parse_settings
     from seqgate.verify.run import verify_model
+    from seqgate.verify.tolerances import read_tolerances
 
+    problems = Problems()
+    raw = {"synthetic": synthetic, "seed": seed, "batch_size": batch_size, "states": states, "task": task,
+           "oracle": oracle}
+    opts = parse_settings("verify", raw, CLI, problems)
+    read_tolerances(tolerances, atol, rtol, problems)  # --atol/--rtol with the file they override
+    problems.raise_if_any()
     for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
         if p is not None:
             check_output_path(p, option)
     with stage_display(quiet) as progress:
-        rep = verify_model(model, source, weights, [str(w) for w in windows or []], synthetic, atol, rtol,
-                           str(tolerances) if tolerances else None, batch_size, not no_states, oracle,
-                           progress=progress, task=task, seed=seed)
+        rep = verify_model(
+            model, source, weights, recordings=[*(recordings or []), *(old_windows or [])],
+            synthetic=opts["synthetic"], atol=atol, rtol=rtol,
+            tolerances=str(tolerances) if tolerances else None,
+            batch_size=opts["batch_size"], states=opts["states"], oracle=opts["oracle"], progress=progress,
+            task=opts["task"], seed=opts["seed"])
     _write_reports(rep, report, junit, summary)
     if not quiet:
         _print_table(rep)
@@ -86,7 +105,7 @@ def _print_table(rep: Any) -> None:
     from rich.text import Text
 
     st = rep.settings
-    n_over = len(st["overrides"])
+    n_over = len(st["tolerance"])
     caption = (f"pass: |onnx − source| ≤ atol + rtol·|source|, atol {st['atol']:g}, rtol {st['rtol']:g}"
                + (f", {n_over} per-tensor overrides" if n_over else ""))
     table = Table(title="verify", caption=caption)
@@ -98,8 +117,8 @@ def _print_table(rep: Any) -> None:
     first = (rep.first_divergence or {}).get("tensor")
     for t in rep.tensors:
         m = t["metrics"]
-        fail = Text("FIRST", "bold red") if t["name"] == first else Text("fail", "red")
-        mark = Text("ok", "green") if t["passed"] else fail
+        fail = Text("fail (first)", "bold red") if t["name"] == first else Text("fail", "red")
+        mark = Text("pass", "green") if t["passed"] else fail
         # tensor names are user text (layer names may hold brackets): Text, never markup
         table.add_row(Text(t["name"]), t["kind"], f"{m['max_abs']:.2e}", f"{m['p99_abs']:.2e}",
                       str(m["outside"]), mark)

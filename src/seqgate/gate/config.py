@@ -1,6 +1,7 @@
-"""The release-gate config file (TOML, read with ``tomllib``) and its validation.
+"""The release-gate config file (TOML) and its validation.
 
-Layout (every key; ``fixtures/gate_example.toml`` is the commented reference)::
+Layout (every key; ``fixtures/gate_example.toml`` is the commented reference and shows every
+default)::
 
     [model]
     source = "forecaster.keras"        # Keras file, or "FILE.py:FACTORY" for PyTorch
@@ -11,112 +12,85 @@ Layout (every key; ``fixtures/gate_example.toml`` is the commented reference)::
     [export]
     opset = 17
 
-    [verify]
-    recordings = ["windows.npz"]       # .npz / .npy files, paths relative to this file
-    synthetic = true                   # add seeded stress windows
+    [verify]                           # keys, defaults and parsers: seqgate.settings.table
+    recordings = ["windows.npz"]       # paths relative to this file
+    synthetic = false
     seed = 0
     batch_size = 64
-    states = true                      # compare every hidden state, not only outputs
-    task = "auto"                      # "auto" | "classify" | "regress"
-    atol = 1e-4                        # defaults: seqgate.compare.DEFAULT_ATOL / DEFAULT_RTOL
+    states = true
+    task = "auto"
+    atol = 1e-4
     rtol = 1e-4
-    oracle = false                     # third opinion from onnx.reference on the worst windows
+    oracle = false
 
     [[verify.tolerance]]               # per-tensor override; later matches win per field
-    match = "head*"                    # fnmatch pattern on the tensor name
-    atol = 1e-4
-    rtol = 1e-3
+    match = "head*"
+    atol = 2e-4
 
     [profile]
     seq_lens = [16, 64, 256]
-    batch = [1]
+    batch_sizes = [1]
     threads = [1]
-    percentile = 99                    # 50 | 90 | 99
+    percentile = 99
     warmup = 10
-    min_runs = 30
-    min_time = 0.5                     # seconds per point
-    compare_source = true              # also time the source framework
+    min_runs = 100
+    min_time = 1.0
+    compare_source = true
 
     [[profile.budget]]
     seq_len = 64
     ms = 5.0
 
 Validation happens before any heavy work and reports every problem in one message (exit 2):
-unknown keys (with a did-you-mean), wrong types, out-of-range values, missing files.
-Budgets for lengths the exported model cannot take are checked right after export, before
-verification and profiling start.
+unknown keys (with a did-you-mean), wrong types, out-of-range or non-finite values, tolerance
+entries without ``match``, budgets without ``ms``, negative seeds, missing files, and a sweep
+whose inputs alone would not fit in memory (estimated with one feature per step; the profiler
+checks again with the model's real feature count). Budgets for lengths the exported model
+cannot take are checked right after export, before verification and profiling start.
 """
 
 from __future__ import annotations
 
-import difflib
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from seqgate.errors import BadInputError
+from seqgate.settings import CONFIG, SETTINGS, Budget, Problems, Tolerances, check_input_memory, parse_settings
+from seqgate.settings.values import parse_int, problems_message, read_toml, unknown_key
 
-_SCHEMA: dict[str, dict[str, tuple[type | tuple[type, ...], Any]]] = {
-    "model": {"source": (str, None), "weights": (str, None), "inputs": (list, None), "onnx": (str, None)},
-    "export": {"opset": (int, 17)},
-    "verify": {
-        "recordings": (list, []), "synthetic": (bool, True), "seed": (int, 0),
-        "batch_size": (int, 64), "states": (bool, True), "task": (str, "auto"),
-        "atol": ((int, float), None), "rtol": ((int, float), None), "oracle": (bool, False),
-        "tolerance": (list, []),
-    },
-    "profile": {
-        "seq_lens": (list, [16, 64, 256]), "batch": (list, [1]), "threads": (list, [1]),
-        "percentile": (int, 99), "warmup": (int, 10), "min_runs": (int, 30),
-        "min_time": ((int, float), 0.5), "compare_source": (bool, True), "budget": (list, []),
-    },
-}
-_TOLERANCE_KEYS = {"match": str, "atol": (int, float), "rtol": (int, float)}
-_BUDGET_KEYS = {"seq_len": int, "ms": (int, float)}
+MODEL_KEYS = ("source", "weights", "inputs", "onnx")
+EXPORT_KEYS = ("opset",)
+SECTIONS = ("model", "export", "verify", "profile")
+RENAMED = {("profile", "batch"): "batch_sizes"}  # old spellings, named in the error
 
 
 @dataclass(frozen=True)
-class ToleranceRule:
-    match: str
-    atol: float | None
-    rtol: float | None
-
-
-@dataclass(frozen=True)
-class Budget:
-    seq_len: int
-    ms: float
-
-
-@dataclass
 class GateConfig:
     """A validated gate config; paths are resolved against the config file's directory."""
 
     path: Path
     source: str
     weights: Path | None
-    inputs: list[str]
+    inputs: tuple[str, ...]
     opset: int
-    recordings: list[Path]
+    recordings: tuple[Path, ...]
     synthetic: bool
     seed: int
     batch_size: int
     states: bool
     task: str
-    atol: float | None
-    rtol: float | None
     oracle: bool
-    tolerances: list[ToleranceRule]
-    seq_lens: list[int]
-    batch: list[int]
-    threads: list[int]
+    tolerances: Tolerances
+    seq_lens: tuple[int, ...]
+    batch_sizes: tuple[int, ...]
+    threads: tuple[int, ...]
     percentile: int
     warmup: int
     min_runs: int
     min_time: float
     compare_source: bool
-    budgets: list[Budget] = field(default_factory=list)
+    budgets: tuple[Budget, ...] = field(default_factory=tuple)
     profile_enabled: bool = True
     onnx: Path | None = None
 
@@ -125,80 +99,30 @@ class GateConfig:
         return self.path.parent
 
 
-def _type_name(t: type | tuple[type, ...]) -> str:
-    if isinstance(t, tuple):
-        return " or ".join(x.__name__ for x in t)
-    return {"str": "a string", "int": "an integer", "bool": "true/false", "list": "a list"}.get(
-        t.__name__, t.__name__
-    )
+def section_keys(name: str) -> tuple[str, ...]:
+    """Every key the config accepts in ``[name]``."""
+    if name == "model":
+        return MODEL_KEYS
+    if name == "export":
+        return EXPORT_KEYS
+    return tuple(s.key for s in SETTINGS if s.section == name)
 
 
-def _is(value: Any, t: type | tuple[type, ...]) -> bool:
-    if isinstance(value, bool) and t in (int, (int, float)):
-        return False  # TOML true is not a number
-    return isinstance(value, t)
-
-
-def _unknown(key: str, known: list[str], where: str) -> str:
-    close = difflib.get_close_matches(key, known, n=1)
-    hint = f" (did you mean {close[0]!r}?)" if close else ""
-    return f"unknown key {where}{key!r}{hint}; known keys: {', '.join(sorted(known))}"
-
-
-class _Checker:
-    def __init__(self, path: Path) -> None:
-        self.path = path
-        self.problems: list[str] = []
-
-    def table(self, data: dict[str, Any], name: str) -> dict[str, Any]:
-        spec = _SCHEMA[name]
-        raw = data.get(name, {})
-        if not isinstance(raw, dict):
-            self.problems.append(f"[{name}] must be a table")
-            return {k: d for k, (_, d) in spec.items()}
-        out: dict[str, Any] = {}
-        for key, value in raw.items():
-            if key not in spec:
-                self.problems.append(_unknown(key, list(spec), f"in [{name}]: "))
-                continue
-            t, _ = spec[key]
-            if not _is(value, t):
-                self.problems.append(f"[{name}] {key} must be {_type_name(t)}, got {value!r}")
-                continue
+def _table(data: dict[str, Any], name: str, problems: Problems) -> dict[str, Any]:
+    raw = data.get(name, {})
+    if not isinstance(raw, dict):
+        problems.add(f"[{name}] must be a table")
+        return {}
+    known = section_keys(name)
+    out: dict[str, Any] = {}
+    for key, value in raw.items():
+        if (name, key) in RENAMED:
+            problems.add(f"[{name}] {key} is now called {RENAMED[(name, key)]}; rename it")
+        elif key not in known:
+            problems.add(unknown_key(key, known, f"in [{name}]: "))
+        else:
             out[key] = value
-        for key, (_, default) in spec.items():
-            out.setdefault(key, default)
-        return out
-
-    def file(self, text: str, what: str) -> Path:
-        p = Path(text)
-        p = p if p.is_absolute() else (self.path.parent / p)
-        if not p.is_file():
-            self.problems.append(f"{what} {text!r} does not exist (looked at {p})")
-        return p
-
-    def ints(self, values: list[Any], what: str, lo: int = 1) -> list[int]:
-        good = [v for v in values if _is(v, int) and v >= lo]
-        if len(good) != len(values) or not values:
-            self.problems.append(f"{what} must be a non-empty list of integers ≥ {lo}, got {values!r}")
-        return good
-
-    def rows(self, values: list[Any], keys: dict[str, Any], what: str) -> list[dict[str, Any]]:
-        out = []
-        for i, row in enumerate(values):
-            if not isinstance(row, dict):
-                self.problems.append(f"{what} entry {i + 1} must be a table")
-                continue
-            ok = True
-            for k, v in row.items():
-                if k not in keys:
-                    self.problems.append(_unknown(k, list(keys), f"in {what} entry {i + 1}: "))
-                    ok = False
-                elif not _is(v, keys[k]):
-                    self.problems.append(f"{what} entry {i + 1}: {k} must be {_type_name(keys[k])}, got {v!r}")
-                    ok = False
-            out.append(row if ok else {})
-        return out
+    return out
 
 
 def load_gate_config(path: str | Path) -> GateConfig:
@@ -206,87 +130,88 @@ def load_gate_config(path: str | Path) -> GateConfig:
     p = Path(path)
     if not p.is_file():
         raise BadInputError(f"gate config {p} does not exist (or is not a file).")
-    try:
-        data = tomllib.loads(p.read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as e:
-        raise BadInputError(f"gate config {p} is not valid TOML: {e}. Fix the syntax and run again.") from e
-    c = _Checker(p)
+    data = read_toml(p, "gate config")
+    problems = Problems()
     for key in data:
-        if key not in _SCHEMA:
-            c.problems.append(_unknown(key, list(_SCHEMA), "section "))
-    model, export, verify, profile = (c.table(data, s) for s in ("model", "export", "verify", "profile"))
-    cfg = _assemble(c, p, data, model, export, verify, profile)
-    if c.problems:
-        n = len(c.problems)
-        lines = "\n".join(f"  - {x}" for x in c.problems)
-        raise BadInputError(f"gate config {p} has {n} problem{'s' if n != 1 else ''}; fix them and run "
-                            f"again:\n{lines}")
+        if key not in SECTIONS:
+            problems.add(unknown_key(key, SECTIONS, "section "))
+    model, export, verify, profile = (_table(data, s, problems) for s in SECTIONS)
+    cfg = _assemble(problems, p, "profile" in data, model, export, verify, profile)
+    if problems.items:
+        raise BadInputError(problems_message(f"gate config {p}", problems.items))
     return cfg
 
 
-def _assemble(c: _Checker, p: Path, data: dict[str, Any], model: dict[str, Any], export: dict[str, Any],
-              verify: dict[str, Any], profile: dict[str, Any]) -> GateConfig:
-    from seqgate.export.run import MAX_OPSET, MIN_OPSET
+def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any], export: dict[str, Any],
+              verify_raw: dict[str, Any], profile_raw: dict[str, Any]) -> GateConfig:
+    from seqgate.export.run import DEFAULT_OPSET, MAX_OPSET, MIN_OPSET
 
-    source = model.get("source")
-    if not source:
-        c.problems.append("[model] source is required (a Keras file or FILE.py:FACTORY)")
-        source = ""
-    else:
-        source = _resolve_source(c, source)
-    weights = c.file(model["weights"], "[model] weights") if model.get("weights") else None
-    inputs = model.get("inputs") or []
-    if not all(isinstance(s, str) for s in inputs):
-        c.problems.append("[model] inputs must be a list of strings NAME:DIM,DIM,...")
-    if not MIN_OPSET <= export["opset"] <= MAX_OPSET:
-        c.problems.append(f"[export] opset must be in {MIN_OPSET}..{MAX_OPSET}, got {export['opset']}")
-    recordings = [c.file(r, "[verify] recording") for r in verify["recordings"] if isinstance(r, str)]
-    if len(recordings) != len(verify["recordings"]):
-        c.problems.append("[verify] recordings must be a list of file paths")
-    if not recordings and not verify["synthetic"]:
-        c.problems.append("[verify] needs recordings, or synthetic = true, or both")
-    if verify["task"] not in ("auto", "classify", "regress"):
-        c.problems.append(f"[verify] task must be 'auto', 'classify' or 'regress', got {verify['task']!r}")
-    if verify["batch_size"] < 1:
-        c.problems.append(f"[verify] batch_size must be ≥ 1, got {verify['batch_size']}")
-    for k in ("atol", "rtol"):
-        if verify[k] is not None and verify[k] < 0:
-            c.problems.append(f"[verify] {k} must be ≥ 0, got {verify[k]}")
-    tols = [ToleranceRule(r["match"], r.get("atol"), r.get("rtol"))
-            for r in c.rows(verify["tolerance"], _TOLERANCE_KEYS, "[[verify.tolerance]]") if r]
-    for i, t in enumerate(tols):
-        if not t.match:
-            c.problems.append(f"[[verify.tolerance]] entry {i + 1} needs a match pattern")
-    budgets = [Budget(int(r["seq_len"]), float(r["ms"]))
-               for r in c.rows(profile["budget"], _BUDGET_KEYS, "[[profile.budget]]")
-               if r and "seq_len" in r and "ms" in r]
-    for b in budgets:
-        if b.seq_len < 1 or b.ms <= 0:
-            c.problems.append(f"[[profile.budget]] seq_len must be ≥ 1 and ms > 0, got {b}")
-    if profile["percentile"] not in (50, 90, 99):
-        c.problems.append(f"[profile] percentile must be 50, 90 or 99, got {profile['percentile']}")
-    if profile["min_time"] < 0 or profile["min_runs"] < 1 or profile["warmup"] < 0:
-        c.problems.append("[profile] warmup must be ≥ 0, min_runs ≥ 1 and min_time ≥ 0")
+    files = _Files(p, c)
+    source = _model_source(files, model.get("source"))
+    weights = files.path(model["weights"], "[model] weights") if "weights" in model else None
+    inputs = model.get("inputs", [])
+    if not isinstance(inputs, list) or not all(isinstance(s, str) for s in inputs):
+        c.add("[model] inputs must be a list of strings NAME:DIM,DIM,...")
+        inputs = []
+    opset = c.take(parse_int, export.get("opset", DEFAULT_OPSET), "[export] opset", MIN_OPSET, MAX_OPSET)
+    v = parse_settings("verify", verify_raw, CONFIG, c)
+    pr = parse_settings("profile", profile_raw, CONFIG, c)
+    recordings = v["recordings"]
+    if not isinstance(recordings, list | tuple) or not all(isinstance(r, str) for r in recordings):
+        c.add(f"[verify] recordings must be a list of file paths, got {recordings!r}")
+        recordings = []
+    rec_paths = tuple(files.path(r, "[verify] recording") for r in recordings)
+    if not rec_paths and not v["synthetic"]:
+        c.add("[verify] needs recordings, or synthetic = true, or both")
+    if profile_enabled:
+        _check_sweep_memory(c, pr)
     return GateConfig(
-        path=p, source=source, weights=weights, inputs=list(inputs), opset=export["opset"],
-        recordings=recordings, synthetic=verify["synthetic"], seed=verify["seed"],
-        batch_size=verify["batch_size"], states=verify["states"], task=verify["task"],
-        atol=verify["atol"], rtol=verify["rtol"], oracle=verify["oracle"], tolerances=tols,
-        seq_lens=c.ints(profile["seq_lens"], "[profile] seq_lens"),
-        batch=c.ints(profile["batch"], "[profile] batch"),
-        threads=c.ints(profile["threads"], "[profile] threads"),
-        percentile=profile["percentile"], warmup=profile["warmup"], min_runs=profile["min_runs"],
-        min_time=float(profile["min_time"]), compare_source=profile["compare_source"], budgets=budgets,
-        profile_enabled="profile" in data,
-        onnx=c.file(model["onnx"], "[model] onnx") if model.get("onnx") else None,
+        path=p, source=source, weights=weights, inputs=tuple(inputs), opset=opset or DEFAULT_OPSET,
+        recordings=rec_paths, synthetic=v["synthetic"], seed=v["seed"], batch_size=v["batch_size"],
+        states=v["states"], task=v["task"], oracle=v["oracle"],
+        tolerances=Tolerances(v["atol"], v["rtol"], tuple(v["tolerance"])),
+        seq_lens=tuple(pr["seq_lens"]), batch_sizes=tuple(pr["batch_sizes"]), threads=tuple(pr["threads"]),
+        percentile=pr["percentile"], warmup=pr["warmup"], min_runs=pr["min_runs"], min_time=pr["min_time"],
+        compare_source=pr["compare_source"], budgets=tuple(pr["budget"]), profile_enabled=profile_enabled,
+        onnx=files.path(model["onnx"], "[model] onnx") if "onnx" in model else None,
     )
 
 
-def _resolve_source(c: _Checker, source: str) -> str:
+def _check_sweep_memory(c: Problems, pr: dict[str, Any]) -> None:
+    """The longest length (budgets included) at the largest batch, one feature per step: a lower bound."""
+    longest = max([*pr["seq_lens"], *(b.seq_len for b in pr["budget"])])
+    c.take(lambda _v, w: check_input_memory(max(pr["batch_sizes"]), longest, 1, w), None,
+           "[profile] seq_lens")
+
+
+class _Files:
+    """Paths in the config, resolved against its directory; a missing file is a problem."""
+
+    def __init__(self, config: Path, problems: Problems) -> None:
+        self.base, self.problems = config.parent, problems
+
+    def path(self, text: Any, what: str) -> Path:
+        if not isinstance(text, str) or not text:
+            self.problems.add(f"{what} must be a file path (a string), got {text!r}")
+            return self.base
+        p = Path(text)
+        p = p if p.is_absolute() else (self.base / p)
+        if not p.is_file():
+            self.problems.add(f"{what} {text!r} does not exist (looked at {p})")
+        return p
+
+
+def _model_source(files: _Files, source: Any) -> str:
     """Resolve the file part of a source against the config's directory; check it exists."""
+    if not source:
+        files.problems.add("[model] source is required (a Keras file or FILE.py:FACTORY)")
+        return ""
+    if not isinstance(source, str):
+        files.problems.add(f"[model] source must be a string, got {source!r}")
+        return ""
     if ":" in source and not source.lower().endswith((".keras", ".h5", ".hdf5")):
         mod, _, factory = source.rpartition(":")
         if mod.endswith(".py"):
-            return f"{c.file(mod, '[model] source file')}:{factory}"
+            return f"{files.path(mod, '[model] source file')}:{factory}"
         return source
-    return str(c.file(source, "[model] source"))
+    return str(files.path(source, "[model] source"))

@@ -44,7 +44,7 @@ def check_replaceable(out_dir: Path) -> None:
     if not out_dir.exists():
         return
     if not out_dir.is_dir():
-        raise BadInputError(f"gate output {out_dir} is a file, not a folder; choose a folder with --out.")
+        raise BadInputError(f"gate output {out_dir} is a file, not a folder; choose a folder with --out-dir.")
     entries = sorted(p.name for p in out_dir.iterdir())
     foreign = [n for n in entries if n not in GATE_FILES]
     if not foreign and "report.json" in entries and not _is_gate_report(out_dir / "report.json"):
@@ -56,7 +56,7 @@ def check_replaceable(out_dir: Path) -> None:
         raise BadInputError(
             f"gate output folder {out_dir} holds files that seqgate did not write ({shown}); the gate "
             f"replaces its output folder as a whole, so it uses only an empty folder or one written by "
-            f"an earlier gate. Choose another folder with --out, or move those files away."
+            f"an earlier gate. Choose another folder with --out-dir, or move those files away."
         )
 
 
@@ -85,7 +85,7 @@ def folder_lock(out_dir: Path, config: Path) -> Iterator[None]:
                 raise BadInputError(
                     f"another seqgate gate is writing to {out_dir} ({holder}); two gates on one output "
                     f"folder would mix their files. Wait for it to finish, or give this one another "
-                    f"folder with --out."
+                    f"folder with --out-dir."
                 ) from None
             raise
         # The file may have been unlinked by the previous holder between our open and our lock.
@@ -108,7 +108,7 @@ def _open_lock(path: Path) -> int:
         return os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
     except OSError as e:
         raise BadInputError(f"cannot create the lock file {path} beside the gate output folder "
-                            f"({e.strerror}); choose a writable place with --out.") from e
+                            f"({e.strerror}); choose a writable place with --out-dir.") from e
 
 
 def _same_file(fd: int, path: Path) -> bool:
@@ -142,7 +142,7 @@ def make_build_dir(out_dir: Path) -> Path:
         return Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.build-", dir=out_dir.parent))
     except OSError as e:
         raise BadInputError(f"cannot create a folder beside {out_dir} ({e.strerror}); "
-                            f"choose a writable place with --out.") from e
+                            f"choose a writable place with --out-dir.") from e
 
 
 def commit(build_dir: Path, out_dir: Path) -> None:

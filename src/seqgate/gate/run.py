@@ -15,7 +15,7 @@ Contract:
 - Budgets at lengths the exported model cannot take (a fixed time dim) are refused (exit 2)
   before verification and profiling start.
 - Checks: ``export``, ``verify`` (every output and hidden state within tolerance on every
-  window set) and, when the config has a ``[profile]`` table, ``latency`` (every budget holds).
+  recording) and, when the config has a ``[profile]`` table, ``latency`` (every budget holds).
   The gate passes only when every check that ran passed (exit 0); otherwise exit 1.
 - Outputs, each written atomically: ``model.onnx``, ``report.json`` (``seqgate.gate/1``, embedding
   the verify and profile reports), ``report.md``, ``junit.xml``, ``report.html`` (self-contained).
@@ -87,14 +87,14 @@ class GateReport:
         cfg = self.config
         return {
             "schema": SCHEMA,
-            "tool_version": __version__,
+            "seqgate_version": __version__,
             "created": _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
             "passed": self.passed,
             "exit_code": self.exit_code,
             "model_name": self.model_name,
             "config_path": str(cfg.path),
             "config": {"source": cfg.source, "opset": cfg.opset, "percentile": cfg.percentile,
-                       "budgets": [{"seq_len": b.seq_len, "ms": b.ms} for b in cfg.budgets]},
+                       "budgets": [b.to_json() for b in cfg.budgets]},
             "checks": self.checks,
             "error": self.error,
             "verify": self.verify,
@@ -133,7 +133,7 @@ def run_gate(config: str | Path, out: str | Path | None = None, progress: Progre
     cfg = load_gate_config(config)
     out_dir = Path(out) if out is not None else cfg.base / f"{cfg.path.stem}-report"
     if out_dir.exists() and not out_dir.is_dir():
-        raise BadInputError(f"gate output {out_dir} is a file, not a folder; choose a folder with --out.")
+        raise BadInputError(f"gate output {out_dir} is a file, not a folder; choose a folder with --out-dir.")
     check_output_dir(out_dir.parent, "folder of the gate output")  # the run builds beside out_dir
     with outdir.folder_lock(out_dir, cfg.path), _InterruptWatch() as watch:
         outdir.check_replaceable(out_dir)
@@ -156,7 +156,7 @@ def run_gate(config: str | Path, out: str | Path | None = None, progress: Progre
             if isinstance(e, OSError | OutputPathError):
                 reason = str(e) if isinstance(e, OutputPathError) else f"{e.strerror or e} at {e.filename}"
                 raise BadInputError(f"the gate could not write its outputs ({reason}); nothing was written "
-                                    f"to {out_dir}. Free space or choose another folder with --out.") from e
+                                    f"to {out_dir}. Free space or choose another folder with --out-dir.") from e
             raise
     return report
 
@@ -228,7 +228,7 @@ def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
     from seqgate.export.run import export_source
 
     cfg = report.config
-    options = {"inputs": cfg.inputs} if cfg.inputs else {}
+    options = {"inputs": list(cfg.inputs)} if cfg.inputs else {}
     res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, **options)
     from seqgate.onnxfile.probes import read_metadata
 
@@ -266,21 +266,17 @@ def _check_lengths(cfg: GateConfig, model: Any) -> None:
     if cfg.profile_enabled:
         from seqgate.profile.run import lengths_to_measure
 
-        lengths_to_measure(model, cfg.seq_lens, [f"{b.seq_len}={b.ms}" for b in cfg.budgets])
+        lengths_to_measure(model, cfg.seq_lens, cfg.budgets, cfg.batch_sizes)
 
 
 def _verify(report: GateReport, model_path: Path, weights: str | None, progress: Progress) -> None:
-    from seqgate.verify.compare import Tolerances, load_tolerances
     from seqgate.verify.run import verify_model
 
     cfg = report.config
-    base = load_tolerances(None, cfg.atol, cfg.rtol)
-    tol = Tolerances(base.atol, base.rtol, tuple((t.match, t.atol, t.rtol) for t in cfg.tolerances))
     vr = verify_model(
-        model_path, cfg.source, weights=weights, windows=[str(p) for p in cfg.recordings],
-        synthetic=cfg.synthetic, tolerances=tol, batch_size=cfg.batch_size, states=cfg.states,
-        oracle=cfg.oracle, progress=progress, task=None if cfg.task == "auto" else cfg.task,
-        seed=cfg.seed,
+        model_path, cfg.source, weights=weights, recordings=[str(p) for p in cfg.recordings],
+        synthetic=cfg.synthetic, tolerances=cfg.tolerances, batch_size=cfg.batch_size, states=cfg.states,
+        oracle=cfg.oracle, progress=progress, task=cfg.task, seed=cfg.seed,
     )
     report.verify = vr.to_json()
     for r in report.verify["recordings"]:  # hashed once, by verify
@@ -311,9 +307,8 @@ def _measure(cfg: GateConfig, model_path: Path, weights: str | None, progress: P
     from seqgate.profile.run import profile_model
 
     return profile_model(
-        model_path, seq_lens=cfg.seq_lens, batches=cfg.batch, threads=cfg.threads, warmup=cfg.warmup,
-        min_runs=cfg.min_runs, min_time=cfg.min_time,
-        budgets=[f"{b.seq_len}={b.ms}" for b in cfg.budgets], percentile=cfg.percentile,
+        model_path, seq_lens=cfg.seq_lens, batch_sizes=cfg.batch_sizes, threads=cfg.threads, warmup=cfg.warmup,
+        min_runs=cfg.min_runs, min_time=cfg.min_time, budgets=cfg.budgets, percentile=cfg.percentile,
         source=cfg.source if cfg.compare_source else None,
         weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=progress,
     )

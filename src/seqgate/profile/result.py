@@ -21,8 +21,8 @@ import json
 from dataclasses import dataclass, field
 from typing import Any
 
-from seqgate.profile.budgets import Budget
 from seqgate.profile.stats import LineFit, Stats, fit_line, longest_within
+from seqgate.settings import Budget
 
 SCHEMA = "seqgate.profile/1"
 ONNXRUNTIME = "onnxruntime"
@@ -137,7 +137,7 @@ class ProfileReport:
 
         return {
             "schema": SCHEMA,
-            "tool": {"name": "seqgate", "version": __version__},
+            "seqgate_version": __version__,
             "passed": self.passed,
             "seed": self.seed,
             "model": self.model,

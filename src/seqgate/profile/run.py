@@ -16,12 +16,15 @@ Measurement hygiene (the contract of :func:`profile_model`):
   not subtracted: the figures are raw wall times of the calls;
 - a model that fixes its time dim is measured at that length only (noted); a budget at another
   length is then an error (exit 2);
-- budget lengths missing from ``seq_lens`` are added to the sweep (``seqgate.profile.budgets``).
+- budget lengths missing from ``seq_lens`` are added to the sweep;
+- settings are parsed by ``seqgate.settings`` (defaults there too); a sweep whose inputs alone
+  would not fit in memory is refused before anything is timed.
 """
 
 from __future__ import annotations
 
 import gc
+import math
 import os
 import time
 from collections.abc import Callable, Sequence
@@ -31,17 +34,14 @@ from typing import Any
 import numpy as np
 
 from seqgate.errors import BadInputError
-from seqgate.profile.budgets import Budget, check_percentile, parse_budgets, parse_int_list
 from seqgate.profile.inputs import InputPlan, make_inputs, model_axes, plan_inputs
 from seqgate.profile.result import ONNXRUNTIME, Point, ProfileReport, attach_speedups, budget_checks, fits_for
 from seqgate.profile.stats import summarize_ns
+from seqgate.settings import PYTHON, Budget, Problems, check_input_memory, parse_seed, parse_settings
+from seqgate.settings import defaults as d
 from seqgate.util.progress import SILENT, Progress
 from seqgate.util.text import first_line
 
-DEFAULT_SEQ_LENS = (1, 8, 32, 128, 512)
-DEFAULT_WARMUP = 10
-DEFAULT_MIN_RUNS = 100  # common practice: ≥ 100 samples before quoting a p99
-DEFAULT_MIN_TIME = 1.0
 # Loose on purpose: this only catches a --source that is not the exported model; `seqgate verify`
 # is the real comparison.
 _SANITY_ATOL = _SANITY_RTOL = 1e-3
@@ -109,9 +109,21 @@ def _sweep_lengths(axes: Any, seq_lens: list[int], budgets: list[Budget], notes:
     return sorted(set(seq_lens) | set(extra))
 
 
-def lengths_to_measure(model: Any, seq_lens: Sequence[int], budgets: Sequence[str | Budget]) -> list[int]:
-    """The lengths a profile of ``model`` would measure; ``BadInputError`` for budgets it cannot take."""
-    return _sweep_lengths(model_axes(model, plan_inputs(model)), list(seq_lens), parse_budgets(budgets), [])
+def lengths_to_measure(model: Any, seq_lens: Sequence[int], budgets: Sequence[Budget],
+                       batch_sizes: Sequence[int] = d.BATCH_SIZES) -> list[int]:
+    """The lengths a profile of ``model`` would measure; ``BadInputError`` for budgets it cannot take
+    or a sweep whose inputs would not fit in memory."""
+    plans = plan_inputs(model)
+    lengths = _sweep_lengths(model_axes(model, plans), list(seq_lens), list(budgets), [])
+    _check_memory(plans, lengths, list(batch_sizes))
+    return lengths
+
+
+def _check_memory(plans: list[InputPlan], lengths: list[int], batch_sizes: list[int]) -> None:
+    """Inputs of the largest point against the available memory (``seqgate.settings.memory``)."""
+    features = sum(math.prod(int(x) for x in p.dims if x not in ("batch", "time")) for p in plans
+                   if "time" in p.dims)
+    check_input_memory(max(batch_sizes), max(lengths), max(features, 1), "the sweep's largest point")
 
 
 def _sweep_batches(axes: Any, batches: list[int], notes: list[str]) -> list[int]:
@@ -120,15 +132,6 @@ def _sweep_batches(axes: Any, batches: list[int], notes: list[str]) -> list[int]
                      f"{axes.fixed_batch} only.")
         return [axes.fixed_batch]
     return batches
-
-
-def _check_counts(warmup: int, min_runs: int, min_time: float) -> None:
-    if warmup < 0:
-        raise BadInputError(f"--warmup must be 0 or more, got {warmup}.")
-    if min_runs < 1:
-        raise BadInputError(f"--min-runs must be at least 1, got {min_runs}.")
-    if not min_time >= 0 or min_time == float("inf"):
-        raise BadInputError(f"--min-time must be a finite number of seconds ≥ 0, got {min_time}.")
 
 
 def _outputs_agree(ort_out: list[Any], src_out: list[Any]) -> tuple[bool, str]:
@@ -149,39 +152,42 @@ def _outputs_agree(ort_out: list[Any], src_out: list[Any]) -> tuple[bool, str]:
 def profile_model(
     model_path: str | os.PathLike[str],
     *,
-    seq_lens: str | Sequence[int] = DEFAULT_SEQ_LENS,
-    batches: str | Sequence[int] = (1,),
-    threads: str | Sequence[int] = (1,),
-    warmup: int = DEFAULT_WARMUP,
-    min_runs: int = DEFAULT_MIN_RUNS,
-    min_time: float = DEFAULT_MIN_TIME,
+    seq_lens: str | Sequence[int] = d.SEQ_LENS,
+    batch_sizes: str | Sequence[int] = d.BATCH_SIZES,
+    threads: str | Sequence[int] = d.THREADS,
+    warmup: int = d.WARMUP,
+    min_runs: int = d.MIN_RUNS,
+    min_time: float = d.MIN_TIME,
     budgets: Sequence[str | Budget] = (),
-    percentile: int = 99,
+    percentile: int = d.PERCENTILE,
     source: str | None = None,
     weights: str | None = None,
-    seed: int = 0,
+    seed: int = d.SEED,
     progress: Progress | None = None,
 ) -> ProfileReport:
     """Measure ``model_path`` over the sweep and judge the budgets (see the module docstring).
 
-    Raises ``BadInputError`` (exit 2) for bad arguments or files before anything is timed.
+    Raises ``BadInputError`` (exit 2) for bad arguments or files before anything is timed; the
+    arguments go through the parsers of ``seqgate.settings`` (already typed values pass unchanged).
     """
     from seqgate.onnxfile.costs import summary
     from seqgate.onnxfile.load import load_onnx
     from seqgate.util.environment import environment
     from seqgate.util.files import sha256_file
 
+    opts = _options(locals())
+    warmup, min_runs, min_time = opts["warmup"], opts["min_runs"], opts["min_time"]
+    q, seed = opts["percentile"], opts["seed"]
+    budget_list = list(opts["budget"])
     path = Path(model_path)
     model = load_onnx(path)
-    q = check_percentile(percentile)
-    _check_counts(warmup, min_runs, min_time)
-    budget_list = parse_budgets(budgets)
     notes: list[str] = []
     plans = plan_inputs(model)
     axes = model_axes(model, plans)
-    lengths = _sweep_lengths(axes, parse_int_list(seq_lens, "--seq-lens"), budget_list, notes)
-    batch_list = _sweep_batches(axes, parse_int_list(batches, "--batch"), notes)
-    thread_list = parse_int_list(threads, "--threads")
+    lengths = _sweep_lengths(axes, list(opts["seq_lens"]), budget_list, notes)
+    batch_list = _sweep_batches(axes, list(opts["batch_sizes"]), notes)
+    thread_list = list(opts["threads"])
+    _check_memory(plans, lengths, batch_list)
     src = _parse_source(source, weights)
     cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
     if max(thread_list) > cores:
@@ -206,12 +212,23 @@ def profile_model(
                           for p in plans],
                "fixed_time": axes.fixed_time, "fixed_batch": axes.fixed_batch},
         source=_source_record(src, sweep.agreement),
-        options={"seq_lens": lengths, "batches": batch_list, "threads": thread_list, "warmup": warmup,
-                 "min_runs": min_runs, "min_time_s": min_time, "percentile": q,
-                 "budgets": [{"seq_len": b.seq_len, "ms": b.ms} for b in budget_list]},
+        options={"seq_lens": lengths, "batch_sizes": batch_list, "threads": thread_list, "warmup": warmup,
+                 "min_runs": min_runs, "min_time": min_time, "percentile": q,
+                 "budgets": [b.to_json() for b in budget_list]},
         seed=seed, points=points, fits=fits, budgets=budget_checks(points, budget_list, q, fits),
         environment=env, timer=timer_overhead(), notes=notes,
     )
+
+
+def _options(args: dict[str, Any]) -> dict[str, Any]:
+    """``profile_model``'s arguments through ``seqgate.settings``; every problem in one error (exit 2)."""
+    problems = Problems()
+    keys = ("seq_lens", "batch_sizes", "threads", "warmup", "min_runs", "min_time", "percentile")
+    raw = {**{k: args[k] for k in keys}, "budget": args["budgets"]}
+    opts = parse_settings("profile", raw, PYTHON, problems)
+    opts["seed"] = problems.take(parse_seed, args["seed"], "argument seed")
+    problems.raise_if_any()
+    return opts
 
 
 def _parse_source(source: str | None, weights: str | None) -> Any:

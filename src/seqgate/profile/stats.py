@@ -19,8 +19,6 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-PERCENTILES = (50, 90, 99)
-
 
 def percentile(sorted_values: Sequence[float], q: float) -> float:
     """Percentile ``q`` (0..100) of already sorted values (see the module docstring)."""

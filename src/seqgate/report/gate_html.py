@@ -42,7 +42,7 @@ def _fmt(x: Any) -> str:
 def _mark(ok: bool | None) -> str:
     if ok is None:
         return '<span class="note">not run</span>'
-    return '<span class="ok">pass</span>' if ok else '<span class="bad">FAIL</span>'
+    return '<span class="ok">pass</span>' if ok else '<span class="bad">fail</span>'
 
 
 def _png(fig: Any) -> str:
@@ -199,7 +199,7 @@ def _verify_section(verify: dict[str, Any] | None) -> str:
                 _mark(t.get("passed")),
             ]
         )
-    parts.append("<h3>Every tensor, all window sets</h3>")
+    parts.append("<h3>Every tensor, all recordings</h3>")
     parts.append(
         _table(
             [
@@ -302,7 +302,7 @@ def render_gate_html(report: dict[str, Any]) -> str:
     body = [
         f"<h1>{_e(title)}</h1>",
         f"<p>{verdict} <span class='note'>config {_e(report.get('config_path', ''))} · "
-        f"seqgate {_e(report.get('tool_version', ''))} · {_e(report.get('created', ''))}</span></p>",
+        f"seqgate {_e(report.get('seqgate_version', ''))} · {_e(report.get('created', ''))}</span></p>",
         _checks(report),
         _stopped(report.get("error")),
         _divergence(report.get("verify")),

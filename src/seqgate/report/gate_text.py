@@ -29,7 +29,7 @@ def gate_markdown(d: dict[str, Any]) -> str:
         f"**{verdict}** (exit {d['exit_code']})",
         "",
         f"- config: `{d['config_path']}`",
-        f"- seqgate {d['tool_version']}, {d['created']}",
+        f"- seqgate {d['seqgate_version']}, {d['created']}",
         "",
         "## Checks",
         "",
@@ -37,7 +37,7 @@ def gate_markdown(d: dict[str, Any]) -> str:
         "|---|---|---|",
     ]
     for c in d["checks"]:
-        lines.append(f"| {c['name']} | {'pass' if c['passed'] else '**FAIL**'} | {_cell(c['detail'])} |")
+        lines.append(f"| {c['name']} | {'pass' if c['passed'] else '**fail**'} | {_cell(c['detail'])} |")
     if d.get("error"):
         lines += ["", "## Error", "", "```", d["error"]["message"], "```"]
     v = d.get("verify")
@@ -63,7 +63,7 @@ def gate_markdown(d: dict[str, Any]) -> str:
             m = t["metrics"]
             lines.append(
                 f"| `{t['name']}` | {t['kind']} | {_g(m['max_abs'])} | {_g(m['p99_abs'])} | "
-                f"{m['outside']} | {'pass' if t['passed'] else '**FAIL**'} |"
+                f"{m['outside']} | {'pass' if t['passed'] else '**fail**'} |"
             )
     p = d.get("profile")
     if p:
@@ -77,7 +77,7 @@ def gate_markdown(d: dict[str, Any]) -> str:
         for b in p.get("budgets") or []:
             lines.append(
                 f"| {b['seq_len']} | {b['batch']} | {b['threads']} | {_g(b['budget_ms'])} | "
-                f"{_g(b['measured_ms'])} | {'pass' if b['passed'] else '**FAIL**'} |"
+                f"{_g(b['measured_ms'])} | {'pass' if b['passed'] else '**fail**'} |"
             )
         lines += [
             "",

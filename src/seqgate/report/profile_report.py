@@ -79,7 +79,7 @@ def plot_png(report: dict[str, Any]) -> bytes:
     ax.set_yscale("log")
     ax.set_xlabel("sequence length T (steps)")
     ax.set_ylabel("latency (ms)")
-    verdict = "" if not report["budgets"] else (" — budgets hold" if report["passed"] else " — budget missed")
+    verdict = "" if not report["budgets"] else (" — budgets: pass" if report["passed"] else " — budgets: fail")
     ax.set_title(f"latency vs sequence length (p{q}; dashed p50){verdict}", fontsize=10)
     ax.grid(True, which="both", alpha=0.3)
     ax.legend(fontsize=7, loc="upper left")

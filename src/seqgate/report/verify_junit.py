@@ -1,4 +1,4 @@
-"""JUnit XML for CI: one test suite per window set, one test case per tensor.
+"""JUnit XML for CI: one test suite per recording, one test case per tensor.
 
 A failing case carries a ``<failure>`` whose message is the metric summary (max |Δ|, elements
 outside tolerance, worst window/step, tolerance).

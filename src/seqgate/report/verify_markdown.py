@@ -30,7 +30,7 @@ def verify_markdown(report: Any) -> str:
         m = t["metrics"]
         drift = f"{_g(m.get('drift_first'))} → {_g(m.get('drift_last'))}" if "drift_first" in m else "—"
         top1 = f"{m['top1_agreement']:.4f}" if "top1_agreement" in m else "—"
-        status = "pass" if t["passed"] else "**FAIL**"
+        status = "pass" if t["passed"] else "**fail**"
         lines.append(f"| `{t['name']}` | {t['kind']} | {_g(m['max_abs'])} | {_g(m['p99_abs'])} | "
                      f"{_g(m['max_rel'])} | {m['outside']} | {drift} | {top1} | {status} |")
     if doc.get("oracle"):

@@ -1,5 +1,5 @@
 """``seqgate verify``: recordings (``recordings``, ``csv_windows``), synthetic stress sets
-(``synthetic``), the comparison (``compare``), the run over window sets (``run``) and the
+(``synthetic``), the comparison (``compare``), the run over recordings (``run``) and the
 ``onnx.reference`` third opinion (``oracle``). Calling the package (``seqgate.verify(...)``) runs
 ``run.verify_model``."""
 

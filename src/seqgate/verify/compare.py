@@ -4,6 +4,9 @@ Rule (DESIGN.md), elementwise, the source framework being the reference::
 
     |onnx − source| ≤ atol + rtol · |source|
 
+The default atol/rtol and the per-tensor overrides are a setting (``seqgate.settings.tolerance``);
+the tolerance file is read by ``seqgate.verify.tolerances``.
+
 This is ``numpy.isclose(onnx, source, atol, rtol)`` (whose rule is ``|a − b| ≤ atol + rtol·|b|``)
 with ``b = source``. NaN on either side is always outside tolerance; so is ±Inf unless both
 sides hold the same infinity.
@@ -40,19 +43,6 @@ from typing import Any
 
 import numpy as np
 
-# float32 defaults, set here once: |onnx − source| ≤ 1e-4 + 1e-4·|source|.
-# Honest float32 noise (measured on this stack): Keras/PyTorch vs onnxruntime max |Δ| ≈ 2e-7
-# for an LSTM (I=32, H=128) with realistic weights at T = 10..1000 and ≈ 2e-6 with large random
-# weights (FACTS.md); 3.9e-6 for a depth-3 Keras stack at T = 1000; 1.35e-5 for the demo's
-# 2-layer bidirectional GRU on 4×-longer synthetic windows; up to 1.6e-4 for a GRU with
-# saturating weights at H = 128, T = 1000, where PyTorch itself is 5.7e-5 away from a float64
-# reference (float32 sensitivity of the model, not an export error). The earlier 1e-5 failed
-# honest exports of that kind. Planted export bugs (swapped gate blocks, wrong GRU reset
-# placement, swapped bias halves, a flipped direction, one perturbed recurrent weight) give
-# 1e-3..1e0 (FACTS.md: wrong linear_before_reset ≈ 0.3–0.5), at least 10× above this bound and
-# mostly 3–4 orders above. The same bound is the project's acceptance rule for an export.
-DEFAULT_ATOL = 1e-4
-DEFAULT_RTOL = 1e-4
 REL_FLOOR = 1e-3
 HIST_SHIFT = 17  # float32: 23 mantissa bits − 6 kept
 HIST_BINS = 1 << (31 - HIST_SHIFT)  # every non-negative float32 bit pattern, Inf included
@@ -121,7 +111,7 @@ class TensorStats:
     _scratch: dict[str, np.ndarray[Any, Any]] = field(default_factory=dict, repr=False)
 
     def release(self) -> None:
-        """Free the work arrays (call when a window set is done)."""
+        """Free the work arrays (call when a recording is done)."""
         self._scratch.clear()
 
     def _buf(self, key: str, shape: tuple[int, ...]) -> np.ndarray[Any, Any]:
@@ -354,96 +344,3 @@ def _num(x: float | None) -> float | None:
     if x is None or math.isnan(x):
         return None
     return float(x)
-
-
-# ----- tolerance configuration ------------------------------------------------------------------
-@dataclass(frozen=True)
-class Tolerances:
-    """Default atol/rtol plus per-tensor overrides ``(pattern, atol | None, rtol | None)``.
-
-    A tensor's tolerance is the default, then every override whose ``fnmatch`` pattern matches
-    the tensor name applied in file order (so the last matching entry wins per field).
-    """
-
-    atol: float = DEFAULT_ATOL
-    rtol: float = DEFAULT_RTOL
-    overrides: tuple[tuple[str, float | None, float | None], ...] = ()
-
-    def for_tensor(self, name: str) -> tuple[float, float]:
-        from fnmatch import fnmatchcase
-
-        atol, rtol = self.atol, self.rtol
-        for pattern, a, r in self.overrides:
-            if fnmatchcase(name, pattern):
-                atol = a if a is not None else atol
-                rtol = r if r is not None else rtol
-        return atol, rtol
-
-    def unmatched(self, names: list[str]) -> list[str]:
-        """Override patterns that match no tensor (reported as warnings: likely a typo)."""
-        from fnmatch import fnmatchcase
-
-        return [p for p, _, _ in self.overrides if not any(fnmatchcase(n, p) for n in names)]
-
-
-def _tol_value(where: str, key: str, value: Any) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value) or value < 0:
-        from seqgate.errors import BadInputError
-
-        raise BadInputError(f"{where}: {key} must be a finite number ≥ 0, got {value!r}.")
-    return float(value)
-
-
-def load_tolerances(path: str | None, atol: float | None = None, rtol: float | None = None) -> Tolerances:
-    """Read a tolerance file (layout below) and apply ``--atol``/``--rtol`` on top of its defaults.
-
-    Layout (TOML; every key optional)::
-
-        atol = 1e-5              # defaults for every tensor
-        rtol = 1e-5
-
-        [[tensor]]               # any number of overrides, applied in order
-        match = "encoder/*"      # fnmatch pattern on tensor names (outputs and probes)
-        atol = 1e-4              # atol and/or rtol
-
-    Precedence: built-in defaults < the file's top-level values < ``--atol``/``--rtol`` <
-    the ``[[tensor]]`` entries that match a tensor.
-    """
-    from seqgate.errors import BadInputError
-
-    base_a, base_r = DEFAULT_ATOL, DEFAULT_RTOL
-    overrides: list[tuple[str, float | None, float | None]] = []
-    if path is not None:
-        import tomllib
-
-        try:
-            with open(path, "rb") as f:
-                data = tomllib.load(f)
-        except OSError as e:
-            raise BadInputError(f"tolerance file {path} cannot be read ({e.strerror}).") from e
-        except tomllib.TOMLDecodeError as e:
-            raise BadInputError(f"tolerance file {path} is not valid TOML: {e}. See `seqgate verify "
-                                f"--help` for the layout.") from e
-        unknown = sorted(set(data) - {"atol", "rtol", "tensor"})
-        if unknown:
-            raise BadInputError(f"tolerance file {path}: unknown key(s) {unknown}; expected atol, rtol "
-                                f"and [[tensor]] tables with match/atol/rtol.")
-        base_a = _tol_value(path, "atol", data["atol"]) if "atol" in data else base_a
-        base_r = _tol_value(path, "rtol", data["rtol"]) if "rtol" in data else base_r
-        entries = data.get("tensor", [])
-        if not isinstance(entries, list):
-            raise BadInputError(f"tolerance file {path}: write overrides as [[tensor]] tables.")
-        for i, e in enumerate(entries):
-            where = f"{path} [[tensor]] #{i + 1}"
-            bad = sorted(set(e) - {"match", "atol", "rtol"})
-            if bad or not isinstance(e.get("match"), str) or not ({"atol", "rtol"} & set(e)):
-                raise BadInputError(f"{where}: expected a string `match` and atol and/or rtol, got keys "
-                                    f"{sorted(e)}.")
-            a = _tol_value(where, "atol", e["atol"]) if "atol" in e else None
-            r = _tol_value(where, "rtol", e["rtol"]) if "rtol" in e else None
-            overrides.append((e["match"], a, r))
-    if atol is not None:
-        base_a = _tol_value("--atol", "atol", atol)
-    if rtol is not None:
-        base_r = _tol_value("--rtol", "rtol", rtol)
-    return Tolerances(base_a, base_r, tuple(overrides))

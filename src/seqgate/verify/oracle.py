@@ -21,8 +21,9 @@ from typing import Any
 import numpy as np
 
 from seqgate.onnxfile.probes import Probe, to_canonical, with_probe_outputs
+from seqgate.settings import Tolerances
 from seqgate.util.text import first_line
-from seqgate.verify.compare import Tolerances, within_tolerance
+from seqgate.verify.compare import within_tolerance
 
 _DEFAULT_ACTS = {"LSTM": ["Sigmoid", "Tanh", "Tanh"], "GRU": ["Sigmoid", "Tanh"]}
 _RNN_ACTS = ("Tanh", "Affine")

@@ -37,10 +37,12 @@ import numpy as np
 
 from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
 from seqgate.onnxfile.probes import Probe, read_metadata, read_probe_map
+from seqgate.settings import PYTHON, Problems, Tolerances, parse_settings
+from seqgate.settings import defaults as d
 from seqgate.sources.spec import Source, parse_source
 from seqgate.util.files import sha256_file
 from seqgate.util.progress import SILENT, Progress
-from seqgate.verify.compare import TensorStats, Tolerances, load_tolerances, merge_stats
+from seqgate.verify.compare import TensorStats, merge_stats
 from seqgate.verify.recordings import (
     InputSpec,
     Recording,
@@ -49,9 +51,9 @@ from seqgate.verify.recordings import (
     load_recording,
     to_model_layout,
 )
+from seqgate.verify.tolerances import read_tolerances
 
 SCHEMA = "seqgate.verify/1"
-DEFAULT_BATCH = 64
 WORST_KEPT = 3  # windows per set kept for the oracle
 CLASS_OPS = ("Softmax", "LogSoftmax", "Sigmoid")
 
@@ -77,7 +79,6 @@ class VerifyReport:
     seed: int
     settings: dict[str, Any]
     environment: dict[str, Any]
-    versions: dict[str, str]
     oracle: dict[str, Any] | None = None
     warnings: list[str] = field(default_factory=list)
 
@@ -88,7 +89,7 @@ class VerifyReport:
     def headline(self) -> str:
         if self.passed:
             worst = max((t["metrics"]["max_abs"] or 0.0 for t in self.tensors), default=0.0)
-            return (f"PASSED: {len(self.tensors)} tensors on {len(self.recordings)} window sets within "
+            return (f"PASSED: {len(self.tensors)} tensors on {len(self.recordings)} recordings within "
                     f"tolerance (largest |Δ| {worst:.3g}).")
         fd = self.first_divergence or {}
         step = f" from step {fd['step']}" if fd.get("step") is not None else ""
@@ -103,7 +104,8 @@ class VerifyReport:
             "first_divergence": self.first_divergence, "tensors": self.tensors,
             "recordings": self.recordings, "model": self.model, "source": self.source,
             "seed": self.seed, "settings": self.settings, "oracle": self.oracle,
-            "warnings": self.warnings, "environment": self.environment, "versions": self.versions,
+            "warnings": self.warnings, "environment": self.environment,
+            "seqgate_version": self.environment.get("seqgate"),
         }
 
 
@@ -293,35 +295,36 @@ def verify_model(
     model_path: str | Path,
     source: str | Source,
     weights: str | None = None,
-    windows: Sequence[str | Path] = (),
-    synthetic: bool = False,
+    recordings: Sequence[str | Path] = (),
+    synthetic: bool = d.SYNTHETIC,
     atol: float | None = None,
     rtol: float | None = None,
     tolerances: str | Tolerances | None = None,
-    batch_size: int = DEFAULT_BATCH,
-    states: bool = True,
-    oracle: bool = False,
+    batch_size: int = d.BATCH_SIZE,
+    states: bool = d.STATES,
+    oracle: bool = d.ORACLE,
     progress: Progress | None = None,
-    task: str | None = None,
-    seed: int = 0,
+    task: str | None = d.TASK,
+    seed: int = d.SEED,
 ) -> VerifyReport:
-    """Compare the ONNX file with its source on every window; see the module docstring."""
+    """Compare the ONNX file with its source on every window; see the module docstring.
+
+    Settings go through the parsers of ``seqgate.settings``; ``tolerances`` is a tolerance file
+    (``atol``/``rtol`` on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored).
+    """
     from seqgate.onnxfile.load import load_onnx
     from seqgate.util.environment import environment
     from seqgate.verify.synthetic import synthetic_sets
 
-    if batch_size < 1:
-        raise BadInputError(f"--batch-size must be ≥ 1, got {batch_size}.")
-    if task not in (None, "classify", "regress"):
-        raise BadInputError(f"--task {task!r}: choose 'classify' (every output holds class scores) or "
-                            f"'regress' (none does); without --task, softmax/sigmoid outputs are detected.")
+    opts, tol = _settings(locals())
+    synthetic, batch_size, states, oracle, task, seed = (
+        opts[k] for k in ("synthetic", "batch_size", "states", "oracle", "task", "seed"))
+    windows = list(recordings)
     if not windows and not synthetic:
-        raise BadInputError("nothing to compare: give recorded windows with --windows REC.npz and/or "
+        raise BadInputError("nothing to compare: give recorded windows with --recording REC.npz and/or "
                             "--synthetic.")
     if isinstance(tolerances, Tolerances):  # built by a caller (the gate config), not read from a file
-        tol, tolerances = tolerances, None
-    else:
-        tol = load_tolerances(tolerances, atol, rtol)
+        tolerances = None
     path = Path(model_path)
     model = load_onnx(path)
     src = source if isinstance(source, Source) else parse_source(source, weights)
@@ -367,10 +370,22 @@ def verify_model(
         source={"text": src.text, "framework": src.framework,
                 "files": [{"path": str(f), "sha256": sha256_file(f)} for f in src.files()]},
         seed=seed, settings={"atol": tol.atol, "rtol": tol.rtol, "batch_size": batch_size, "states": states,
-                             "synthetic": synthetic, "task": task, "tolerances_file": tolerances,
-                             "overrides": [list(o) for o in tol.overrides]},
-        environment=env, versions={"seqgate": env["seqgate"], **env["libraries"]}, oracle=oracle_out,
-        warnings=warnings)
+                             "synthetic": synthetic, "task": task, "oracle": oracle,
+                             "tolerances_file": tolerances,
+                             "tolerance": [o.to_json() for o in tol.overrides]},
+        environment=env, oracle=oracle_out, warnings=warnings)
+
+
+def _settings(args: dict[str, Any]) -> tuple[dict[str, Any], Tolerances]:
+    """``verify_model``'s arguments through ``seqgate.settings``; every problem in one error (exit 2)."""
+    problems = Problems()
+    raw = {k: args[k] for k in ("synthetic", "seed", "batch_size", "states", "task", "oracle")}
+    opts = parse_settings("verify", {**raw, "task": raw["task"] or d.TASK}, PYTHON, problems)
+    tol = args["tolerances"]
+    if not isinstance(tol, Tolerances):
+        tol = read_tolerances(tol, args["atol"], args["rtol"], problems, "argument atol", "argument rtol")
+    problems.raise_if_any()
+    return opts, tol
 
 
 def _run_all(comparer: Comparer, recs: list[Recording], onnx_runner: Any, src_runner: Any, batch: int,
