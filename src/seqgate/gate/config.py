@@ -7,6 +7,8 @@ Layout (every key; ``fixtures/gate_example.toml`` is the commented reference)::
     weights = "model.pt"               # PyTorch state dict (PyTorch sources only)
     inputs = ["x:batch,time,3"]        # PyTorch input spec, NAME:DIM,... (optional)
     onnx = "shipped.onnx"              # gate this ONNX file instead of exporting one (optional)
+    untrained = false                  # PyTorch without weights on purpose (shown in every report)
+    expect_other_source = "reason"     # the ONNX file is known not to come from these files: why
 
     [export]
     opset = 17
@@ -58,7 +60,8 @@ from typing import Any
 from seqgate.errors import BadInputError
 
 _SCHEMA: dict[str, dict[str, tuple[type | tuple[type, ...], Any]]] = {
-    "model": {"source": (str, None), "weights": (str, None), "inputs": (list, None), "onnx": (str, None)},
+    "model": {"source": (str, None), "weights": (str, None), "inputs": (list, None), "onnx": (str, None),
+              "untrained": (bool, False), "expect_other_source": (str, None)},
     "export": {"opset": (int, 17)},
     "verify": {
         "recordings": (list, []), "synthetic": (bool, True), "seed": (int, 0),
@@ -119,6 +122,8 @@ class GateConfig:
     budgets: list[Budget] = field(default_factory=list)
     profile_enabled: bool = True
     onnx: Path | None = None
+    untrained: bool = False
+    expect_other_source: str | None = None  # the reason the ONNX file may come from other files
 
     @property
     def base(self) -> Path:
@@ -279,7 +284,21 @@ def _assemble(c: _Checker, p: Path, data: dict[str, Any], model: dict[str, Any],
         min_time=float(profile["min_time"]), compare_source=profile["compare_source"], budgets=budgets,
         profile_enabled="profile" in data,
         onnx=c.file(model["onnx"], "[model] onnx") if model.get("onnx") else None,
+        untrained=model["untrained"], expect_other_source=_other_source(c, model),
     )
+
+
+def _other_source(c: _Checker, model: dict[str, Any]) -> str | None:
+    """``[model] expect_other_source``: a non-empty reason; ``untrained`` excludes ``weights``."""
+    if model["untrained"] and model.get("weights"):
+        c.problems.append("[model] untrained = true and weights contradict each other; drop one")
+    reason = model.get("expect_other_source")
+    if reason is not None and not reason.strip():
+        c.problems.append("[model] expect_other_source needs the reason as its value, e.g. "
+                          "expect_other_source = \"shipped file predates the rename of the source; "
+                          "weights unchanged\"")
+        return None
+    return reason.strip() if reason else None
 
 
 def _resolve_source(c: _Checker, source: str) -> str:
