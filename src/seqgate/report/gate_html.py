@@ -225,6 +225,19 @@ def _verify_section(verify: dict[str, Any] | None) -> str:
     return "".join(parts)
 
 
+def _longest_cell(b: dict[str, Any]) -> str:
+    """Longest length within the budget: measured, and the line's prediction labelled when extrapolated."""
+    measured = b.get("longest_measured_seq_len")
+    out = f"measured: {_e('none' if measured is None else measured)}"
+    pred = b.get("predicted_longest_seq_len")
+    if b.get("predicted_extrapolated") is None:
+        return out
+    label = "extrapolated, not measured" if b.get("predicted_extrapolated") else "within measured lengths"
+    pred_text = "any" if pred is None else pred
+    poor = ", poor fit" if b.get("fit_quality") == "poor" else ""
+    return f"{out}<br><span class='note'>line predicts {_e(pred_text)} ({label}{poor})</span>"
+
+
 def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
     if not profile:
         return ""
@@ -239,7 +252,7 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
             _e(b["threads"]),
             _fmt(b["budget_ms"]),
             _fmt(b.get("measured_ms")),
-            _e(b.get("predicted_longest_seq_len")),
+            _longest_cell(b),
             _mark(b.get("passed")),
         ]
         for b in profile.get("budgets") or []
@@ -251,10 +264,13 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
             "threads",
             "budget ms",
             f"p{percentile} ms",
-            "longest T predicted",
+            "longest T within budget",
             "verdict",
         ]
-        parts.append(_table(heads, brows, {0, 1, 2, 3, 4, 5}))
+        parts.append(_table(heads, brows, {0, 1, 2, 3, 4}))
+        parts.append("<p class='note'>Every verdict is from the measured percentile at the budget's length. "
+                     "A length predicted by the latency line outside the measured lengths is an "
+                     "extrapolation and never decides a verdict.</p>")
     for n in profile.get("notes") or []:
         parts.append(f"<p class='note'>{_e(n)}</p>")
     rows = [

@@ -20,6 +20,18 @@ def _g(x: Any) -> str:
     return "—" if x is None else (f"{x:.3g}" if isinstance(x, float) else str(x))
 
 
+def _longest(b: dict[str, Any]) -> str:
+    """Measured longest length within the budget, then the line's prediction, labelled."""
+    measured = b.get("longest_measured_seq_len")
+    out = f"measured {'none' if measured is None else measured}"
+    if b.get("predicted_extrapolated") is None:
+        return out
+    pred = b.get("predicted_longest_seq_len")
+    label = "extrapolated, not measured" if b["predicted_extrapolated"] else "within measured lengths"
+    poor = ", poor fit" if b.get("fit_quality") == "poor" else ""
+    return f"{out}; line predicts {'any' if pred is None else pred} ({label}{poor})"
+
+
 def provenance_entry(d: dict[str, Any]) -> dict[str, Any] | None:
     """The gate's ``provenance`` check (``seqgate.verify.provenance.provenance_check``), if it ran."""
     return next((c for c in d.get("checks", []) if c.get("name") == "provenance" and "files" in c), None)
@@ -80,14 +92,17 @@ def gate_markdown(d: dict[str, Any]) -> str:
             "",
             "## Latency budgets",
             "",
-            "| seq len | batch | threads | budget ms | measured ms | verdict |",
-            "|---:|---:|---:|---:|---:|---|",
+            "| seq len | batch | threads | budget ms | measured ms | longest T within budget | verdict |",
+            "|---:|---:|---:|---:|---:|---|---|",
         ]
         for b in p.get("budgets") or []:
             lines.append(
                 f"| {b['seq_len']} | {b['batch']} | {b['threads']} | {_g(b['budget_ms'])} | "
-                f"{_g(b['measured_ms'])} | {'pass' if b['passed'] else '**FAIL**'} |"
+                f"{_g(b['measured_ms'])} | {_longest(b)} | {'pass' if b['passed'] else '**FAIL**'} |"
             )
+        lines += ["", "Verdicts come from the percentile measured at each budget's length; a length the "
+                      "latency line predicts outside the measured lengths is marked extrapolated and decides "
+                      "nothing."]
         lines += [
             "",
             "## Latency points",

@@ -192,7 +192,50 @@ def _load_weights(module: Any, path: Path, torch: Any) -> None:
         raise BadInputError(f"loading weights {path} failed: {_short(e)}.") from None
 
 
+_SAVE_HINT = "save the trained weights with torch.save(model.state_dict(), 'FILE.pt') and pass that file"
+
+
+def _what_file(path: Path) -> str | None:
+    """What ``path`` really is when it cannot be a ``torch.save`` file; ``None`` when it may be one.
+
+    ``torch.save`` writes a zip archive holding ``<name>/data.pkl`` (or, before PyTorch 1.6, a raw
+    pickle, which starts with the pickle protocol byte 0x80).
+    """
+    import zipfile
+
+    size = path.stat().st_size
+    with open(path, "rb") as f:
+        head = f.read(512)
+    if size == 0:
+        return "an empty file (0 bytes)"
+    if head.startswith(b"PK"):
+        if not zipfile.is_zipfile(path):
+            return f"an incomplete zip archive ({size} bytes, its directory is missing): probably truncated"
+        with zipfile.ZipFile(path) as z:
+            names = z.namelist()
+        if not any(n == "data.pkl" or n.endswith("/data.pkl") for n in names):
+            shown = ", ".join(names[:5]) + (", …" if len(names) > 5 else "")
+            return f"a zip archive of another kind (it holds {shown}; a .keras model or an .npz?)"
+        return None
+    if head.startswith(b"\x89HDF"):
+        return "an HDF5 file (a Keras .h5 model?)"
+    if head[:1] == b"\x80":
+        return None
+    try:
+        text = head.decode("utf-8")
+    except UnicodeDecodeError:
+        return f"a binary file of an unknown kind ({size} bytes, starting {head[:8].hex(' ')})"
+    if all(c.isprintable() or c in "\r\n\t" for c in text):
+        first = (text.strip().splitlines() or [""])[0][:40]
+        return f"a text file ({size} bytes, starting {first!r})"
+    return f"a file of an unknown kind ({size} bytes)"
+
+
 def _read_state_dict(path: Path, torch: Any) -> dict[str, Any]:
+    what = _what_file(path)
+    if what is not None:
+        raise BadInputError(f"weights file {path} is {what}: not a readable PyTorch weights file. Pass the "
+                            f"state dict of the trained model: {_SAVE_HINT}.")
     try:
         obj = torch.load(str(path), weights_only=True, map_location="cpu")
     except Exception as e:
