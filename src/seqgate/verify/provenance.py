@@ -89,8 +89,9 @@ def compare_provenance(model: Any, src: Source) -> dict[str, Any]:
 
 def _detail(status: str, entries: list[dict[str, Any]]) -> str:
     if status == "match":
-        return "the source" + (" and weights" if len(entries) > 1 else "") + \
-            " are the files the ONNX file records (sha256)"
+        if len(entries) > 1:
+            return "the source and weights are the files the ONNX file records (sha256)"
+        return "the source is the file the ONNX file records (sha256)"
     if status == "not recorded":
         return ("the ONNX file does not record what it was exported from (not written by seqgate export?); "
                 "it cannot be tied to the given files")
