@@ -210,7 +210,8 @@ class Net(nn.Module):
 def build():
     return Net()
 """)
-    r = _invoke("export", "--untrained", f"{py}:build", "--input", "x:batch,time,4", "-o", str(tmp_path / "o.onnx"))
+    r = _invoke("export", "--untrained", f"{py}:build", "--input", "x:batch,time,4",
+                "-o", str(tmp_path / "o.onnx"))
     assert r.exit_code == 3, r.output
     assert "torch.fx cannot trace" in r.output and "untr.py:" in r.output
     for n in needles:
@@ -255,7 +256,8 @@ def build():
     ("y:batch,4", "takes x"), ("x", "expected NAME:DIM"), ("x:batch,0,4", "neither a positive integer"),
 ])
 def test_bad_input_option_exit_2(spec: str, needle: str, good: dict[str, Path]) -> None:
-    r = _invoke("export", "--untrained", f"{good['py']}:build", "--input", spec, "-o", str(good["dir"] / "o.onnx"))
+    r = _invoke("export", "--untrained", f"{good['py']}:build", "--input", spec,
+                "-o", str(good["dir"] / "o.onnx"))
     assert r.exit_code == 2 and needle in r.output, r.output
 
 
@@ -279,5 +281,6 @@ def build():
 
 
 def test_wrong_input_shape_is_exit_2_with_the_failing_line(good: dict[str, Path]) -> None:
-    r = _invoke("export", "--untrained", f"{good['py']}:build", "--input", "x:batch,time,5", "-o", str(good["dir"] / "o.onnx"))
+    r = _invoke("export", "--untrained", f"{good['py']}:build", "--input", "x:batch,time,5",
+                "-o", str(good["dir"] / "o.onnx"))
     assert r.exit_code == 2 and "sample inputs (x: [3, 13, 5])" in r.output and "net.py:" in r.output, r.output
