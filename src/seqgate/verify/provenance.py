@@ -89,9 +89,10 @@ def compare_provenance(model: Any, src: Source) -> dict[str, Any]:
 
 def _detail(status: str, entries: list[dict[str, Any]]) -> str:
     if status == "match":
-        if len(entries) > 1:
+        if len(entries) > 1 and entries[1]["sha256"] is not None:
             return "the source and weights are the files the ONNX file records (sha256)"
-        return "the source is the file the ONNX file records (sha256)"
+        tail = "; no weights, as recorded (untrained)" if len(entries) > 1 else ""
+        return f"the source is the file the ONNX file records (sha256){tail}"
     if status == "not recorded":
         return ("the ONNX file does not record what it was exported from (not written by seqgate export?); "
                 "it cannot be tied to the given files")
