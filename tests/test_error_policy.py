@@ -87,7 +87,7 @@ def test_torch_mapping_bug_is_exit_4_naming_module_class_and_mapping(tmp_path: P
     monkeypatch.setitem(modules.MODULES, torch.nn.Linear, broken_linear)
     (tmp_path / "net.py").write_text(textwrap.dedent(TORCH_NET), encoding="utf-8")
     r = _run(["export", f"{tmp_path / 'net.py'}:build", "-o", str(tmp_path / "n.onnx"),
-              "--input", "x:batch,time,3"])
+              "--input", "x:batch,time,3", "--untrained"])
     text = _flat(r.output)
     assert r.exit_code == 4, text
     assert "'head (Linear)" in text and "(class Linear)" in text and "broken_linear" in text

@@ -108,7 +108,7 @@ def test_gate_passes_on_keras_demo(tmp_path: Path) -> None:
         assert (out / name).is_file(), name
     rep = json.loads((out / "report.json").read_text())
     assert rep["schema"] == "seqgate.gate/1" and rep["passed"] is True
-    assert [c["name"] for c in rep["checks"]] == ["export", "verify", "latency"]
+    assert [c["name"] for c in rep["checks"]] == ["export", "provenance", "verify", "latency"]
     assert rep["verify"]["schema"] == "seqgate.verify/1"
     assert rep["profile"]["schema"] == "seqgate.profile/1"
     kinds = {t["kind"] for t in rep["verify"]["tensors"]}
@@ -176,7 +176,7 @@ def test_impossible_budget_fails(tmp_path: Path) -> None:
     rep = json.loads((out / "report.json").read_text())
     latency = next(c for c in rep["checks"] if c["name"] == "latency")
     assert latency["passed"] is False
-    assert [c["passed"] for c in rep["checks"] if c["name"] != "latency"] == [True, True]
+    assert [c["passed"] for c in rep["checks"] if c["name"] != "latency"] == [True, True, True]
     assert "FAILED" in (out / "report.html").read_text()
 
 

@@ -63,7 +63,7 @@ def test_fit_matches_numpy_polyfit(pairs: list[tuple[int, float]]) -> None:
     ts = [float(t) for t, _ in pairs]
     ys = [y for _, y in pairs]
     fit = fit_line(ts, ys)
-    if len(set(ts)) < 2:
+    if len(set(ts)) < 3:  # a line needs three distinct lengths (seqgate.profile.stats)
         assert fit is None
         return
     assert fit is not None

@@ -191,6 +191,7 @@ def _expected_config_defaults() -> dict[tuple[str, str], object]:
     from seqgate.settings import SETTINGS
 
     expected: dict[tuple[str, str], object] = {("model", k): None for k in MODEL_KEYS}
+    expected[("model", "untrained")] = False
     expected[("export", "opset")] = DEFAULT_OPSET
     for st in SETTINGS:
         if st.table:  # the [[...]] tables: their own keys, each required or optional

@@ -64,7 +64,8 @@ def dict_model(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     d = tmp_path_factory.mktemp("dictnet")
     (d / "net.py").write_text(textwrap.dedent(DICT_NET), encoding="utf-8")
     np.savez(d / "rec.npz", x=np.random.default_rng(0).normal(size=(8, 6, 3)).astype(np.float32))
-    _ok(["export", f"{d / 'net.py'}:build", "-o", str(d / "net.onnx"), "--input", "x:batch,time,3"])
+    _ok(["export", f"{d / 'net.py'}:build", "-o", str(d / "net.onnx"), "--input", "x:batch,time,3",
+         "--untrained"])
     return {"dir": d, "onnx": d / "net.onnx", "source": Path(f"{d / 'net.py'}:build"), "rec": d / "rec.npz"}
 
 

@@ -84,7 +84,7 @@ def test_module_path_factory_and_input_override(tmp_path: Path, monkeypatch: pyt
     _write(tmp_path, "seqgate_test_pkg_mod.py", FACTORY_FILE)
     monkeypatch.syspath_prepend(str(tmp_path))
     out = tmp_path / "m.onnx"
-    r = _invoke("export", "seqgate_test_pkg_mod:build", "--input", "x:1,steps,4", "-o", str(out))
+    r = _invoke("export", "--untrained", "seqgate_test_pkg_mod:build", "--input", "x:1,steps,4", "-o", str(out))
     assert r.exit_code == 0, r.output
     dims = [d.dim_param or d.dim_value for d in onnx.load(str(out)).graph.input[0].type.tensor_type.shape.dim]
     assert dims == [1, "steps", 4]
@@ -114,7 +114,7 @@ def test_bad_factory_exit_2(case: str, tmp_path: Path) -> None:
     body, needles = BAD_FACTORIES[case]
     py = _write(tmp_path, "bad.py", body)
     out = tmp_path / "o.onnx"
-    r = _invoke("export", f"{py}:build", "-o", str(out))
+    r = _invoke("export", "--untrained", f"{py}:build", "-o", str(out))
     assert r.exit_code == 2, r.output
     for n in needles:
         assert n in r.output, (n, r.output)
@@ -122,13 +122,13 @@ def test_bad_factory_exit_2(case: str, tmp_path: Path) -> None:
 
 
 def test_missing_factory_name_lists_callables(good: dict[str, Path]) -> None:
-    r = _invoke("export", f"{good['py']}:make_model", "-o", str(good["dir"] / "o.onnx"))
+    r = _invoke("export", "--untrained", f"{good['py']}:make_model", "-o", str(good["dir"] / "o.onnx"))
     assert r.exit_code == 2
     assert "'make_model'" in r.output and "build" in r.output and "Net" in r.output
 
 
 def test_missing_file(tmp_path: Path) -> None:
-    r = _invoke("export", f"{tmp_path / 'nope.py'}:build", "-o", str(tmp_path / "o.onnx"))
+    r = _invoke("export", "--untrained", f"{tmp_path / 'nope.py'}:build", "-o", str(tmp_path / "o.onnx"))
     assert r.exit_code == 2 and "does not exist" in r.output
 
 
@@ -210,7 +210,8 @@ class Net(nn.Module):
 def build():
     return Net()
 """)
-    r = _invoke("export", f"{py}:build", "--input", "x:batch,time,4", "-o", str(tmp_path / "o.onnx"))
+    r = _invoke("export", "--untrained", f"{py}:build", "--input", "x:batch,time,4",
+                "-o", str(tmp_path / "o.onnx"))
     assert r.exit_code == 3, r.output
     assert "torch.fx cannot trace" in r.output and "untr.py:" in r.output
     for n in needles:
@@ -244,7 +245,7 @@ def build():
     return Net()
 """)
     out = tmp_path / "o.onnx"
-    r = _invoke("export", f"{py}:build", "--input", "x:batch,4", "-o", str(out))
+    r = _invoke("export", "--untrained", f"{py}:build", "--input", "x:batch,4", "-o", str(out))
     assert r.exit_code == 3, r.output
     assert "enc.cell (LSTMCell)" in r.output and "enc.act (CELU)" in r.output
     assert "uns.py:12" in r.output and "uns.py:13" in r.output and "2 unsupported" in r.output
@@ -255,7 +256,8 @@ def build():
     ("y:batch,4", "takes x"), ("x", "expected NAME:DIM"), ("x:batch,0,4", "neither a positive integer"),
 ])
 def test_bad_input_option_exit_2(spec: str, needle: str, good: dict[str, Path]) -> None:
-    r = _invoke("export", f"{good['py']}:build", "--input", spec, "-o", str(good["dir"] / "o.onnx"))
+    r = _invoke("export", "--untrained", f"{good['py']}:build", "--input", spec,
+                "-o", str(good["dir"] / "o.onnx"))
     assert r.exit_code == 2 and needle in r.output, r.output
 
 
@@ -271,13 +273,14 @@ class Net(nn.Module):
 def build():
     return Net()
 """)
-    r = _invoke("export", f"{py}:build", "-o", str(tmp_path / "o.onnx"))
+    r = _invoke("export", "--untrained", f"{py}:build", "-o", str(tmp_path / "o.onnx"))
     assert r.exit_code == 2 and "x, y" in r.output and "--input" in r.output, r.output
-    r = _invoke("export", f"{py}:build", "--input", "x:batch,3", "--input", "y:batch,3",
+    r = _invoke("export", "--untrained", f"{py}:build", "--input", "x:batch,3", "--input", "y:batch,3",
                 "-o", str(tmp_path / "o.onnx"))
     assert r.exit_code == 0, r.output
 
 
 def test_wrong_input_shape_is_exit_2_with_the_failing_line(good: dict[str, Path]) -> None:
-    r = _invoke("export", f"{good['py']}:build", "--input", "x:batch,time,5", "-o", str(good["dir"] / "o.onnx"))
+    r = _invoke("export", "--untrained", f"{good['py']}:build", "--input", "x:batch,time,5",
+                "-o", str(good["dir"] / "o.onnx"))
     assert r.exit_code == 2 and "sample inputs (x: [3, 13, 5])" in r.output and "net.py:" in r.output, r.output

@@ -52,6 +52,9 @@ def export(
     opset: Annotated[int | None, typer.Option(help="ONNX opset (default 17).")] = None,
     force: Annotated[bool, typer.Option("--force", help="Overwrite OUT if it exists.")] = False,
     weights: Annotated[str | None, typer.Option(help="PyTorch state dict (.pt) for a factory source.")] = None,
+    untrained: Annotated[bool, typer.Option(
+        "--untrained", help="PyTorch: export the factory's initial parameters without --weights "
+        "(a test or placeholder model); recorded in the file and shown in every report.")] = False,
     input_spec: Annotated[list[str] | None, typer.Option(
         "--input", help="PyTorch input NAME:DIM,DIM,... (symbolic names or integers); repeatable.")] = None,
 ) -> None:
@@ -59,9 +62,11 @@ def export(
     from seqgate.export.run import DEFAULT_OPSET, export_source
 
     options = {"inputs": input_spec} if input_spec else {}
-    res = export_source(source, out, opset or DEFAULT_OPSET, force, weights, **options)
+    res = export_source(source, out, opset or DEFAULT_OPSET, force, weights, untrained, **options)
     n_nodes = len(res.model.graph.node)
     typer.echo(f"wrote {res.path} (opset {res.opset}, {n_nodes} nodes, {res.probes} probes)")
+    if untrained:
+        typer.echo("note: UNTRAINED model (--untrained): exported with the factory's initial parameters.")
 
 
 @app.command()

@@ -124,10 +124,10 @@ def print_tables(data: dict[str, Any]) -> None:
         for col in ("runtime", "threads", "batch", "a (ms)", "b (µs/step)", "R²", "longest T within budget"):
             ft.add_column(col, justify="left" if col in ("runtime", "longest T within budget") else "right")
         for f in data["fits"]:
-            longest = ", ".join(f"{x['budget_ms']:g} ms → {_longest(x['seq_len'])}"
-                                for x in f["longest_seq_len"])
+            longest = ", ".join(f"{x['budget_ms']:g} ms → {longest_text(x)}" for x in f["longest_seq_len"])
+            r2 = f"{f['r2']:.4f}" + (" (poor fit)" if f.get("quality") == "poor" else "")
             ft.add_row(f["runtime"], str(f["threads"]), str(f["batch"]), _f(f["a_ms"], 4),
-                       _f(f["b_ms_per_step"] * 1e3, 3), f"{f['r2']:.4f}", longest or "—")
+                       _f(f["b_ms_per_step"] * 1e3, 3), r2, longest or "—")
         c.print(ft)
     if data["budgets"]:
         bt = Table(title=f"budgets (ONNX Runtime p{q})")
@@ -150,8 +150,13 @@ def print_tables(data: dict[str, Any]) -> None:
                      "bold red"))
 
 
-def _longest(t: int | None) -> str:
-    return "any" if t is None else str(t)
+def longest_text(x: dict[str, Any]) -> str:
+    """A fit's longest length within a budget, labelled when it lies outside the measured lengths."""
+    t = "any" if x["seq_len"] is None else str(x["seq_len"])
+    if not x.get("extrapolated"):
+        return t
+    measured = x.get("longest_measured_seq_len")
+    return f"{t} (extrapolated; measured within budget up to {'none' if measured is None else measured})"
 
 
 def register(app: typer.Typer) -> None:

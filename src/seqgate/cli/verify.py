@@ -149,6 +149,9 @@ def windows(
     meta = build_recording(data, out, window, stride, horizon, _split(columns), _split(targets), force)
     tshape = f", targets {meta['targets_shape']}" if meta["targets_shape"] else ""
     typer.echo(f"wrote {out}: windows {meta['windows_shape']}{tshape} from {meta['rows']} rows")
+    typer.echo(f"features: {', '.join(meta['columns'])}")
+    if meta["targets"]:
+        typer.echo(f"targets: {', '.join(meta['targets'])}")
 
 
 def register(app: typer.Typer) -> None:

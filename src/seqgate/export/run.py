@@ -4,6 +4,12 @@ Opset: the default is 17, the first opset with a native LayerNormalization, so e
 emits is native and the file also runs on onnxruntime releases from 1.14 on (edge devices
 often lag). The accepted range is ``MIN_OPSET..MAX_OPSET``; every value in it is exported and
 run under onnxruntime 1.32 by the tests.
+
+Provenance: the file records what it was made from (:func:`source_metadata`): the source file's
+name and sha256, the weights file's name and sha256, and ``seqgate.source.untrained = "true"``
+when a PyTorch factory was exported with its own initial parameters. That last case is refused
+unless asked for with ``untrained=True`` (``--untrained``): a factory alone builds an untrained
+model, and a release exported by mistake without its weights would otherwise pass unnoticed.
 """
 
 from __future__ import annotations
@@ -20,6 +26,7 @@ from seqgate.util.files import check_writable, sha256_file, write_atomic
 
 DEFAULT_OPSET = 17
 MIN_OPSET = 17
+UNTRAINED_KEY = "seqgate.source.untrained"
 MAX_OPSET = 28  # highest onnx 1.23 knows; every opset in range runs on onnxruntime 1.32 (tests/test_opsets.py)
 
 
@@ -58,7 +65,29 @@ def source_metadata(src: Source, framework_version: str) -> dict[str, str]:
     if src.weights is not None:
         meta["seqgate.source.weights"] = src.weights.name
         meta["seqgate.source.weights_sha256"] = sha256_file(src.weights)
+    elif src.framework == "torch":
+        meta[UNTRAINED_KEY] = "true"
     return meta
+
+
+def check_weights_choice(src: Source, untrained: bool) -> None:
+    """A PyTorch factory needs a weights file, or ``untrained`` to say it is meant to go without."""
+    if src.framework != "torch":
+        if untrained:
+            raise BadInputError(f"--untrained is for PyTorch factory sources; {src.text} is a Keras file, "
+                                f"which holds its trained weights. Drop --untrained.")
+        return
+    if untrained and src.weights is not None:
+        raise BadInputError(f"--untrained and --weights {src.weights} contradict each other: --untrained "
+                            f"exports the factory's own initial parameters. Drop one of them.")
+    if not untrained and src.weights is None:
+        raise BadInputError(
+            f"no weights for {src.text}: a factory alone builds the model with its initial (untrained) "
+            f"parameters. Pass the trained state dict with --weights FILE.pt (saved with "
+            f"torch.save(model.state_dict(), 'FILE.pt'); in a gate config, [model] weights = \"FILE.pt\"). "
+            f"If the model is meant to be untrained (a test or placeholder), pass --untrained "
+            f"([model] untrained = true); the file and every report then say so."
+        )
 
 
 def _portable_text(src: Source) -> str:
@@ -89,12 +118,17 @@ def export_source(
     opset: int = DEFAULT_OPSET,
     force: bool = False,
     weights: str | None = None,
+    untrained: bool = False,
     **options: Any,
 ) -> ExportResult:
-    """Export ``source`` to ``out`` atomically; refuse to overwrite unless ``force``."""
+    """Export ``source`` to ``out`` atomically; refuse to overwrite unless ``force``.
+
+    A PyTorch factory without ``weights`` is refused unless ``untrained`` (module docstring).
+    """
     from seqgate.onnxfile.probes import read_probe_map
 
     src = source if isinstance(source, Source) else parse_source(source, weights)
+    check_weights_choice(src, untrained)
     out_path = Path(out)
     check_writable(out_path, force)
     check_opset(opset)

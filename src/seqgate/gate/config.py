@@ -8,6 +8,8 @@ default)::
     weights = "model.pt"               # PyTorch state dict (PyTorch sources only)
     inputs = ["x:batch,time,3"]        # PyTorch input spec, NAME:DIM,... (optional)
     onnx = "shipped.onnx"              # gate this ONNX file instead of exporting one (optional)
+    untrained = false                  # PyTorch without weights on purpose (shown in every report)
+    expect_other_source = "reason"     # the ONNX file is known not to come from these files: why
 
     [export]
     opset = 17
@@ -59,7 +61,7 @@ from seqgate.errors import BadInputError
 from seqgate.settings import CONFIG, SETTINGS, Budget, Problems, Tolerances, check_input_memory, parse_settings
 from seqgate.settings.values import parse_int, problems_message, read_toml, unknown_key
 
-MODEL_KEYS = ("source", "weights", "inputs", "onnx")
+MODEL_KEYS = ("source", "weights", "inputs", "onnx", "untrained", "expect_other_source")
 EXPORT_KEYS = ("opset",)
 SECTIONS = ("model", "export", "verify", "profile")
 RENAMED = {("profile", "batch"): "batch_sizes"}  # old spellings, named in the error
@@ -93,6 +95,8 @@ class GateConfig:
     budgets: tuple[Budget, ...] = field(default_factory=tuple)
     profile_enabled: bool = True
     onnx: Path | None = None
+    untrained: bool = False
+    expect_other_source: str | None = None  # the reason the ONNX file may come from other files
 
     @property
     def base(self) -> Path:
@@ -174,6 +178,7 @@ def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any]
         percentile=pr["percentile"], warmup=pr["warmup"], min_runs=pr["min_runs"], min_time=pr["min_time"],
         compare_source=pr["compare_source"], budgets=tuple(pr["budget"]), profile_enabled=profile_enabled,
         onnx=files.path(model["onnx"], "[model] onnx") if "onnx" in model else None,
+        untrained=_untrained(c, model), expect_other_source=_other_source(c, model),
     )
 
 
@@ -182,6 +187,29 @@ def _check_sweep_memory(c: Problems, pr: dict[str, Any]) -> None:
     longest = max([*pr["seq_lens"], *(b.seq_len for b in pr["budget"])])
     c.take(lambda _v, w: check_input_memory(max(pr["batch_sizes"]), longest, 1, w), None,
            "[profile] seq_lens")
+
+
+def _untrained(c: Problems, model: dict[str, Any]) -> bool:
+    """``[model] untrained``: a boolean, and not together with ``weights``."""
+    value = model.get("untrained", False)
+    if not isinstance(value, bool):
+        c.add(f"[model] untrained must be true or false, got {value!r}")
+        return False
+    if value and model.get("weights"):
+        c.add("[model] untrained = true and weights contradict each other; drop one")
+    return value
+
+
+def _other_source(c: Problems, model: dict[str, Any]) -> str | None:
+    """``[model] expect_other_source``: the reason, a non-empty string."""
+    reason = model.get("expect_other_source")
+    if reason is None:
+        return None
+    if not isinstance(reason, str) or not reason.strip():
+        c.add("[model] expect_other_source needs the reason as its value, e.g. expect_other_source = "
+              "\"shipped file predates the rename of the source; weights unchanged\"")
+        return None
+    return reason.strip()
 
 
 class _Files:

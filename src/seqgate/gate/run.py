@@ -14,8 +14,10 @@ Contract:
   that file (the artifact that ships) against the source instead of exporting a new one.
 - Budgets at lengths the exported model cannot take (a fixed time dim) are refused (exit 2)
   before verification and profiling start.
-- Checks: ``export``, ``verify`` (every output and hidden state within tolerance on every
-  recording) and, when the config has a ``[profile]`` table, ``latency`` (every budget holds).
+- Checks: ``export``, ``provenance`` (the source and weights files are those the ONNX file records,
+  ``seqgate.verify.provenance``; a difference fails unless ``[model] expect_other_source`` gives
+  the reason), ``verify`` (every output and hidden state within tolerance on every recording) and,
+  when the config has a ``[profile]`` table, ``latency`` (every budget holds).
   The gate passes only when every check that ran passed (exit 0); otherwise exit 1.
 - Outputs, each written atomically: ``model.onnx``, ``report.json`` (``seqgate.gate/1``, embedding
   the verify and profile reports), ``report.md``, ``junit.xml``, ``report.html`` (self-contained).
@@ -101,6 +103,7 @@ class GateReport:
             "profile": self.profile,
             "provenance": {"files": self.files,
                            "model_sha256": self.files.get(str(self.work_dir / "model.onnx"))},
+            "untrained": any(c.get("untrained") for c in self.checks),
             "environment": environment(),
         }
 
@@ -215,6 +218,8 @@ def _run_checks(report: GateReport, progress: Progress) -> None:
         progress.start("exporting")
         model = _export(report, model_path, weights)
         progress.finish()
+    report.stage = "provenance"
+    _provenance(report, model, weights)
     report.stage = "latency"
     _check_lengths(cfg, model)
     report.stage = "verify"
@@ -229,7 +234,8 @@ def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
 
     cfg = report.config
     options = {"inputs": list(cfg.inputs)} if cfg.inputs else {}
-    res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, **options)
+    res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, untrained=cfg.untrained,
+                        **options)
     from seqgate.onnxfile.probes import read_metadata
 
     meta = read_metadata(res.model)
@@ -259,6 +265,13 @@ def _adopt_onnx(report: GateReport, model_path: Path) -> Any:
                           "detail": f"given ONNX file {cfg.onnx.name} (not exported here): "
                                     f"{len(model.graph.node)} nodes, {len(read_probe_map(model))} probes"})
     return model
+
+
+def _provenance(report: GateReport, model: Any, weights: str | None) -> None:
+    from seqgate.verify.provenance import provenance_check
+
+    cfg = report.config
+    report.checks.append(provenance_check(model, cfg.source, weights, cfg.expect_other_source))
 
 
 def _check_lengths(cfg: GateConfig, model: Any) -> None:

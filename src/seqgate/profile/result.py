@@ -12,16 +12,26 @@ Per point (seq len × batch × threads × runtime), from the timed runs:
   p50 at the same T, batch and threads — how many times faster the export runs.
 
 Budgets are judged on ONNX Runtime, the runtime that ships: a budget holds when, at its length,
-the chosen percentile is ≤ its milliseconds at **every** batch and thread count measured.
+the chosen percentile **measured** there is ≤ its milliseconds at **every** batch and thread count
+(``basis: "measured"``). A budget with no measured point at its length fails (``basis: "not
+measured"``); a fitted line never decides a verdict.
+
+Fits (``seqgate.profile.stats``): one line per (runtime, batch, threads) with at least three
+distinct lengths; a group with fewer gets none, and a note says "too few lengths to fit". Each
+fit carries ``quality`` (``"good"``/``"poor"``) and ``poor_reasons``, the measured range, and per
+budget the longest length predicted within it, with ``extrapolated`` true when that length lies
+outside the measured range. Beside each prediction, ``longest_measured_seq_len`` is the longest
+*measured* length whose percentile met the budget (``None`` when none did).
 """
 
 from __future__ import annotations
 
 import json
+import math
 from dataclasses import dataclass, field
 from typing import Any
 
-from seqgate.profile.stats import LineFit, Stats, fit_line, longest_within
+from seqgate.profile.stats import MIN_FIT_LENGTHS, TOO_FEW_LENGTHS, LineFit, Stats, fit_line, longest_within
 from seqgate.settings import Budget
 
 SCHEMA = "seqgate.profile/1"
@@ -72,8 +82,21 @@ def attach_speedups(points: list[Point]) -> None:
             base.speedup = p.speedup
 
 
-def fits_for(points: list[Point], percentile: int, budgets: list[Budget]) -> list[dict[str, Any]]:
-    """One least-squares line per (batch, threads, runtime), on the chosen percentile."""
+def _longest_measured(pts: list[Point], percentile: int, budget_ms: float) -> int | None:
+    ok = [p.seq_len for p in pts if p.stats.at(percentile) <= budget_ms]
+    return max(ok) if ok else None
+
+
+def _prediction(fit: LineFit, pts: list[Point], percentile: int, b: Budget) -> dict[str, Any]:
+    longest = longest_within(fit, b.ms)
+    return {"budget_ms": b.ms, "budget_seq_len": b.seq_len, "seq_len": longest,
+            "extrapolated": fit.extrapolated(longest),
+            "longest_measured_seq_len": _longest_measured(pts, percentile, b.ms)}
+
+
+def fits_for(points: list[Point], percentile: int, budgets: list[Budget],
+             notes: list[str] | None = None) -> list[dict[str, Any]]:
+    """One least-squares line per (batch, threads, runtime), on the chosen percentile (module docstring)."""
     groups: dict[tuple[str, int, int], list[Point]] = {}
     for p in points:
         groups.setdefault((p.runtime, p.batch, p.threads), []).append(p)
@@ -81,34 +104,50 @@ def fits_for(points: list[Point], percentile: int, budgets: list[Budget]) -> lis
     for (runtime, batch, threads), pts in groups.items():
         fit = fit_line([p.seq_len for p in pts], [p.stats.at(percentile) for p in pts])
         if fit is None:
+            if notes is not None:
+                n = len({p.seq_len for p in pts})
+                notes.append(f"no latency line for {runtime} batch {batch} threads {threads}: "
+                             f"{TOO_FEW_LENGTHS} ({n} measured; a line needs at least {MIN_FIT_LENGTHS}).")
             continue
+        reasons = fit.poor_reasons()
         out.append({
             "runtime": runtime, "batch": batch, "threads": threads, "percentile": percentile,
             "a_ms": fit.a_ms, "b_ms_per_step": fit.b_ms_per_step, "r2": fit.r2, "points": fit.n,
-            "longest_seq_len": [{"budget_ms": b.ms, "budget_seq_len": b.seq_len,
-                                 "seq_len": longest_within(fit, b.ms)} for b in budgets],
+            "a_stderr_ms": fit.a_stderr_ms, "measured_seq_lens": [int(fit.t_min), int(fit.t_max)],
+            "quality": "poor" if reasons else "good", "poor_reasons": reasons,
+            "longest_seq_len": [_prediction(fit, pts, percentile, b) for b in budgets],
         })
     return out
 
 
 def budget_checks(points: list[Point], budgets: list[Budget], percentile: int,
                   fits: list[dict[str, Any]]) -> list[dict[str, Any]]:
-    """One verdict per budget and ONNX Runtime (batch, threads) setting."""
-    line = {(f["batch"], f["threads"]): LineFit(f["a_ms"], f["b_ms_per_step"], f["r2"], f["points"])
-            for f in fits if f["runtime"] == ONNXRUNTIME}
+    """One verdict per budget and ONNX Runtime (batch, threads) setting, from the measured point only."""
+    line = {(f["batch"], f["threads"]): f for f in fits if f["runtime"] == ONNXRUNTIME}
     out: list[dict[str, Any]] = []
     for b in budgets:
-        for p in points:
-            if p.runtime != ONNXRUNTIME or p.seq_len != b.seq_len:
-                continue
+        found = [p for p in points if p.runtime == ONNXRUNTIME and p.seq_len == b.seq_len]
+        for p in found:
             measured = p.stats.at(percentile)
             fit = line.get((p.batch, p.threads))
+            preds = fit["longest_seq_len"] if fit else []
+            pred = next((x for x in preds if x["budget_seq_len"] == b.seq_len), None)
+            same = [q for q in points if q.runtime == ONNXRUNTIME and q.key()[1:] == p.key()[1:]]
             out.append({
                 "seq_len": b.seq_len, "budget_ms": b.ms, "percentile": percentile,
-                "batch": p.batch, "threads": p.threads, "runtime": ONNXRUNTIME,
+                "batch": p.batch, "threads": p.threads, "runtime": ONNXRUNTIME, "basis": "measured",
                 "measured_ms": measured, "margin_ms": b.ms - measured, "passed": measured <= b.ms,
-                "predicted_longest_seq_len": longest_within(fit, b.ms) if fit else None,
+                "predicted_longest_seq_len": pred["seq_len"] if pred else None,
+                "predicted_extrapolated": pred["extrapolated"] if pred else None,
+                "fit_quality": fit["quality"] if fit else None,
+                "longest_measured_seq_len": _longest_measured(same, percentile, b.ms),
             })
+        if not found:  # never judged from a line: no measurement, no pass
+            out.append({"seq_len": b.seq_len, "budget_ms": b.ms, "percentile": percentile, "batch": None,
+                        "threads": None, "runtime": ONNXRUNTIME, "basis": "not measured",
+                        "measured_ms": math.inf, "margin_ms": -math.inf, "passed": False,
+                        "predicted_longest_seq_len": None, "predicted_extrapolated": None, "fit_quality": None,
+                        "longest_measured_seq_len": None})
     return out
 
 

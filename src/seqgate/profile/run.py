@@ -203,7 +203,7 @@ def profile_model(
     if q == 99 and min(p.stats.runs for p in points) < 100:
         notes.append("some points have fewer than 100 runs: their p99 is close to their max; raise "
                      "--min-runs or --min-time for a steadier tail.")
-    fits = fits_for(points, q, budget_list)
+    fits = fits_for(points, q, budget_list, notes)
     env = environment()
     env["session_options"] = sessions
     return ProfileReport(

@@ -7,7 +7,15 @@
   ``statistics.stdev``); 0 for a single sample.
 - The fit is ordinary least squares of ``y = a + b·T``:
   ``b = Σ(T−T̄)(y−ȳ) / Σ(T−T̄)²``, ``a = ȳ − b·T̄``, ``R² = 1 − Σ(y − a − b·T)² / Σ(y − ȳ)²``
-  (``R² = 1`` when every ``y`` is equal, since the line then explains everything).
+  (``R² = 1`` when every ``y`` is equal, since the line then explains everything). It needs at
+  least ``MIN_FIT_LENGTHS = 3`` distinct lengths: two points always lie on a line (R² = 1 says
+  nothing), and the intercept's standard error needs ``n − 2 ≥ 1`` degrees of freedom.
+- A fit is *poor* when ``R² < POOR_R2`` (0.95 — common practice for calling a straight line a
+  good description of measurements) or when the intercept is negative beyond its noise,
+  ``a < −2·SE(a)`` with ``SE(a) = s·√(1/n + T̄²/Σ(T−T̄)²)``, ``s² = Σ(y − a − b·T)²/(n − 2)``
+  (about a 95 % one-sided bound, common practice): a latency cannot be negative at T = 0.
+- A prediction at ``T`` is *extrapolated* when ``T`` lies outside the measured lengths
+  ``[T_min, T_max]``; an unbounded prediction (``None``) is extrapolated too.
 - The longest length predicted to fit a budget ``MS`` is the largest integer ``T ≥ 1`` with
   ``a + b·T ≤ MS``: ``⌊(MS − a)/b⌋`` for ``b > 0``; unbounded (``None``) when ``b ≤ 0`` and the
   line is under the budget at ``T = 1``; ``0`` when even ``T = 1`` is predicted to miss.
@@ -18,6 +26,10 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+
+MIN_FIT_LENGTHS = 3
+POOR_R2 = 0.95  # common practice: below this a straight line describes measurements poorly
+TOO_FEW_LENGTHS = "too few lengths to fit"
 
 
 def percentile(sorted_values: Sequence[float], q: float) -> float:
@@ -67,23 +79,40 @@ def summarize_ns(samples_ns: Sequence[int]) -> Stats:
 
 @dataclass(frozen=True)
 class LineFit:
-    """``latency_ms(T) = a_ms + b_ms_per_step · T`` and its coefficient of determination."""
+    """``latency_ms(T) = a_ms + b_ms_per_step · T``, its R², point count, and what was measured."""
 
     a_ms: float
     b_ms_per_step: float
     r2: float
     n: int
+    a_stderr_ms: float = 0.0
+    t_min: float = 0.0
+    t_max: float = 0.0
 
     def predict(self, t: float) -> float:
         return self.a_ms + self.b_ms_per_step * t
 
+    def poor_reasons(self) -> list[str]:
+        """Why the line is a poor description of the points (empty: it is not poor)."""
+        out = []
+        if self.r2 < POOR_R2:
+            out.append(f"R² {self.r2:.3f} < {POOR_R2}")
+        if self.a_ms < -2 * self.a_stderr_ms:
+            noise = 2 * self.a_stderr_ms
+            out.append(f"negative intercept {self.a_ms:.3g} ms beyond noise (2·SE {noise:.3g} ms)")
+        return out
+
+    def extrapolated(self, t: float | None) -> bool:
+        """True when ``t`` lies outside the measured lengths (``None``, unbounded, always does)."""
+        return t is None or not self.t_min <= t <= self.t_max
+
 
 def fit_line(ts: Sequence[float], ys: Sequence[float]) -> LineFit | None:
-    """Least-squares line through ``(T, y)``; ``None`` with fewer than two distinct ``T``."""
+    """Least-squares line through ``(T, y)``; ``None`` with fewer than ``MIN_FIT_LENGTHS`` distinct ``T``."""
     n = len(ts)
     if n != len(ys):
         raise ValueError("fit_line: ts and ys differ in length")
-    if n < 2 or len(set(ts)) < 2:
+    if len(set(ts)) < MIN_FIT_LENGTHS:
         return None
     t_mean = math.fsum(ts) / n
     y_mean = math.fsum(ys) / n
@@ -94,7 +123,8 @@ def fit_line(ts: Sequence[float], ys: Sequence[float]) -> LineFit | None:
     ss_res = math.fsum((y - a - b * t) ** 2 for t, y in zip(ts, ys, strict=True))
     ss_tot = math.fsum((y - y_mean) ** 2 for y in ys)
     r2 = 1.0 - ss_res / ss_tot if ss_tot > 0 else 1.0
-    return LineFit(a, b, r2, n)
+    se_a = math.sqrt(ss_res / (n - 2) * (1 / n + t_mean**2 / sxx))
+    return LineFit(a, b, r2, n, se_a, float(min(ts)), float(max(ts)))
 
 
 def longest_within(fit: LineFit, budget_ms: float) -> int | None:

@@ -26,6 +26,7 @@ th{background:#f3f5f7}td.num{text-align:right;font-variant-numeric:tabular-nums}
 .note{color:#555;font-size:.9rem}img{max-width:100%;border:1px solid #e3e5e8}
 code{background:#f3f5f7;padding:0 .25rem;border-radius:.2rem}
 pre{background:#fdf3f2;padding:.6rem;white-space:pre-wrap}
+.untrained{background:#fff1c2;border:2px solid #b07d00;padding:.6rem .9rem;border-radius:.4rem;font-weight:600}
 """
 
 
@@ -224,6 +225,19 @@ def _verify_section(verify: dict[str, Any] | None) -> str:
     return "".join(parts)
 
 
+def _longest_cell(b: dict[str, Any]) -> str:
+    """Longest length within the budget: measured, and the line's prediction labelled when extrapolated."""
+    measured = b.get("longest_measured_seq_len")
+    out = f"measured: {_e('none' if measured is None else measured)}"
+    pred = b.get("predicted_longest_seq_len")
+    if b.get("predicted_extrapolated") is None:
+        return out
+    label = "extrapolated, not measured" if b.get("predicted_extrapolated") else "within measured lengths"
+    pred_text = "any" if pred is None else pred
+    poor = ", poor fit" if b.get("fit_quality") == "poor" else ""
+    return f"{out}<br><span class='note'>line predicts {_e(pred_text)} ({label}{poor})</span>"
+
+
 def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
     if not profile:
         return ""
@@ -238,7 +252,7 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
             _e(b["threads"]),
             _fmt(b["budget_ms"]),
             _fmt(b.get("measured_ms")),
-            _e(b.get("predicted_longest_seq_len")),
+            _longest_cell(b),
             _mark(b.get("passed")),
         ]
         for b in profile.get("budgets") or []
@@ -250,10 +264,13 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
             "threads",
             "budget ms",
             f"p{percentile} ms",
-            "longest T predicted",
+            "longest T within budget",
             "verdict",
         ]
-        parts.append(_table(heads, brows, {0, 1, 2, 3, 4, 5}))
+        parts.append(_table(heads, brows, {0, 1, 2, 3, 4}))
+        parts.append("<p class='note'>Every verdict is from the measured percentile at the budget's length. "
+                     "A length predicted by the latency line outside the measured lengths is an "
+                     "extrapolation and never decides a verdict.</p>")
     for n in profile.get("notes") or []:
         parts.append(f"<p class='note'>{_e(n)}</p>")
     rows = [
@@ -280,11 +297,43 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
     return "".join(parts)
 
 
+def _untrained(report: dict[str, Any]) -> str:
+    from seqgate.report.gate_text import provenance_entry
+
+    check = provenance_entry(report)
+    if not check or not check.get("untrained"):
+        return ""
+    return ("<p class='untrained'>UNTRAINED MODEL — the ONNX file was exported from the factory's initial "
+            "parameters without weights, on purpose (untrained). It is not a trained release.</p>")
+
+
+def _provenance_check(report: dict[str, Any]) -> str:
+    """Given source/weights files against those the ONNX file records, and any accepted reason."""
+    from seqgate.report.gate_text import provenance_entry
+
+    check = provenance_entry(report)
+    if not check:
+        return ""
+    accepted = " — accepted" if check["passed"] and check["status"] != "match" else ""
+    status = _e(check["status"])
+    parts = [f"<p>Source and weights against the ONNX file's record: <b>{status}</b>{accepted}.</p>"]
+    if check.get("expected_other_source"):
+        parts.append(f"<p>The config expects another source: <i>{_e(check['expected_other_source'])}</i></p>")
+    same = {True: _mark(True).replace("pass", "same"), False: _mark(False).replace("FAIL", "DIFFERS"),
+            None: '<span class="note">not recorded</span>'}
+    rows = [[_e(f["role"]), f"<code>{_e(f.get('path') or f.get('text') or '—')}</code>",
+             f"<code>{_e(f.get('sha256') or '—')}</code>", _e(f.get("recorded_name") or "—"),
+             f"<code>{_e(f.get('recorded_sha256') or '—')}</code>", same[f["matches"]]] for f in check["files"]]
+    heads = ["role", "given file", "sha256", "recorded in the ONNX file", "recorded sha256", "same"]
+    parts.append(_table(heads, rows))
+    return "".join(parts)
+
+
 def _provenance(report: dict[str, Any]) -> str:
     prov = report.get("provenance", {})
     env = report.get("environment", {})
     rows = [[_e(k), f"<code>{_e(v)}</code>"] for k, v in sorted(prov.get("files", {}).items())]
-    parts = ["<h2>Provenance</h2>", _table(["file", "sha256"], rows)]
+    parts = ["<h2>Provenance</h2>", _provenance_check(report), _table(["file", "sha256"], rows)]
     erows = [[_e(k), _e(v)] for k, v in env.items() if k != "libraries"]
     erows += [[_e(k), _e(v)] for k, v in sorted((env.get("libraries") or {}).items())]
     parts.append(_table(["environment", "value"], erows))
@@ -303,6 +352,7 @@ def render_gate_html(report: dict[str, Any]) -> str:
         f"<h1>{_e(title)}</h1>",
         f"<p>{verdict} <span class='note'>config {_e(report.get('config_path', ''))} · "
         f"seqgate {_e(report.get('seqgate_version', ''))} · {_e(report.get('created', ''))}</span></p>",
+        _untrained(report),
         _checks(report),
         _stopped(report.get("error")),
         _divergence(report.get("verify")),

@@ -20,14 +20,35 @@ def _g(x: Any) -> str:
     return "—" if x is None else (f"{x:.3g}" if isinstance(x, float) else str(x))
 
 
+def _longest(b: dict[str, Any]) -> str:
+    """Measured longest length within the budget, then the line's prediction, labelled."""
+    measured = b.get("longest_measured_seq_len")
+    out = f"measured {'none' if measured is None else measured}"
+    if b.get("predicted_extrapolated") is None:
+        return out
+    pred = b.get("predicted_longest_seq_len")
+    label = "extrapolated, not measured" if b["predicted_extrapolated"] else "within measured lengths"
+    poor = ", poor fit" if b.get("fit_quality") == "poor" else ""
+    return f"{out}; line predicts {'any' if pred is None else pred} ({label}{poor})"
+
+
+def provenance_entry(d: dict[str, Any]) -> dict[str, Any] | None:
+    """The gate's ``provenance`` check (``seqgate.verify.provenance.provenance_check``), if it ran."""
+    return next((c for c in d.get("checks", []) if c.get("name") == "provenance" and "files" in c), None)
+
+
 def gate_markdown(d: dict[str, Any]) -> str:
     """A Markdown summary: verdict, checks, first divergence, tensors, latency, provenance."""
+    from seqgate.report.verify_markdown import UNTRAINED_BANNER
+
     verdict = "PASSED" if d["passed"] else "FAILED"
+    prov = provenance_entry(d)
     lines = [
         f"# seqgate release gate — {d.get('model_name', '')}",
         "",
         f"**{verdict}** (exit {d['exit_code']})",
         "",
+        *([UNTRAINED_BANNER, ""] if prov and prov.get("untrained") else []),
         f"- config: `{d['config_path']}`",
         f"- seqgate {d['seqgate_version']}, {d['created']}",
         "",
@@ -71,14 +92,17 @@ def gate_markdown(d: dict[str, Any]) -> str:
             "",
             "## Latency budgets",
             "",
-            "| seq len | batch | threads | budget ms | measured ms | verdict |",
-            "|---:|---:|---:|---:|---:|---|",
+            "| seq len | batch | threads | budget ms | measured ms | longest T within budget | verdict |",
+            "|---:|---:|---:|---:|---:|---|---|",
         ]
         for b in p.get("budgets") or []:
             lines.append(
                 f"| {b['seq_len']} | {b['batch']} | {b['threads']} | {_g(b['budget_ms'])} | "
-                f"{_g(b['measured_ms'])} | {'pass' if b['passed'] else '**fail**'} |"
+                f"{_g(b['measured_ms'])} | {_longest(b)} | {'pass' if b['passed'] else '**fail**'} |"
             )
+        lines += ["", "Verdicts come from the percentile measured at each budget's length; a length the "
+                      "latency line predicts outside the measured lengths is marked extrapolated and decides "
+                      "nothing."]
         lines += [
             "",
             "## Latency points",
@@ -91,7 +115,10 @@ def gate_markdown(d: dict[str, Any]) -> str:
                 f"| {pt['runtime']} | {pt['seq_len']} | {pt['batch']} | {pt['threads']} | "
                 f"{_g(pt['p50_ms'])} | {_g(pt['p99_ms'])} | {_g(pt.get('speedup'))} |"
             )
-    lines += ["", "## Provenance", "", "| file | sha256 |", "|---|---|"]
+    lines += ["", "## Provenance", ""]
+    if prov:
+        lines += _provenance_lines(prov)
+    lines += ["| file | sha256 |", "|---|---|"]
     for f, h in sorted(d["provenance"]["files"].items()):
         lines.append(f"| `{f}` | `{h}` |")
     lines += [
@@ -101,6 +128,20 @@ def gate_markdown(d: dict[str, Any]) -> str:
         "fit for a safety-relevant use.",
     ]
     return "\n".join(lines) + "\n"
+
+
+def _provenance_lines(prov: dict[str, Any]) -> list[str]:
+    """Given vs recorded files, and the config's reason when another source is expected."""
+    lines = [f"Source and weights against the ONNX file's record: **{prov['status']}**"
+             f"{' — accepted' if prov['passed'] and prov['status'] != 'match' else ''}.", ""]
+    if prov.get("expected_other_source"):
+        lines += [f"The config expects another source: *{_cell(prov['expected_other_source'])}*", ""]
+    lines += ["| role | given file | recorded in the ONNX file | same |", "|---|---|---|---|"]
+    for e in prov["files"]:
+        same = {True: "yes", False: "**NO**", None: "not recorded"}[e["matches"]]
+        lines.append(f"| {e['role']} | `{_cell(e.get('path') or e.get('text') or '—')}` | "
+                     f"{_cell(_g(e.get('recorded_name')))} | {same} |")
+    return [*lines, ""]
 
 
 def _case(suite: ET.Element, classname: str, name: str, passed: bool, message: str) -> None:

@@ -1,4 +1,8 @@
-"""A Markdown summary of a verify report: headline, first divergence, one row per tensor."""
+"""A Markdown summary of a verify report: headline, provenance, window sets, one row per tensor.
+
+An untrained export is announced right under the headline; the provenance section compares the
+given source and weights files with those the ONNX file records (``seqgate.verify.provenance``).
+"""
 
 from __future__ import annotations
 
@@ -12,14 +16,37 @@ def _g(x: Any) -> str:
     return "—" if x is None else (f"{x:.3g}" if isinstance(x, float) else str(x))
 
 
+UNTRAINED_BANNER = ("> **UNTRAINED MODEL** — the ONNX file was exported from the factory's initial "
+                    "parameters without weights, on purpose (`--untrained`). It is not a trained release.")
+
+
+def provenance_markdown(prov: dict[str, Any]) -> list[str]:
+    """The provenance section: status, then one row per file role (given vs recorded sha256)."""
+    if not prov:
+        return []
+    lines = ["## Provenance", "", f"**{prov['status']}**: {prov['detail']}", "",
+             "| role | given file | sha256 | recorded in the ONNX file | recorded sha256 | same |",
+             "|---|---|---|---|---|---|"]
+    for e in prov["files"]:
+        same = {True: "yes", False: "**NO**", None: "not recorded"}[e["matches"]]
+        lines.append(f"| {e['role']} | `{e.get('path') or e.get('text') or '—'}` | `{_g(e.get('sha256'))}` | "
+                     f"{_g(e.get('recorded_name'))} | `{_g(e.get('recorded_sha256'))}` | {same} |")
+    notes = [f"- {e['role']}: {e['note']}" for e in prov["files"] if e.get("note")]
+    return lines + (["", *notes] if notes else []) + [""]
+
+
 def verify_markdown(report: Any) -> str:
     doc = report.to_json()
     lines = ["# seqgate verify", "", f"**{report.headline()}**", ""]
+    prov = doc.get("provenance") or {}
+    if prov.get("untrained"):
+        lines += [UNTRAINED_BANNER, ""]
     lines += [f"- model: `{doc['model']['path']}` (sha256 `{doc['model']['sha256'][:16]}…`)",
               f"- source: `{doc['source']['text']}` ({doc['source']['framework']})",
               f"- tolerance: atol {doc['settings']['atol']:g}, rtol {doc['settings']['rtol']:g}; "
               f"seed {doc['seed']}",
               ""]
+    lines += provenance_markdown(prov)
     lines += ["## Window sets", "", "| set | kind | windows | sha256 |", "|---|---|---:|---|"]
     for r in doc["recordings"]:
         lines.append(f"| {r['label']} | {r['kind']} | {r['windows']} | {(r['sha256'] or '')[:16]} |")

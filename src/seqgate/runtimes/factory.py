@@ -18,11 +18,9 @@ from seqgate.sources.spec import Source
 SourceRunner = Any  # KerasRunner | TorchRunner (imported lazily: they import the frameworks)
 
 
-def open_source_runner(src: Source, probes: list[Probe], output_names: list[str], states: bool = True,
-                       threads: int | None = None) -> SourceRunner:
-    """The runner for ``src`` (imports its framework here, lazily)."""
+def load_source_model(src: Source, threads: int | None = None) -> Any:
+    """The loaded Keras model or PyTorch module of ``src`` (imports its framework here, lazily)."""
     if src.framework == "keras":
-        from seqgate.runtimes.keras import KerasRunner
         from seqgate.sources.keras import load_keras
         from seqgate.util.frameworks import import_keras
 
@@ -34,8 +32,20 @@ def open_source_runner(src: Source, probes: list[Probe], output_names: list[str]
                 tf.config.threading.set_intra_op_parallelism_threads(threads)
                 tf.config.threading.set_inter_op_parallelism_threads(1)
         assert src.path is not None
-        return KerasRunner(load_keras(src.path), probes, output_names, states)
-    from seqgate.runtimes.torch import TorchRunner
+        return load_keras(src.path)
     from seqgate.sources.torch import load_torch
 
-    return TorchRunner(load_torch(src), probes, output_names, states)
+    return load_torch(src)
+
+
+def open_source_runner(src: Source, probes: list[Probe], output_names: list[str], states: bool = True,
+                       threads: int | None = None, loaded: Any = None) -> SourceRunner:
+    """The runner for ``src``; ``loaded`` is the model when the caller loaded it already."""
+    loaded = load_source_model(src, threads) if loaded is None else loaded
+    if src.framework == "keras":
+        from seqgate.runtimes.keras import KerasRunner
+
+        return KerasRunner(loaded, probes, output_names, states)
+    from seqgate.runtimes.torch import TorchRunner
+
+    return TorchRunner(loaded, probes, output_names, states)

@@ -72,6 +72,39 @@ def _check_container(path: Path) -> None:
     if path.suffix.lower() == ".keras" and not zipfile.is_zipfile(path):
         raise BadInputError(f"{path}: the Keras archive is incomplete (its zip directory is missing); "
                             f"the file is probably truncated. Copy or save the model again.")
+    if path.suffix.lower() == ".keras":
+        _check_archive_config(path)
     if path.suffix.lower() in (".h5", ".hdf5") and head != b"\x89HDF\r\n\x1a\n":
         raise BadInputError(f"{path}: not an HDF5 file (wrong signature). It may be truncated or "
                             f"of another format.")
+
+
+def _check_archive_config(path: Path) -> None:
+    """A ``.keras`` archive holds ``config.json``: a JSON object describing the model (class_name, config)."""
+    import json
+    import zipfile
+
+    try:
+        with zipfile.ZipFile(path) as z:
+            names = z.namelist()
+            raw = z.read("config.json") if "config.json" in names else None
+    except (zipfile.BadZipFile, OSError) as e:
+        raise BadInputError(f"{path}: the Keras archive cannot be read ({e}); the file is probably damaged. "
+                            f"Copy or save the model again.") from e
+    if raw is None:
+        shown = ", ".join(names[:6]) or "nothing"
+        raise BadInputError(f"{path}: the archive has no config.json (it holds {shown}), so it is not a Keras "
+                            f"model file. Save the model with model.save('model.keras').")
+    try:
+        cfg = json.loads(raw.decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as e:
+        why = f"at line {e.lineno}, column {e.colno}: {e.msg}" if isinstance(e, json.JSONDecodeError) else \
+            "not UTF-8 text"
+        raise BadInputError(f"{path}: config.json inside the Keras archive is not valid JSON ({why}); the "
+                            f"archive was damaged or edited by hand. Save the model again with "
+                            f"model.save('model.keras').") from e
+    if not isinstance(cfg, dict) or "class_name" not in cfg:
+        kind = type(cfg).__name__
+        raise BadInputError(f"{path}: config.json inside the Keras archive is a JSON {kind} without "
+                            f"'class_name', not a Keras model description; the archive was damaged or edited "
+                            f"by hand. Save the model again with model.save('model.keras').")

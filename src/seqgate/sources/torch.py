@@ -1,12 +1,23 @@
 """Build a PyTorch module from a factory source and load its state dict safely.
 
 A PyTorch source is ``path/to/file.py:FACTORY`` or ``package.module:FACTORY`` (see
-``seqgate.sources``). FACTORY is a zero-argument callable — a function or a class — that
+``seqgate.sources``). FACTORY is a zero-argument function or ``nn.Module`` class that
 returns the ``torch.nn.Module``.
 
 **Naming a Python file runs it.** seqgate imports the file (its directory is put first on
 ``sys.path`` while it is imported, so it can import its neighbours) and calls FACTORY. That is
 the user's own code, run by the user's choice; seqgate never runs code found in a weights file.
+The import writes no ``__pycache__/`` beside the file (``sys.dont_write_bytecode`` is set while
+it runs, then restored).
+
+What may be called is limited, because a gate config names code to run: FACTORY must be a
+Python function or a ``torch.nn.Module`` subclass, defined outside the Python standard library
+and builtins — its ``__module__`` is not ``builtins`` nor a standard-library module
+(``sys.stdlib_module_names``), and that module's file does not lie under the standard library's
+directories (``sysconfig`` ``stdlib``/``platstdlib``, site-packages excepted). A
+``package.module`` source whose top package is in the standard library is refused before it is
+imported. Anything else (``os:abort``, a builtin, a ``functools.partial``, a plain class) is
+refused (exit 2) before it is called.
 
 Weights (``--weights``) must be a state dict saved with ``torch.save(model.state_dict(), path)``.
 They are read with ``torch.load(weights_only=True, map_location="cpu")``, which refuses pickled
@@ -26,7 +37,9 @@ from __future__ import annotations
 import hashlib
 import importlib
 import importlib.util
+import inspect
 import sys
+import sysconfig
 import traceback
 from dataclasses import dataclass
 from pathlib import Path
@@ -61,6 +74,7 @@ def load_torch_with_info(src: Source) -> tuple[Any, LoadInfo]:
         raise BadInputError(f"{src.text} is not a PyTorch source; use FILE.py:FACTORY or "
                             f"package.module:FACTORY.")
     factory = _find_factory(src)
+    check_factory(factory, _label(src), torch)
     module = _call_factory(src, factory, torch)
     if src.weights is not None:
         _load_weights(module, src.weights, torch)
@@ -78,6 +92,11 @@ def _find_factory(src: Source) -> Any:
         where = str(src.path)
     else:
         modname, _, name = src.factory.rpartition(":")
+        if _stdlib_name(modname):
+            raise BadInputError(
+                f"source {src.factory!r}: {modname} is part of the Python standard library, not a model "
+                f"factory; seqgate does not import or call it. Point at your own file "
+                f"(FILE.py:FACTORY) or package (package.module:FACTORY).")
         mod = _import_module(modname)
         where = modname
     if not hasattr(mod, name):
@@ -107,6 +126,8 @@ def _import_file(path: Path) -> Any:
     sys.modules[modname] = mod
     folder = str(resolved.parent)
     sys.path.insert(0, folder)
+    no_bytecode = sys.dont_write_bytecode
+    sys.dont_write_bytecode = True  # no __pycache__/ beside the user's file
     try:
         spec.loader.exec_module(mod)
     except SyntaxError as e:
@@ -122,6 +143,7 @@ def _import_file(path: Path) -> Any:
             f"seqgate imports the file to find the factory; make it importable on its own."
         ) from None
     finally:
+        sys.dont_write_bytecode = no_bytecode
         if folder in sys.path:
             sys.path.remove(folder)
     return mod
@@ -137,8 +159,48 @@ def _import_module(modname: str) -> Any:
         raise BadInputError(f"importing {modname} failed with {type(e).__name__}: {_short(e)}.") from None
 
 
+def _label(src: Source) -> str:
+    return f"{src.path}:{src.factory}" if src.path is not None else str(src.factory)
+
+
+def _stdlib_name(modname: str) -> bool:
+    top = modname.split(".")[0]
+    return top in sys.stdlib_module_names or top in sys.builtin_module_names
+
+
+def _in_stdlib_dirs(file: str | None) -> bool:
+    """True for a file under the standard library's directories that is not under site-packages."""
+    if not file:
+        return False
+    f = Path(file).resolve()
+    paths = sysconfig.get_paths()
+    std = {Path(paths[k]).resolve() for k in ("stdlib", "platstdlib") if k in paths}
+    site = {Path(paths[k]).resolve() for k in ("purelib", "platlib") if k in paths}
+    return any(f.is_relative_to(d) for d in std) and not any(f.is_relative_to(d) for d in site)
+
+
+def check_factory(factory: Any, label: str, torch: Any) -> None:
+    """Refuse a FACTORY that is not a function or ``nn.Module`` subclass of the user's (module docstring)."""
+    is_module_class = inspect.isclass(factory) and issubclass(factory, torch.nn.Module)
+    if not (inspect.isfunction(factory) or is_module_class):
+        if inspect.isclass(factory):
+            kind = f"class {factory.__module__}.{factory.__qualname__} (not an nn.Module)"
+        else:
+            kind = f"{type(factory).__name__} object"
+        raise BadInputError(
+            f"{label} is a {kind}, not a Python function or a torch.nn.Module class; seqgate calls only "
+            f"those, so it did not call it. Point FACTORY at a function or nn.Module class that builds "
+            f"the model.")
+    owner = getattr(factory, "__module__", None) or ""
+    file = getattr(sys.modules.get(owner), "__file__", None)
+    if owner == "builtins" or _stdlib_name(owner) or _in_stdlib_dirs(file):
+        raise BadInputError(
+            f"{label} is {owner}.{factory.__qualname__}, defined in the Python standard library, not a model "
+            f"factory; seqgate did not call it. Point FACTORY at a function or nn.Module class of your own.")
+
+
 def _call_factory(src: Source, factory: Any, torch: Any) -> Any:
-    label = f"{src.path}:{src.factory}" if src.path is not None else src.factory
+    label = _label(src)
     try:
         module = factory()
     except Exception as e:
@@ -193,7 +255,50 @@ def _load_weights(module: Any, path: Path, torch: Any) -> None:
         raise BadInputError(f"loading weights {path} failed: {_short(e)}.") from None
 
 
+_SAVE_HINT = "save the trained weights with torch.save(model.state_dict(), 'FILE.pt') and pass that file"
+
+
+def _what_file(path: Path) -> str | None:
+    """What ``path`` really is when it cannot be a ``torch.save`` file; ``None`` when it may be one.
+
+    ``torch.save`` writes a zip archive holding ``<name>/data.pkl`` (or, before PyTorch 1.6, a raw
+    pickle, which starts with the pickle protocol byte 0x80).
+    """
+    import zipfile
+
+    size = path.stat().st_size
+    with open(path, "rb") as f:
+        head = f.read(512)
+    if size == 0:
+        return "an empty file (0 bytes)"
+    if head.startswith(b"PK"):
+        if not zipfile.is_zipfile(path):
+            return f"an incomplete zip archive ({size} bytes, its directory is missing): probably truncated"
+        with zipfile.ZipFile(path) as z:
+            names = z.namelist()
+        if not any(n == "data.pkl" or n.endswith("/data.pkl") for n in names):
+            shown = ", ".join(names[:5]) + (", …" if len(names) > 5 else "")
+            return f"a zip archive of another kind (it holds {shown}; a .keras model or an .npz?)"
+        return None
+    if head.startswith(b"\x89HDF"):
+        return "an HDF5 file (a Keras .h5 model?)"
+    if head[:1] == b"\x80":
+        return None
+    try:
+        text = head.decode("utf-8")
+    except UnicodeDecodeError:
+        return f"a binary file of an unknown kind ({size} bytes, starting {head[:8].hex(' ')})"
+    if all(c.isprintable() or c in "\r\n\t" for c in text):
+        first = (text.strip().splitlines() or [""])[0][:40]
+        return f"a text file ({size} bytes, starting {first!r})"
+    return f"a file of an unknown kind ({size} bytes)"
+
+
 def _read_state_dict(path: Path, torch: Any) -> dict[str, Any]:
+    what = _what_file(path)
+    if what is not None:
+        raise BadInputError(f"weights file {path} is {what}: not a readable PyTorch weights file. Pass the "
+                            f"state dict of the trained model: {_SAVE_HINT}.")
     try:
         obj = torch.load(str(path), weights_only=True, map_location="cpu")
     except Exception as e:

@@ -1,4 +1,4 @@
-"""File helpers: output-path checks, atomic writes (temp file + rename) and content hashes.
+"""File helpers: output-path checks, atomic writes (temp file + rename, the user's umask) and content hashes.
 
 Every command that writes calls :func:`check_output_path` (or :func:`check_writable`,
 :func:`check_output_dir`) for each output before any heavy work, so a path the system will
@@ -15,6 +15,7 @@ from __future__ import annotations
 import hashlib
 import os
 import tempfile
+import threading
 from pathlib import Path
 
 from seqgate.errors import BadInputError, OutputPathError
@@ -78,11 +79,36 @@ def check_writable(path: Path, force: bool, option: str = "output file") -> None
     check_output_path(path, option)
 
 
+_UMASK_LOCK = threading.Lock()
+
+
+def current_umask() -> int:
+    """The process umask, read without changing it where the system allows.
+
+    Linux ≥ 4.7 shows it in ``/proc/self/status`` (``Umask:`` line). Elsewhere the only way is
+    ``os.umask`` (set, then restore at once), done under a lock so two seqgate threads cannot
+    interleave; another library changing the umask in that instant is the remaining risk.
+    """
+    try:
+        with open("/proc/self/status", encoding="utf-8", errors="replace") as f:
+            for line in f:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    with _UMASK_LOCK:
+        mask = os.umask(0o022)
+        os.umask(mask)
+    return mask
+
+
 def write_atomic(path: str | os.PathLike[str], data: bytes) -> None:
     """Write ``data`` to ``path`` so that readers see the old file or the whole new one.
 
     The bytes go to a temp file in the same directory, are flushed and fsynced, then renamed
-    over the target (atomic on POSIX). On any failure the temp file is removed.
+    over the target (atomic on POSIX). On any failure the temp file is removed. The file gets
+    the mode a plain ``open(path, "w")`` would give, ``0o666 & ~umask`` (``mkstemp`` makes
+    ``0o600``, which a CI uploader or another account could not read).
     """
     target = Path(path)
     try:
@@ -91,6 +117,7 @@ def write_atomic(path: str | os.PathLike[str], data: bytes) -> None:
         raise OutputPathError(target, e) from e
     try:
         with os.fdopen(fd, "wb") as f:
+            os.fchmod(f.fileno(), 0o666 & ~current_umask())
             f.write(data)
             f.flush()
             os.fsync(f.fileno())

@@ -10,7 +10,9 @@ horizon ``H``; window ``i`` starts at row ``i·S``:
   ``[samples, steps, outputs]``, one target per step (sequence labelling);
   ``samples = ⌊(R − T)/S⌋ + 1``.
 
-``--columns`` defaults to every column not named in ``--targets``. Values are parsed as
+``--columns`` defaults to every column not named in ``--targets``. Column names must be
+unique in the header, and a column is a feature or a target, once: a repeated name is refused
+(which copy was meant cannot be known), and the command prints the columns it used. Values are parsed as
 float and stored as float32. Empty cells and NaN/Inf spellings are refused, as is any cell that
 is not a number; the error names the line of the file and the column. The NPZ is uncompressed
 (so ``seqgate verify`` can memory-map it) and holds ``windows``, ``targets`` when asked, and
@@ -49,6 +51,7 @@ def read_csv_columns(path: Path, wanted: list[str] | None,
     if not rows or not any(c.strip() for c in rows[0]):
         raise BadInputError(f"{path}: the CSV is empty; expected a header row of column names and data rows.")
     header = [c.strip() for c in rows[0]]
+    _refuse_repeats(path, header, wanted or [], targets)
     columns = wanted if wanted else [c for c in header if c not in targets]
     unknown = [c for c in [*columns, *targets] if c not in header]
     if unknown:
@@ -65,6 +68,25 @@ def read_csv_columns(path: Path, wanted: list[str] | None,
         for j, k in enumerate(index):
             data[r, j] = _cell(path, line, header[k], row[k])
     return columns, data
+
+
+def _refuse_repeats(path: Path, header: list[str], wanted: list[str], targets: list[str]) -> None:
+    """A name twice in the header, in --columns or --targets, or in both lists, is refused."""
+    seen: dict[str, int] = {}
+    for i, c in enumerate(header):
+        if c in seen:
+            raise BadInputError(
+                f"{path}: the header names column {c!r} twice (columns {seen[c] + 1} and {i + 1}); seqgate "
+                f"cannot tell which one is meant. Rename one of them in the CSV and run again.")
+        seen[c] = i
+    for flag, names in (("--columns", wanted), ("--targets", targets)):
+        twice = sorted({c for c in names if names.count(c) > 1})
+        if twice:
+            raise BadInputError(f"{flag} names column {twice[0]!r} more than once; name each column once.")
+    both = [c for c in wanted if c in targets]
+    if both:
+        raise BadInputError(f"column {both[0]!r} is in both --columns and --targets; a column is either a "
+                            f"feature or a target.")
 
 
 def _cell(path: Path, line: int, column: str, text: str) -> float:

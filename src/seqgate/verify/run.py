@@ -23,6 +23,12 @@ Contract:
 - Synthetic sets take their per-feature scale from the first recording.
 - The report never claims more than was compared: a file without a probe map is compared on
   outputs only and says so in ``warnings``.
+- Provenance (``seqgate.verify.provenance``): the sha256 of the given source and weights files
+  against those the ONNX file records; the result is the report's ``provenance`` section, and a
+  difference, or an untrained export, is also a warning. It does not change the verdict, which
+  is about what the files compute; the gate makes provenance its own check.
+- The ONNX file's inputs must be the source model's (names; ranks and fixed dims): a file whose
+  inputs or outputs do not fit is bad input (exit 2) naming what differs.
 """
 
 from __future__ import annotations
@@ -81,6 +87,7 @@ class VerifyReport:
     environment: dict[str, Any]
     oracle: dict[str, Any] | None = None
     warnings: list[str] = field(default_factory=list)
+    provenance: dict[str, Any] | None = None
 
     @property
     def exit_code(self) -> int:
@@ -103,6 +110,7 @@ class VerifyReport:
             "schema": SCHEMA, "passed": self.passed, "headline": self.headline(),
             "first_divergence": self.first_divergence, "tensors": self.tensors,
             "recordings": self.recordings, "model": self.model, "source": self.source,
+            "provenance": self.provenance,
             "seed": self.seed, "settings": self.settings, "oracle": self.oracle,
             "warnings": self.warnings, "environment": self.environment,
             "seqgate_version": self.environment.get("seqgate"),
@@ -122,16 +130,39 @@ def _class_outputs(model: Any) -> set[str]:
     return found
 
 
-def _check_framework(model: Any, src: Source, warnings: list[str]) -> None:
+def _check_interface(model: Any, src: Source, loaded: Any, recs: list[Recording], specs: list[InputSpec],
+                     onnx_runner: Any, label: str) -> None:
+    """The ONNX file's inputs/outputs against the source's (``seqgate.verify.interface``); exit 2."""
+    from seqgate.verify.interface import check_keras, check_torch
+
+    if src.framework == "keras":
+        check_keras(model, loaded, label, src.text)
+        return
+    feeds = None
+    if recs and recs[0].windows:
+        feeds = to_model_layout(next(iter(recs[0].batches(1)))[1], specs)
+    check_torch(model, loaded, feeds, onnx_runner, label, src.text)
+
+
+def _check_framework(model: Any, src: Source) -> None:
     meta = read_metadata(model)
     fw = meta.get("seqgate.source.framework")
     if fw and fw != src.framework:
         raise BadInputError(f"the ONNX file was exported from a {fw} model, but --source is a {src.framework} "
                             f"source ({src.text}). Verify against the model it was exported from.")
-    want = meta.get("seqgate.source.sha256")
-    if want and src.path is not None and src.path.is_file() and sha256_file(src.path) != want:
-        warnings.append(f"{src.path} differs from the file the ONNX model was exported from (sha256 in "
-                        f"the metadata); the comparison below says whether they still compute the same.")
+
+
+def _provenance(model: Any, src: Source, warnings: list[str]) -> dict[str, Any]:
+    from seqgate.verify.provenance import compare_provenance
+
+    prov = compare_provenance(model, src)
+    if prov["untrained"]:
+        warnings.append("UNTRAINED model: the ONNX file was exported from the factory's initial parameters "
+                        "without weights (--untrained).")
+    if prov["status"] == "differs":
+        warnings.append(f"provenance: {prov['detail']}; the comparison below says whether they still "
+                        f"compute the same.")
+    return prov
 
 
 def output_dims(model: Any) -> dict[str, list[Any]]:
@@ -165,6 +196,7 @@ class Comparer:
                           if s.is_sequence and isinstance(s.window_dims[1], str)}
         self.batch_dims = {s.window_dims[0] for s in specs if s.dims and isinstance(s.window_dims[0], str)}
         self.batch_axis: dict[str, int] = {}
+        self.where = ("the ONNX file", "the source")  # (model label, source text) for messages
 
     def _find_batch_axis(self, name: str, shape: tuple[int, ...], n: int) -> int:
         """Outputs may hold the windows on another axis (PyTorch ``h_n`` is ``[L·D, N, H]``)."""
@@ -222,7 +254,7 @@ class Comparer:
                 stats = self.new_stats(feeds, s)
             score = np.zeros(next(iter(feeds.values())).shape[0])
             for t in self.infos:
-                _check_shapes(t, a[t.name], s[t.name])
+                _check_shapes(t, a[t.name], s[t.name], self.where)
                 st = stats[t.name]
                 st.update(self.to_batch_major(t.name, a[t.name]), self.to_batch_major(t.name, s[t.name]), start)
                 if st.window_max is not None:
@@ -245,11 +277,13 @@ def _self_check(runner: Any, feeds: dict[str, np.ndarray[Any, Any]], got: dict[s
             "run with --no-states to compare outputs only, and report this model to the seqgate developers")])
 
 
-def _check_shapes(t: TensorInfo, a: np.ndarray[Any, Any], s: np.ndarray[Any, Any]) -> None:
+def _check_shapes(t: TensorInfo, a: np.ndarray[Any, Any], s: np.ndarray[Any, Any],
+                  where: tuple[str, str]) -> None:
+    """A tensor shaped differently on the two sides: the file does not fit the source (exit 2)."""
     if a.shape != s.shape:
-        raise UnsupportedModelError("the exported model", [Unsupported(
-            t.name, f"ONNX Runtime gives shape {list(a.shape)}, the source {list(s.shape)}",
-            "the file does not compute the same tensor as the source; export it again")])
+        from seqgate.verify.interface import shape_error
+
+        raise shape_error(t.name, a.shape, s.shape, *where)
 
 
 def _keep_worst(worst: list[Any], score: np.ndarray[Any, Any], start: int, feeds: dict[str, Any]) -> None:
@@ -329,7 +363,8 @@ def verify_model(
     model = load_onnx(path)
     src = source if isinstance(source, Source) else parse_source(source, weights)
     warnings: list[str] = []
-    _check_framework(model, src, warnings)
+    _check_framework(model, src)
+    prov = _provenance(model, src, warnings)
     probes = read_probe_map(model) if states else []
     if states and not probes:
         warnings.append("the ONNX file has no seqgate probe map: only the model outputs were compared.")
@@ -345,7 +380,11 @@ def verify_model(
 
     onnx_runner = OnnxRunner(model, probes)
     output_names = [o.name for o in model.graph.output]
-    src_runner = open_source_runner(src, probes, output_names, states)
+    from seqgate.runtimes.factory import load_source_model
+
+    loaded = load_source_model(src)
+    _check_interface(model, src, loaded, recs, specs, onnx_runner, str(path))
+    src_runner = open_source_runner(src, probes, output_names, states, loaded=loaded)
     if task == "classify":
         classes = set(output_names)
     elif task == "regress":
@@ -353,6 +392,7 @@ def verify_model(
     else:
         classes = _class_outputs(model)
     comparer = Comparer(infos, tol, classes, specs, output_dims(model))
+    comparer.where = (str(path), src.text)
     results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress or SILENT)
     entries = [_tensor_entry(t, results, comparer.batch_axis.get(t.name, 0)) for t in infos]
     first = _first_divergence(infos, results)
@@ -373,7 +413,7 @@ def verify_model(
                              "synthetic": synthetic, "task": task, "oracle": oracle,
                              "tolerances_file": tolerances,
                              "tolerance": [o.to_json() for o in tol.overrides]},
-        environment=env, oracle=oracle_out, warnings=warnings)
+        environment=env, oracle=oracle_out, warnings=warnings, provenance=prov)
 
 
 def _settings(args: dict[str, Any]) -> tuple[dict[str, Any], Tolerances]:
