@@ -151,3 +151,73 @@ def make_head_inside() -> nn.Module:
 
 def make_swapped() -> nn.Module:
     return _seeded(SwappedState(), 6)
+
+
+# ----- user-written cells ---------------------------------------------------------------------
+class PeepholeLSTMCell(nn.Module):
+    """LSTM with peepholes (Gers & Schmidhuber 2000): i, f see c_{t−1}; o sees c_t."""
+
+    def __init__(self, input_size: int, hidden: int) -> None:
+        super().__init__()
+        self.input_size = input_size
+        self.W = nn.Linear(input_size, 4 * hidden)
+        self.U = nn.Linear(hidden, 4 * hidden, bias=False)
+        self.w_ci = nn.Parameter(torch.zeros(hidden))
+        self.w_cf = nn.Parameter(torch.zeros(hidden))
+        self.w_co = nn.Parameter(torch.zeros(hidden))
+
+    def forward(self, x: Any, state: Any) -> Any:
+        h, c = state
+        i, f, g, o = (self.W(x) + self.U(h)).chunk(4, 1)
+        i = torch.sigmoid(i + self.w_ci * c)
+        f = torch.sigmoid(f + self.w_cf * c)
+        c = f * c + i * torch.tanh(g)
+        o = torch.sigmoid(o + self.w_co * c)
+        return o * torch.tanh(c), c
+
+
+class MinimalGatedUnit(nn.Module):
+    """Minimal gated unit: f = σ(W_f x + U_f h + b), h̃ = tanh(W_h x + U_h (f ⊙ h) + b), h' = (1−f) h + f h̃."""
+
+    def __init__(self, input_size: int, hidden: int) -> None:
+        super().__init__()
+        self.input_size = input_size
+        self.wf = nn.Linear(input_size, hidden)
+        self.uf = nn.Linear(hidden, hidden, bias=False)
+        self.wh = nn.Linear(input_size, hidden)
+        self.uh = nn.Linear(hidden, hidden, bias=False)
+
+    def forward(self, x: Any, h: Any) -> Any:
+        f = torch.sigmoid(self.wf(x) + self.uf(h))
+        cand = torch.tanh(self.wh(x) + self.uh(f * h))
+        return (1 - f) * h + f * cand
+
+
+class UserCellOverTime(nn.Module):
+    """A user cell run over the input's time axis from zero states."""
+
+    def __init__(self, cell: nn.Module, lstm_like: bool) -> None:
+        super().__init__()
+        self.cell = cell
+        self.lstm_like = lstm_like
+        self.fc = nn.Linear(H, 1)
+
+    def forward(self, x: Any) -> Any:
+        h = x.new_zeros(x.size(0), H)
+        c = torch.zeros_like(h)
+        outs = []
+        for t in range(x.size(1)):
+            if self.lstm_like:
+                h, c = self.cell(x[:, t], (h, c))
+            else:
+                h = self.cell(x[:, t], h)
+            outs.append(h)
+        return self.fc(torch.stack(outs, 1)), h
+
+
+def make_peephole() -> nn.Module:
+    return _seeded(UserCellOverTime(PeepholeLSTMCell(IN, H), True), 7)
+
+
+def make_mgu() -> nn.Module:
+    return _seeded(UserCellOverTime(MinimalGatedUnit(IN, H), False), 8)

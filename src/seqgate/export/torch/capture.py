@@ -73,7 +73,8 @@ def export_torch_module(
     label = label or type(module).__name__
     user = parse_input_options(inputs)
     plan = forward_params(module, user, label)
-    gm = _loop_capture(module, plan, user, label) if _has_cells(module) else trace(module, plan.concrete, label)
+    gm = _loop_capture(module, plan, user, label, []) if _has_cells(module) else _trace_or_loops(
+        module, plan, user, label)
     infer_inputs(gm, plan, user, label)
     metas, sa, sb = record_runs(gm, plan, label)
     b = GraphBuilder(opset, graph_name=type(module).__name__, framework="torch")
@@ -119,13 +120,26 @@ def _has_cells(module: Any) -> bool:
     return has_cells(module)
 
 
-def _loop_capture(module: Any, plan: Plan, user: dict[str, Any], label: str) -> Any:
+def _trace_or_loops(module: Any, plan: Plan, user: dict[str, Any], label: str) -> Any:
+    """fx's own trace; when it fails and user-written cells exist, the loop capture."""
+    from seqgate.export.torch.loops import user_cell_candidates
+
+    try:
+        return trace(module, plan.concrete, label)
+    except UnsupportedModelError:
+        cells = user_cell_candidates(module)
+        if not cells:
+            raise
+        return _loop_capture(module, plan, user, label, cells)
+
+
+def _loop_capture(module: Any, plan: Plan, user: dict[str, Any], label: str, cells: list[Any]) -> Any:
     """A forward that runs cells step by step: ``loops.loop_trace``; the sample dims become ``user``'s."""
-    from seqgate.export.torch.loops import is_cell, loop_trace, sample_inputs
+    from seqgate.export.torch.loops import loop_trace, sample_inputs
 
     dims = sample_inputs(module, plan.params, plan.concrete, user, label)
     user.update(dims)
-    return clean(loop_trace(module, tracer_class(), plan.concrete, plan.params, dims, is_cell, label), label)
+    return clean(loop_trace(module, tracer_class(), plan.concrete, plan.params, dims, cells, label), label)
 
 
 def clean(gm: Any, label: str) -> Any:

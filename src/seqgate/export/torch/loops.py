@@ -42,7 +42,22 @@ def has_cells(module: Any) -> bool:
     return any(isinstance(m, cell_classes()) for m in module.modules())
 
 
-def make_value_tracer(base: type, inputs: dict[str, Any]) -> Any:
+def user_cell_candidates(module: Any) -> list[Any]:
+    """Submodules written by the user whose ``forward`` takes an input and a state (≥ 2 parameters)."""
+    import inspect
+
+    out = []
+    for name, m in module.named_modules():
+        if not name or type(m).__module__.startswith("torch."):
+            continue
+        params = [p for p in inspect.signature(m.forward).parameters.values()
+                  if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD)]
+        if len(params) >= 2:
+            out.append(m)
+    return out
+
+
+def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int] = frozenset()) -> Any:
     """A tracer class derived from ``base`` (capture's leaf rules) that carries sample values."""
     import torch
     import torch.fx
@@ -78,6 +93,9 @@ def make_value_tracer(base: type, inputs: dict[str, Any]) -> Any:
 
         def proxy(self, node: Any) -> Any:
             return ValueProxy(node, self)
+
+        def is_leaf_module(self, m: Any, qualname: str) -> bool:
+            return id(m) in leaves or super().is_leaf_module(m, qualname)
 
         def call_module(self, m: Any, forward: Any, args: Any, kwargs: Any) -> Any:
             if self.computing:
@@ -142,8 +160,9 @@ def sample_inputs(module: Any, params: list[str], concrete: dict[str, Any],
     dims: dict[str, tuple[int | str, ...]] = {}
     guess: int | None = None
     for m in module.modules():
-        if isinstance(m, nn.RNNBase | nn.RNNCellBase):
-            guess = int(m.input_size)
+        size = getattr(m, "input_size", None)  # nn.RNNBase, nn.RNNCellBase, most hand-written cells
+        if isinstance(m, nn.RNNBase | nn.RNNCellBase) or (isinstance(size, int) and m is not module):
+            guess = int(size)  # type: ignore[arg-type]
             break
     missing = []
     for name in params:
@@ -164,18 +183,30 @@ def sample_inputs(module: Any, params: list[str], concrete: dict[str, Any],
 
 
 def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params: list[str],
-               dims: dict[str, tuple[int | str, ...]], is_cell: Any, label: str) -> Any:
-    """The folded GraphModule (module docstring: trace twice, fold, prove the graphs equal)."""
+               dims: dict[str, tuple[int | str, ...]], user_cells: list[Any], label: str) -> Any:
+    """The folded GraphModule (module docstring: trace twice, fold, prove the graphs equal).
+
+    ``user_cells`` are traced as leaves; one that is not part of a folded loop is traced again
+    inlined (a shared block called twice stays an ordinary part of the graph).
+    """
     from seqgate.export.torch.inputs import InputSpec, Plan, sample_args, symbol_values
-    from seqgate.export.torch.loopfold import canonical, fold_loops
+    from seqgate.export.torch.loopfold import canonical, cell_loop_class, fold_loops
 
     specs = [InputSpec(n, d) for n, d in dims.items()]
     plan = Plan(params=params, concrete=concrete, inputs=specs)
-    graphs = []
+    leaves = frozenset(id(m) for m in user_cells)
+    graphs: list[Any] = []
     for sizes, seed in zip(symbol_values(specs), (0, 1), strict=True):
         args = dict(zip(params, sample_args(plan, sizes, seed), strict=True))
-        gm, values = _trace_once(module, base_tracer, args, concrete, label)
-        fold_loops(gm, values, is_cell, label)
+        for _ in range(2):
+            gm, values = _trace_once(module, make_value_tracer(base_tracer, args, leaves), concrete, label)
+            fold_loops(gm, values, lambda m: isinstance(m, cell_classes()) or id(m) in leaves, label)
+            left = {id(gm.get_submodule(n.target)) for n in gm.graph.nodes
+                    if n.op == "call_module" and id(gm.get_submodule(n.target)) in leaves
+                    and not isinstance(gm.get_submodule(n.target), cell_loop_class())}
+            if not left:
+                break
+            leaves = leaves - left
         graphs.append(gm)
     a, b = canonical(graphs[0]), canonical(graphs[1])
     if a != b:
@@ -183,13 +214,13 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     return graphs[0]
 
 
-def _trace_once(module: Any, base_tracer: type, inputs: dict[str, Any], concrete: dict[str, Any],
+def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
                 label: str) -> tuple[Any, dict[Any, Any]]:
     import torch.fx
 
     from seqgate.export.torch.capture import _untraceable
 
-    tracer = make_value_tracer(base_tracer, inputs)()
+    tracer = tracer_cls()
     tracer.record_stack_traces = True
     try:
         with _factories_recorded(tracer):
@@ -243,7 +274,3 @@ def _difference(ga: Any, gb: Any, a: list[Any], b: list[Any]) -> Unsupported:
 
 
 
-
-def is_cell(m: Any) -> bool:
-    """Is ``m`` a module whose repeated calls may form a loop (built-in cells)?"""
-    return isinstance(m, cell_classes())
