@@ -200,7 +200,7 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
         args = dict(zip(params, sample_args(plan, sizes, seed), strict=True))
         for _ in range(2):
             gm, values = _trace_once(module, make_value_tracer(base_tracer, args, leaves), concrete, label)
-            fold_loops(gm, values, lambda m: isinstance(m, cell_classes()) or id(m) in leaves, label)
+            fold_loops(gm, values, lambda m, ls=leaves: isinstance(m, cell_classes()) or id(m) in ls, label)
             left = {id(gm.get_submodule(n.target)) for n in gm.graph.nodes
                     if n.op == "call_module" and id(gm.get_submodule(n.target)) in leaves
                     and not isinstance(gm.get_submodule(n.target), cell_loop_class())}

@@ -72,7 +72,7 @@ def user_cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
     seq = b.fresh("sequence")
     b.node("Scan", [s.name for s in states] + [x.name], [*finals, seq], body=body,
            num_scan_inputs=1, scan_input_axes=[m.axis], scan_output_axes=[m.seq_dim])
-    _probes(b, m, b.last_node_name, seq, finals, out_paths, seq_path)
+    _probes(b, m, seq, finals, out_paths, seq_path)
     last = _structure(out_paths, finals)
     return (seq if m.seq_path is not None else None, last)
 
@@ -95,7 +95,7 @@ def _body(b: GraphBuilder, m: Any, x: TV, states: list[TV], carried: list[tuple[
           seq_index: int) -> Any:
     """The Scan body: the cell's traced forward, walked into its own graph."""
     from seqgate.export.torch.capture import _Walk, clean, tracer_class
-    from seqgate.export.torch.inputs import InputSpec, Plan, forward_params, record_runs
+    from seqgate.export.torch.inputs import InputSpec, forward_params, record_runs
 
     label = f"{m.cell_name} ({type(m.cell).__name__})"
     plan = forward_params(m.cell, {}, label)
@@ -178,7 +178,7 @@ def _prefix_names(graph: Any, prefix: str) -> None:
         node.output[:] = [p(o) for o in node.output]
 
 
-def _probes(b: GraphBuilder, m: Any, scan: str, seq: str, finals: list[str], paths: list[Path],
+def _probes(b: GraphBuilder, m: Any, seq: str, finals: list[str], paths: list[Path],
             seq_path: Path) -> None:
     """Per-step and final state probes on the Scan's outputs (Unsqueeze adds the direction axis)."""
     src = {"framework": "torch", "module": m.cell_name, "module_type": type(m.cell).__name__,
@@ -188,13 +188,12 @@ def _probes(b: GraphBuilder, m: Any, scan: str, seq: str, finals: list[str], pat
         src["c_path"] = list(others[0])
     seq_axis = 2 if m.seq_dim == 1 else 1
     y = b.unsqueeze(seq, [seq_axis])
-    kinds = [("hidden_sequence", y, "NTDH" if m.seq_dim == 1 else "TNDH", b.last_node_name),
-             ("hidden_final", b.unsqueeze(finals[paths.index(seq_path)], [1]), "NDH", "")]
-    kinds[1] = (*kinds[1][:3], b.last_node_name)
+    kinds = [("hidden_sequence", y, "NTDH" if m.seq_dim == 1 else "TNDH", b.last_node_name)]
+    h = b.unsqueeze(finals[paths.index(seq_path)], [1])
+    kinds.append(("hidden_final", h, "NDH", b.last_node_name))
     if others:
         c = b.unsqueeze(finals[paths.index(others[0])], [1])
         kinds.append(("cell_final", c, "NDH", b.last_node_name))
     for kind, value, axes, node in kinds:
         b.probe(Probe(name=f"{m.cell_name}/forward/{kind}", kind=kind, layer=m.cell_name, direction="forward",
                       direction_index=0, node=node, output_index=0, value=value, axes=axes, source=src))
-    del scan
