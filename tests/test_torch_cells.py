@@ -19,6 +19,7 @@ from onnx.reference import ReferenceEvaluator
 from typer.testing import CliRunner
 
 import torch_cell_models as M
+from reference_equations import onnx_lstm
 from seqgate.cli.app import app
 from seqgate.errors import UnsupportedModelError
 from seqgate.onnxfile.probes import read_probe_map, to_canonical, with_probe_outputs
@@ -187,3 +188,60 @@ def test_cli_export_and_verify_cell_models(tmp_path: Path, factory: str) -> None
     r = runner.invoke(app, ["verify", str(tmp_path / "m.onnx"), "--source", src, "--weights",
                             str(tmp_path / "w.pt"), "--synthetic", "--quiet"])
     assert r.exit_code == 0, r.output
+
+
+# ----- user-written cells: an ONNX Scan whose body is the cell's step ---------------------------
+def _user_run(factory: Any, t: int, seed: int) -> tuple[Any, Any, np.ndarray, list[np.ndarray]]:
+    m = factory()
+    model = export(m)
+    x = _x(seed, 2, t)
+    got = run_onnx(model, {"x": x})
+    worst(torch_outputs(m, {"x": x}), got)
+    return m, model, x, got
+
+
+def blocks(a: np.ndarray) -> np.ndarray:
+    """The cell's gate blocks i, f, g, o in the ONNX LSTM order i, o, f, c (operator spec)."""
+    return np.concatenate([np.split(a, 4)[k] for k in (0, 3, 1, 2)])
+
+
+def test_peephole_lstm_cell_scan_matches_the_published_equations() -> None:
+    for t in (4, 23):
+        m, model, x, got = _user_run(M.make_peephole, t, t)
+        assert "Scan" in _ops(model) and "LSTM" not in _ops(model)
+        # ONNX LSTM spec with peepholes P = [Pi, Po, Pf] (Gers & Schmidhuber 2000: i, f see C_{t−1},
+        # o sees C_t), NumPy float64 in reference_equations; the cell's blocks are i, f, g, o.
+        cell = m.cell
+        wx = cell.W.weight.detach().numpy().astype(np.float64)
+        wh = cell.U.weight.detach().numpy().astype(np.float64)
+        bx = cell.W.bias.detach().numpy().astype(np.float64)
+        p = np.concatenate([cell.w_ci.detach().numpy(), cell.w_co.detach().numpy(), cell.w_cf.detach().numpy()])
+        y, y_h, _ = onnx_lstm(x.transpose(1, 0, 2), blocks(wx)[None], blocks(wh)[None],
+                              np.concatenate([blocks(bx), np.zeros(4 * M.H)])[None], P=p[None])
+        seq = y[:, 0].transpose(1, 0, 2)
+        fc_w, fc_b = m.fc.weight.detach().numpy(), m.fc.bias.detach().numpy()
+        worst([seq @ fc_w.T + fc_b, y_h[0]], got)
+
+
+def test_minimal_gated_unit_scan_matches_its_equations() -> None:
+    m, model, x, got = _user_run(M.make_mgu, 9, 1)
+    assert "Scan" in _ops(model)
+    c = m.cell
+    w = {k: v.detach().numpy().astype(np.float64) for k, v in c.state_dict().items()}
+    h = np.zeros((2, M.H))
+    for k in range(9):  # minimal gated unit (Zhou et al. 2016), as written in the cell's docstring
+        xt = x[:, k].astype(np.float64)
+        f = 1 / (1 + np.exp(-(xt @ w["wf.weight"].T + w["wf.bias"] + h @ w["uf.weight"].T)))
+        cand = np.tanh(xt @ w["wh.weight"].T + w["wh.bias"] + (f * h) @ w["uh.weight"].T)
+        h = (1 - f) * h + f * cand
+    worst([h], [got[1]])
+
+
+def test_near_miss_tanh_forget_gate_is_not_an_lstm_node() -> None:
+    _, model, _, _ = _user_run(M.make_tanh_forget, 7, 2)  # exact against torch (checked inside)
+    assert "LSTM" not in _ops(model) and "Scan" in _ops(model)
+
+
+@pytest.mark.parametrize("factory", ["make_peephole", "make_mgu"])
+def test_cli_verify_user_cells_with_state_probes(tmp_path: Path, factory: str) -> None:
+    test_cli_export_and_verify_cell_models(tmp_path, factory)

@@ -221,3 +221,20 @@ def make_peephole() -> nn.Module:
 
 def make_mgu() -> nn.Module:
     return _seeded(UserCellOverTime(MinimalGatedUnit(IN, H), False), 8)
+
+
+class TanhForgetCell(PeepholeLSTMCell):
+    """A near miss: the "forget gate" uses tanh, so this is not an LSTM."""
+
+    def forward(self, x: Any, state: Any) -> Any:
+        h, c = state
+        i, f, g, o = (self.W(x) + self.U(h)).chunk(4, 1)
+        i = torch.sigmoid(i + self.w_ci * c)
+        f = torch.tanh(f + self.w_cf * c)
+        c = f * c + i * torch.tanh(g)
+        o = torch.sigmoid(o + self.w_co * c)
+        return o * torch.tanh(c), c
+
+
+def make_tanh_forget() -> nn.Module:
+    return _seeded(UserCellOverTime(TanhForgetCell(IN, H), True), 9)
