@@ -40,6 +40,7 @@ import numpy as np
 
 from seqgate.errors import Unsupported, UnsupportedModelError
 from seqgate.onnxfile.probes import Probe
+from seqgate.runtimes.torch_cells import cell_probe_value, is_cell_probe
 from seqgate.util.outputs import flatten_outputs
 
 SELF_CHECK_ATOL = 1e-5
@@ -70,7 +71,7 @@ class TorchRunner:
         self._seqs: dict[str, list[list[Any]]] = {}
         self._recording = False  # hooks and the stacked decomposition act inside run() only
         self._threads = 0
-        self._stacked = sorted(w for w in wanted if int(self._mods[w].num_layers) > 1)
+        self._stacked = sorted(w for w in wanted if int(getattr(self._mods[w], "num_layers", 1)) > 1)
         for name in wanted:
             self._mods[name].register_forward_hook(self._hook(name), with_kwargs=True)
         for name in self._stacked:
@@ -136,9 +137,12 @@ class TorchRunner:
             src = p.source
             name, call = src.get("module", p.layer), int(src.get("call_index", 0))
             calls = self._calls.get(name, [])
-            if call >= len(calls):
+            if call >= len(calls) and not is_cell_probe(p):
                 raise UnsupportedModelError(name, [Unsupported(
                     name, f"call {call} of the module did not happen in forward", "export the model again")])
+            if is_cell_probe(p):
+                found[p.name] = cell_probe_value(p, calls)
+                continue
             out = calls[call][2]
             m = self._mods[name]
             d_all, h = (2 if m.bidirectional else 1), m.hidden_size

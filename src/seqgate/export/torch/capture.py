@@ -76,14 +76,15 @@ def export_torch_module(
     label = label or type(module).__name__
     user = parse_input_options(inputs)
     plan = forward_params(module, user, label)
-    gm = trace(module, plan.concrete, label)
+    gm = _loop_capture(module, plan, user, label, []) if _has_cells(module) else _trace_or_loops(
+        module, plan, user, label)
     infer_inputs(gm, plan, user, label)
     metas, sa, sb = record_runs(gm, plan, label)
     b = GraphBuilder(opset, graph_name=type(module).__name__, framework="torch")
     walk = _Walk(b, gm, metas)
     result = walk.run(plan)
-    if walk.problems:
-        raise UnsupportedModelError(label, walk.problems)
+    if walk.problems:  # a refused step inside an unrolled loop is reported once, not once per step
+        raise UnsupportedModelError(label, list(dict.fromkeys(walk.problems)))
     _declare_outputs(b, result, metas.get(_output_node(gm).name), plan, sa, sb, label)
     return b.build(metadata)
 
@@ -91,7 +92,20 @@ def export_torch_module(
 # ----- tracing ----------------------------------------------------------------------------
 def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
     """``torch.fx`` GraphModule of ``module`` with asserts on fixed defaults and dead code removed."""
-    import torch
+    import torch.fx
+
+    tracer = tracer_class()()
+    tracer.record_stack_traces = True
+    try:
+        graph = tracer.trace(module, concrete_args=dict(concrete) or None)
+        gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
+    except Exception as e:
+        raise UnsupportedModelError(label, [_untraceable(module, e)]) from None
+    return clean(gm, label)
+
+
+def tracer_class() -> type:
+    """The fx tracer: modules with a mapping (``module_mapping``) are leaves."""
     import torch.fx
 
     from seqgate.export.torch.modules import module_mapping
@@ -100,13 +114,40 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
         def is_leaf_module(self, m: Any, qualname: str) -> bool:
             return super().is_leaf_module(m, qualname) or module_mapping(m) is not None
 
-    tracer = Tracer()
-    tracer.record_stack_traces = True
+    return Tracer
+
+
+def _has_cells(module: Any) -> bool:
+    from seqgate.export.torch.loops import has_cells
+
+    return has_cells(module)
+
+
+def _trace_or_loops(module: Any, plan: Plan, user: dict[str, Any], label: str) -> Any:
+    """fx's own trace; when it fails and user-written cells exist, the loop capture."""
+    from seqgate.export.torch.loops import user_cell_candidates
+
     try:
-        graph = tracer.trace(module, concrete_args=dict(concrete) or None)
-        gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
-    except Exception as e:
-        raise UnsupportedModelError(label, [_untraceable(module, e)]) from None
+        return trace(module, plan.concrete, label)
+    except UnsupportedModelError:
+        cells = user_cell_candidates(module)
+        if not cells:
+            raise
+        return _loop_capture(module, plan, user, label, cells)
+
+
+def _loop_capture(module: Any, plan: Plan, user: dict[str, Any], label: str, cells: list[Any]) -> Any:
+    """A forward that runs cells step by step: ``loops.loop_trace``; the sample dims become ``user``'s."""
+    from seqgate.export.torch.loops import loop_trace, sample_inputs
+
+    dims = sample_inputs(module, plan.params, plan.concrete, user, label)
+    user.update(dims)
+    return clean(loop_trace(module, tracer_class(), plan.concrete, plan.params, dims, cells, label), label)
+
+
+def clean(gm: Any, label: str) -> Any:
+    """Drop asserts on fixed defaults, refuse dropped in-place ops, remove dead code."""
+    import torch
     asserts = {torch._assert, torch.fx._symbolic_trace._assert_is_none}
     for n in list(gm.graph.nodes):
         if n.op == "call_function" and n.target in asserts:

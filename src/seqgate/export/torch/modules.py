@@ -312,4 +312,6 @@ def module_mapping(m: Any) -> Any:
     for base in cls.__mro__[1:]:
         if base in MODULES and cls.forward is base.forward:
             return MODULES[base]
-    return None
+    from seqgate.export.torch.cells import cell_mapping
+
+    return cell_mapping(m)

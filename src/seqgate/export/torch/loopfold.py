@@ -1,0 +1,382 @@
+"""Fold an unrolled loop of cell calls into one :class:`CellLoop` leaf (structural proof only).
+
+A *chain* is a run of calls ``c_0 … c_{K−1}`` of one cell module where every ``c_{k+1}`` reads
+its state only from ``c_k``'s output, through the same index paths each step (``(h, c) =
+cell(x_t, (h, c))`` reads paths (0,) and (1,); ``h = cell(x_t, h)`` reads path ()). A chain is
+a loop over time, and is folded, when all of this holds:
+
+- ``c_k``'s input is step k of one tensor X along axis a ∈ {0, 1}: ``X[:, k]``, ``X[k]``,
+  ``X.select(a, k)`` or element k of ``X.unbind(a)``, for k = 0 … K−1 in order, and K is X's size
+  along a in the traced sample;
+- the outputs of ``c_k`` (k < K−1) are read only by ``c_{k+1}`` and by one collector of every
+  step's output: ``torch.stack([o_0 … o_{K−1}], dim)`` or ``torch.cat([o_k.unsqueeze(d) …], d)``
+  (o_k the same index path of every ``c_k``); ``c_{K−1}``'s outputs may be read by anything.
+
+The chain becomes ``loop = CellLoop(cell)(X, *initial state leaves)``; ``loop[0]`` replaces the
+collector and ``loop[1]`` the last call's output (same structure as the cell's output). A chain
+whose inputs are time steps of X but which breaks another rule is refused with what differs;
+any other chain stays unrolled (a decoder fed its own prediction).
+"""
+
+from __future__ import annotations
+
+import operator
+from dataclasses import dataclass
+from typing import Any
+
+from seqgate.errors import Unsupported, UnsupportedModelError
+
+Path = tuple[int, ...]
+
+
+def _cell_loop_class() -> type:
+    import torch
+    from torch import nn
+
+    class CellLoop(nn.Module):
+        """``cell`` run over ``x`` along ``axis``; returns (stacked step outputs or None, last output).
+
+        ``template["first"]`` is the structure of step 0's state arguments with ``("init", j)``
+        for the j-th initial leaf; ``template["later"]`` that of later steps with ``("path", p)``
+        for path p into the previous step's output.
+        """
+
+        def __init__(self, cell: Any, cell_name: str, axis: int, template: Any, seq_path: Path | None,
+                     seq_dim: int, calls: tuple[int, int]) -> None:
+            super().__init__()
+            self.cell = cell
+            self.cell_name = cell_name
+            self.axis = axis
+            self.template = template
+            self.seq_path = seq_path
+            self.seq_dim = seq_dim
+            self.calls = calls
+
+        def forward(self, x: Any, *init: Any) -> Any:
+            out: Any = None
+            seq = []
+            for t in range(x.size(self.axis)):
+                state = _fill(self.template["first" if t == 0 else "later"], init, out)
+                out = self.cell(x.select(self.axis, t), *state)
+                if self.seq_path is not None:
+                    seq.append(_at(out, self.seq_path))
+            return (torch.stack(seq, self.seq_dim) if seq else None), out
+
+    return CellLoop
+
+
+_CLASS: list[type] = []
+
+
+def cell_loop_class() -> type:
+    """The :class:`CellLoop` module class (made once, after torch is imported)."""
+    if not _CLASS:
+        _CLASS.append(_cell_loop_class())
+    return _CLASS[0]
+
+
+def _fill(template: Any, init: Any, prev: Any) -> Any:
+    if isinstance(template, tuple) and len(template) == 2 and template[0] in ("init", "path"):
+        return init[template[1]] if template[0] == "init" and init is not None else (
+            _at(prev, template[1]) if template[0] == "path" else None)
+    if isinstance(template, list):
+        return [_fill(t, init, prev) for t in template]
+    if isinstance(template, tuple):
+        return tuple(_fill(t, init, prev) for t in template)
+    return template
+
+
+def _at(v: Any, path: Path) -> Any:
+    for i in path:
+        v = v[i]
+    return v
+
+
+# ----- recognising the parts of a chain -------------------------------------------------------
+def _is_getitem(n: Any) -> bool:
+    return n.op == "call_function" and n.target is operator.getitem
+
+
+def _path_of(n: Any, root: Any) -> Path | None:
+    """Index path from ``root`` to ``n`` through getitem nodes, or None."""
+    path: list[int] = []
+    while n is not root:
+        if not (hasattr(n, "op") and _is_getitem(n) and isinstance(n.args[1], int)):
+            return None
+        path.append(n.args[1])
+        n = n.args[0]
+    return tuple(reversed(path))
+
+
+def _time_step(n: Any) -> tuple[Any, int, int] | None:
+    """(X, axis, k) when ``n`` is step k of X along axis 0 or 1, else None."""
+    import torch
+
+    if not hasattr(n, "op"):
+        return None
+    if _is_getitem(n):
+        src, idx = n.args
+        if isinstance(idx, int) and getattr(src, "op", "") in ("call_method", "call_function") and (
+                src.target in ("unbind", torch.unbind)):
+            axis = src.args[1] if len(src.args) > 1 else src.kwargs.get("dim", 0)
+            return (src.args[0], axis, idx) if axis in (0, 1) else None
+        if isinstance(idx, int):
+            return src, 0, idx
+        if isinstance(idx, tuple):
+            full = slice(None, None, None)
+            ints = [(a, i) for a, i in enumerate(idx) if isinstance(i, int)]
+            rest_ok = all(i == full or i is Ellipsis for i in idx if not isinstance(i, int))
+            if len(ints) == 1 and rest_ok and ints[0][0] in (0, 1) and Ellipsis not in idx[:ints[0][0]]:
+                return src, ints[0][0], ints[0][1]
+        return None
+    if n.target in ("select", torch.select) and len(n.args) == 3:
+        _, axis, k = n.args
+        if axis in (0, 1) and isinstance(k, int):
+            return n.args[0], axis, k
+    return None
+
+
+def _leaves(a: Any, out: list[Any]) -> Any:
+    """Replace fx nodes in ``a`` by ("leaf", j) and collect them."""
+    if hasattr(a, "op"):
+        out.append(a)
+        return ("leaf", len(out) - 1)
+    if isinstance(a, list):
+        return [_leaves(x, out) for x in a]
+    if isinstance(a, tuple):
+        return tuple(_leaves(x, out) for x in a)
+    return a
+
+
+def _state_args(call: Any) -> Any:
+    if call.kwargs:
+        return None  # keyword state arguments: not a recognised loop form
+    return tuple(call.args[1:])
+
+
+@dataclass
+class _Chain:
+    calls: list[Any]
+    paths: list[Path]  # state leaf j of c_{k+1} is paths[j] into c_k
+    template_args: Any  # state args of c_k (k ≥ 1) with leaves numbered
+
+
+def _chains(calls: list[Any]) -> list[_Chain]:
+    """Split the calls of one cell into maximal chains (module docstring)."""
+    chains: list[_Chain] = []
+    cur: _Chain | None = None
+    for c in calls:
+        leaves: list[Any] = []
+        shape = _leaves(_state_args(c), leaves)
+        paths = [_path_of(leaf, cur.calls[-1]) for leaf in leaves] if cur else []
+        if (cur is not None and leaves and all(p is not None for p in paths)
+                and (len(cur.calls) == 1 or (paths == cur.paths and shape == cur.template_args))):
+            if len(cur.calls) == 1:
+                cur.paths, cur.template_args = paths, shape  # type: ignore[assignment]
+            cur.calls.append(c)
+            continue
+        cur = _Chain([c], [], None)
+        chains.append(cur)
+    return chains
+
+
+# ----- folding ---------------------------------------------------------------------------------
+def fold_loops(gm: Any, values: dict[Any, Any], is_cell: Any, label: str) -> None:
+    """Fold every chain that is a loop over time (module docstring); refuse a near miss."""
+    by_target: dict[str, list[Any]] = {}
+    for n in gm.graph.nodes:
+        if n.op == "call_module" and is_cell(gm.get_submodule(n.target)):
+            by_target.setdefault(str(n.target), []).append(n)
+    problems: list[Unsupported] = []
+    for target, calls in by_target.items():
+        folded = 0
+        for chain in _chains(calls):
+            steps = [_time_step(c.args[0]) if c.args else None for c in chain.calls]
+            if not _walks_time(steps, values):
+                continue
+            why = _blocker(chain)
+            if why is not None:
+                problems.append(Unsupported(_where(gm, chain.calls[0]), why, _HINT))
+                continue
+            folded += 1
+            if folded > 1:
+                problems.append(Unsupported(_where(gm, chain.calls[0]), "the cell runs in two loops over time",
+                                            "give each loop its own cell module"))
+                continue
+            before = calls.index(chain.calls[0])
+            after = len(calls) - 1 - calls.index(chain.calls[-1])
+            _rewrite(gm, target, chain, steps[0][:2], (before, after))  # type: ignore[index]
+    if problems:
+        raise UnsupportedModelError(label, problems)
+    gm.graph.lint()
+    gm.recompile()
+
+
+_HINT = ("write the step as `h, c = cell(x[:, t], (h, c))` (or `h = cell(x[:, t], h)`), collect the "
+         "outputs with `outs.append(h)` and `torch.stack(outs, 1)`, and apply other layers after the loop")
+
+
+def _walks_time(steps: list[Any], values: dict[Any, Any]) -> bool:
+    if len(steps) < 2 or any(s is None for s in steps):
+        return False
+    x, axis = steps[0][0], steps[0][1]
+    if any(s[0] is not x or s[1] != axis or s[2] != k for k, s in enumerate(steps)):
+        return False
+    v = values.get(x)
+    return v is not None and hasattr(v, "shape") and v.dim() >= 2 and int(v.shape[axis]) == len(steps)
+
+
+def _where(gm: Any, n: Any) -> str:
+    from seqgate.export.torch.values import source_line
+
+    line = source_line(n)
+    return f"{n.target} ({type(gm.get_submodule(n.target)).__name__}) in a loop over time" + (
+        f" at {line}" if line else "")
+
+
+def _readers(n: Any, path: Path = ()) -> list[tuple[Path, Any]]:
+    """(path, node) for every reader of ``n``'s output that is not a getitem into it."""
+    out: list[tuple[Path, Any]] = []
+    for u in n.users:
+        if _is_getitem(u) and u.args[0] is n and isinstance(u.args[1], int):
+            out.extend(_readers(u, (*path, u.args[1])))
+        else:
+            out.append((path, u))
+    return out
+
+
+def _collector(chain: _Chain) -> tuple[Any, Path, int, list[Any]] | str | None:
+    """The node that collects every step's output: (node, path, dim, unsqueeze nodes)."""
+    import torch
+
+    first = [(p, u) for p, u in _readers(chain.calls[0]) if u is not chain.calls[1]]
+    if not first:
+        return None
+    if len(first) > 1:
+        return "more than one"
+    path, u = first[0]
+    unsq: list[Any] = []
+    if (u.op, u.target) in (("call_method", "unsqueeze"), ("call_function", torch.unsqueeze)):
+        d = u.args[1] if len(u.args) > 1 else u.kwargs.get("dim")
+        if len(u.users) != 1:
+            return "more than one"
+        unsq, u = [u], next(iter(u.users))
+        want = torch.cat
+    else:
+        d, want = None, torch.stack
+    if u.op != "call_function" or u.target not in (want, torch.stack, torch.cat) or u.target is not want:
+        return f"{getattr(u.target, '__name__', u.target)}"
+    items = u.args[0] if u.args else u.kwargs.get("tensors")
+    dim = u.args[1] if len(u.args) > 1 else u.kwargs.get("dim", 0)
+    if not isinstance(items, list | tuple) or len(items) != len(chain.calls) or (d is not None and d != dim):
+        return "a collection that is not every step's output"
+    for k, (item, c) in enumerate(zip(items, chain.calls, strict=True)):
+        node = item
+        if d is not None:
+            if not (hasattr(item, "op") and item.args and d in (*item.args[1:2], item.kwargs.get("dim"))):
+                return "a collection that is not every step's output"
+            unsq.append(item) if k else None
+            node = item.args[0]
+        if _path_of(node, c) != path:
+            return "a collection that is not every step's output"
+    return u, path, int(dim), unsq
+
+
+def _blocker(chain: _Chain) -> str | None:
+    """Why a chain over the time axis cannot be one op (None when it can)."""
+    col = _collector(chain)
+    if isinstance(col, str):
+        return f"a step's output is read by {col} inside the loop"
+    allowed = {chain.calls[k + 1] for k in range(len(chain.calls) - 1)}
+    if col is not None:
+        allowed |= {col[0], *col[3]}
+    for k, c in enumerate(chain.calls[:-1]):
+        for _, u in _readers(c):
+            if u not in allowed:
+                return f"the state of step {k} is also read by {u.name} ({u.target}) inside the loop"
+    return None
+
+
+def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls: tuple[int, int]) -> None:
+    x, axis = x_axis
+    c0, last = chain.calls[0], chain.calls[-1]
+    init: list[Any] = []
+    template0 = _leaves(_state_args(c0), init)
+    template = _template(template0, chain)
+    col = _collector(chain)
+    seq_path, seq_dim = (col[1], col[2]) if isinstance(col, tuple) else (None, 0)
+    cls = cell_loop_class()
+    name = f"{target.replace('.', '_')}_loop"
+    gm.add_submodule(name, cls(gm.get_submodule(target), target, axis, template, seq_path, seq_dim, calls))
+    g = gm.graph
+    with g.inserting_before(c0):
+        loop = g.call_module(name, (x, *init))
+        loop.meta = dict(c0.meta)
+        seq = g.call_function(operator.getitem, (loop, 0))
+        fin = g.call_function(operator.getitem, (loop, 1))
+    if isinstance(col, tuple):
+        col[0].replace_all_uses_with(seq)
+        g.erase_node(col[0])
+        for u in col[3]:
+            g.erase_node(u)
+    last.replace_all_uses_with(fin)
+    for c in reversed(chain.calls):
+        _erase_tree(g, c)
+    g.eliminate_dead_code()
+
+
+def _template(template0: Any, chain: _Chain) -> Any:
+    """Step-0 argument structure with ("init", j) leaves, checked against later steps' paths."""
+    def conv(t: Any) -> Any:
+        if isinstance(t, tuple) and len(t) == 2 and t[0] == "leaf":
+            return ("init", t[1])
+        if isinstance(t, list | tuple):
+            return type(t)(conv(x) for x in t)
+        return t
+
+    def later(t: Any) -> Any:
+        if isinstance(t, tuple) and len(t) == 2 and t[0] == "leaf":
+            return ("path", chain.paths[t[1]])
+        if isinstance(t, list | tuple):
+            return type(t)(later(x) for x in t)
+        return t
+
+    return {"first": conv(template0), "later": later(chain.template_args)}
+
+
+def _erase_tree(g: Any, n: Any) -> None:
+    for u in list(n.users):
+        if _is_getitem(u):
+            _erase_tree(g, u)
+    if not n.users:
+        g.erase_node(n)
+
+
+def canonical(gm: Any) -> list[Any]:
+    """The graph as comparable tuples: op, target, arguments with nodes as positions."""
+    import torch
+
+    pos = {n: i for i, n in enumerate(gm.graph.nodes)}
+
+    def arg(a: Any) -> Any:
+        if hasattr(a, "op"):
+            return ("node", pos[a])
+        if isinstance(a, list | tuple):
+            return (type(a).__name__, *[arg(x) for x in a])
+        if isinstance(a, dict):
+            return ("dict", *sorted((k, arg(v)) for k, v in a.items()))
+        if isinstance(a, slice):
+            return ("slice", arg(a.start), arg(a.stop), arg(a.step))
+        return repr(a)
+
+    out = []
+    for n in gm.graph.nodes:
+        target = n.target if isinstance(n.target, str) else getattr(n.target, "__qualname__", repr(n.target))
+        extra: Any = None
+        if n.op == "get_attr":
+            obj: Any = gm
+            for part in str(n.target).split("."):
+                obj = getattr(obj, part)
+            extra = tuple(obj.shape) if isinstance(obj, torch.Tensor) else repr(obj)
+        out.append((n.op, target, arg(n.args), arg(n.kwargs), extra))
+    return out

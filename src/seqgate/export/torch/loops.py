@@ -1,0 +1,276 @@
+"""Capture of a ``forward`` that runs a recurrent cell in a Python loop over time.
+
+``torch.fx.symbolic_trace`` cannot follow ``for t in range(x.size(1))`` (a traced size is not a
+Python int). This module traces such a forward with a :class:`ValueTracer`: every fx proxy
+also carries the value the op gives on a concrete sample input, so a size used as a Python
+number (``range(x.size(1))``, ``len(x)``, ``for x_t in x.unbind(1)``) becomes that number and
+the loop unrolls. Cell modules (``nn.LSTMCell``/``GRUCell``/``RNNCell``) stay leaves.
+
+Contract (the proof that the unrolled loop is one recurrent op over a dynamic time axis):
+
+1. the forward is traced twice, at two different batch sizes and sequence lengths
+   (``inputs.SAMPLE_A``/``SAMPLE_B``);
+2. in each trace, ``loopfold.fold_loops`` replaces every run of cell calls that is exactly
+   ``state_{t+1} = cell(X[:, t], state_t)`` for t = 0..T−1 (T = X's time size) by one
+   :class:`~seqgate.export.torch.loopfold.CellLoop` leaf (module docstring there);
+3. the two folded graphs must be the same graph (same ops, targets, constants and wiring).
+   A size of the sample that leaked into the graph as a constant (a loop over time that was
+   not folded, ``torch.zeros(3, 16)`` from a batch size) makes them differ, and the export is
+   refused naming the first differing line — never exported for one length only.
+
+Calls of a cell that are not a loop over an input's time axis (a decoder fed its own
+prediction for a fixed horizon) stay unrolled: each is a one-step native node (``cells``).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import Any
+
+from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
+
+
+def cell_classes() -> tuple[type, ...]:
+    from torch import nn
+
+    return (nn.LSTMCell, nn.GRUCell, nn.RNNCell)
+
+
+def has_cells(module: Any) -> bool:
+    """Does ``module`` hold a built-in recurrent cell (then the loop capture is used)?"""
+    return any(isinstance(m, cell_classes()) for m in module.modules())
+
+
+def user_cell_candidates(module: Any) -> list[Any]:
+    """Submodules written by the user whose ``forward`` takes an input and a state (≥ 2 parameters)."""
+    import inspect
+
+    out = []
+    for name, m in module.named_modules():
+        if not name or type(m).__module__.startswith("torch."):
+            continue
+        params = [p for p in inspect.signature(m.forward).parameters.values()
+                  if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD)]
+        if len(params) >= 2:
+            out.append(m)
+    return out
+
+
+def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int] = frozenset()) -> Any:
+    """A tracer class derived from ``base`` (capture's leaf rules) that carries sample values."""
+    import torch
+    import torch.fx
+    from torch.fx.proxy import Attribute, TraceError
+
+    class ValueProxy(torch.fx.Proxy):
+        """A proxy whose sizes can be read as Python numbers (the sample's)."""
+
+        def __index__(self) -> int:
+            v = self.tracer.value_of(self)
+            if isinstance(v, int) and not isinstance(v, bool):
+                return v
+            raise TraceError(f"{self.node.name} is a tensor, not an integer")
+
+        def __int__(self) -> int:
+            return self.__index__()
+
+        def __len__(self) -> int:
+            return len(self.tracer.value_of(self))
+
+        def __iter__(self) -> Any:
+            return iter([self[i] for i in range(len(self.tracer.value_of(self)))])
+
+    class ValueTracer(base):  # type: ignore[misc, valid-type]
+        """See the module docstring. ``computing`` is set while a sample value is evaluated,
+        so module calls inside that evaluation run eagerly instead of being recorded."""
+
+        def __init__(self) -> None:
+            super().__init__()
+            self.inputs = inputs
+            self.values: dict[Any, Any] = {}
+            self.computing = False
+
+        def proxy(self, node: Any) -> Any:
+            return ValueProxy(node, self)
+
+        def is_leaf_module(self, m: Any, qualname: str) -> bool:
+            return id(m) in leaves or super().is_leaf_module(m, qualname)
+
+        def call_module(self, m: Any, forward: Any, args: Any, kwargs: Any) -> Any:
+            if self.computing:
+                return forward(*args, **kwargs)
+            return super().call_module(m, forward, args, kwargs)
+
+        def getattr(self, attr: str, attr_val: Any, parameter_proxy_cache: dict[str, Any]) -> Any:
+            if self.computing:
+                return attr_val
+            return super().getattr(attr, attr_val, parameter_proxy_cache)
+
+        def value_of(self, a: Any) -> Any:
+            if isinstance(a, Attribute):
+                return getattr(self.value_of(a.root), a.attr)
+            if isinstance(a, torch.fx.Proxy):
+                return self.values[a.node]
+            if isinstance(a, list | tuple):
+                return type(a)(self.value_of(x) for x in a)
+            if isinstance(a, dict):
+                return {k: self.value_of(v) for k, v in a.items()}
+            if isinstance(a, slice):
+                return slice(self.value_of(a.start), self.value_of(a.stop), self.value_of(a.step))
+            return a
+
+        def create_proxy(self, kind: str, target: Any, args: Any, kwargs: Any, name: Any = None,
+                         type_expr: Any = None, proxy_factory_fn: Any = None) -> Any:
+            p = super().create_proxy(kind, target, args, kwargs, name, type_expr, proxy_factory_fn)
+            self.computing = True
+            try:
+                with torch.no_grad():
+                    self.values[p.node] = self._evaluate(kind, target, args, kwargs)
+            finally:
+                self.computing = False
+            return p
+
+        def _evaluate(self, kind: str, target: Any, args: Any, kwargs: Any) -> Any:
+            if kind == "placeholder":
+                return self.inputs.get(target)
+            if kind == "get_attr":
+                obj: Any = self.root
+                for part in str(target).split("."):
+                    obj = getattr(obj, part)
+                return obj
+            a, k = self.value_of(args), self.value_of(kwargs)
+            if kind == "call_module":
+                return self.root.get_submodule(target)(*a, **k)
+            if kind == "call_method":
+                return getattr(a[0], target)(*a[1:], **k)
+            if kind == "call_function":
+                return target(*a, **k)
+            return None
+
+    return ValueTracer
+
+
+def sample_inputs(module: Any, params: list[str], concrete: dict[str, Any],
+                  user: dict[str, tuple[int | str, ...]], label: str) -> dict[str, tuple[int | str, ...]]:
+    """Dims of each tensor input: ``--input`` where given, else ``[batch, time, I]`` from the first
+    recurrent module or cell (a loop's input is read one step at a time, so fx cannot see it)."""
+    from torch import nn
+
+    dims: dict[str, tuple[int | str, ...]] = {}
+    guess: int | None = None
+    for m in module.modules():
+        size = getattr(m, "input_size", None)  # nn.RNNBase, nn.RNNCellBase, most hand-written cells
+        if isinstance(m, nn.RNNBase | nn.RNNCellBase) or (isinstance(size, int) and m is not module):
+            guess = int(size)  # type: ignore[arg-type]
+            break
+    missing = []
+    for name in params:
+        if name in concrete:
+            continue
+        if name in user:
+            dims[name] = user[name]
+        else:
+            missing.append(name)
+    if len(missing) == 1 and guess is not None:
+        dims[missing[0]] = ("batch", "time", guess)
+    elif missing:
+        raise BadInputError(
+            f"{label} runs a recurrent cell in a Python loop; seqgate traces it on sample inputs and "
+            f"cannot infer the shape of forward() input(s) {', '.join(missing)}. Pass --input "
+            f"NAME:DIM,DIM,... for each, e.g. --input {missing[0]}:batch,time,8.")
+    return dims
+
+
+def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params: list[str],
+               dims: dict[str, tuple[int | str, ...]], user_cells: list[Any], label: str) -> Any:
+    """The folded GraphModule (module docstring: trace twice, fold, prove the graphs equal).
+
+    ``user_cells`` are traced as leaves; one that is not part of a folded loop is traced again
+    inlined (a shared block called twice stays an ordinary part of the graph).
+    """
+    from seqgate.export.torch.inputs import InputSpec, Plan, sample_args, symbol_values
+    from seqgate.export.torch.loopfold import canonical, cell_loop_class, fold_loops
+
+    specs = [InputSpec(n, d) for n, d in dims.items()]
+    plan = Plan(params=params, concrete=concrete, inputs=specs)
+    leaves = frozenset(id(m) for m in user_cells)
+    graphs: list[Any] = []
+    for sizes, seed in zip(symbol_values(specs), (0, 1), strict=True):
+        args = dict(zip(params, sample_args(plan, sizes, seed), strict=True))
+        for _ in range(2):
+            gm, values = _trace_once(module, make_value_tracer(base_tracer, args, leaves), concrete, label)
+            fold_loops(gm, values, lambda m, ls=leaves: isinstance(m, cell_classes()) or id(m) in ls, label)
+            left = {id(gm.get_submodule(n.target)) for n in gm.graph.nodes
+                    if n.op == "call_module" and id(gm.get_submodule(n.target)) in leaves
+                    and not isinstance(gm.get_submodule(n.target), cell_loop_class())}
+            if not left:
+                break
+            leaves = leaves - left
+        graphs.append(gm)
+    a, b = canonical(graphs[0]), canonical(graphs[1])
+    if a != b:
+        raise UnsupportedModelError(label, [_difference(graphs[0], graphs[1], a, b)])
+    return graphs[0]
+
+
+def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
+                label: str) -> tuple[Any, dict[Any, Any]]:
+    import torch.fx
+
+    from seqgate.export.torch.capture import _untraceable
+
+    tracer = tracer_cls()
+    tracer.record_stack_traces = True
+    try:
+        with _factories_recorded(tracer):
+            graph = tracer.trace(module, concrete_args=dict(concrete) or None)
+    except Exception as e:
+        raise UnsupportedModelError(label, [_untraceable(module, e)]) from None
+    return torch.fx.GraphModule(tracer.root, graph, type(module).__name__), tracer.values
+
+
+@contextmanager
+def _factories_recorded(tracer: Any) -> Iterator[None]:
+    """``torch.zeros(x.size(0), H)`` is recorded as a node (its size stays dynamic) instead of
+    reading the sample's batch size; the function object in the node is the original."""
+    import torch
+    import torch.fx
+
+    saved = {name: getattr(torch, name) for name in ("zeros", "ones")}
+
+    def wrap(orig: Any) -> Any:
+        def factory(*size: Any, **kwargs: Any) -> Any:
+            flat = list(size[0]) if len(size) == 1 and isinstance(size[0], list | tuple) else list(size)
+            if tracer.computing or not any(isinstance(s, torch.fx.Proxy) for s in flat):
+                return orig(*size, **kwargs)
+            return tracer.create_proxy("call_function", orig, tuple(size), kwargs)
+        return factory
+
+    try:
+        for name, orig in saved.items():
+            setattr(torch, name, wrap(orig))
+        yield
+    finally:
+        for name, orig in saved.items():
+            setattr(torch, name, orig)
+
+
+def _difference(ga: Any, gb: Any, a: list[Any], b: list[Any]) -> Unsupported:
+    from seqgate.export.torch.values import source_line
+
+    nodes_a = [n for n in ga.graph.nodes]
+    nodes_b = [n for n in gb.graph.nodes]
+    i = next((k for k, (x, y) in enumerate(zip(a, b, strict=False)) if x != y), min(len(a), len(b)))
+    node = nodes_a[i] if i < len(nodes_a) else nodes_b[min(i, len(nodes_b) - 1)]
+    line = source_line(node)
+    what = ("the traced graph changes with the input's batch size or length "
+            f"({len(a)} vs {len(b)} nodes; first difference at {node.name}"
+            f"{' — ' + line if line else ''})")
+    hint = ("a loop over time is exported only when each step is `state = cell(x[:, t], state)` "
+            "for every t of the input's time axis, its outputs collected with torch.stack/torch.cat or "
+            "only the last state used; build sizes from x.size(d) rather than Python numbers")
+    return Unsupported(f"{type(ga).__name__}.forward", what, hint)
+
+
+

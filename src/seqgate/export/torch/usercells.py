@@ -1,0 +1,199 @@
+"""A user-written cell (an ``nn.Module`` of Linear layers and elementwise ops) run over time → ONNX ``Scan``.
+
+The loop is proven by ``loopfold`` (the cell's state is exactly its previous output); this module
+exports it as one ``Scan`` over the dynamic time axis whose body is the cell's own step:
+
+- the cell's ``forward`` is traced with ``torch.fx`` (Linear etc. as leaves) and mapped by the
+  same tables as any forward, into a separate graph: the Scan body;
+- carried values: the leaves of the cell's output (``(h, c)`` → h, c; ``h`` → h); every leaf
+  must be passed back as state (the loop's paths), and step 0 must receive explicit initial
+  states of the same structure (a cell that starts from ``None`` is refused);
+- scan input: X along the loop's axis (``scan_input_axes``); scan output: the collected leaf
+  (or the first leaf when nothing is collected) stacked on the collector's dim;
+- probes (``runtimes.torch_cells``): ``<cell>/forward/hidden_sequence`` (collected leaf per step),
+  ``hidden_final`` and, for a second carried leaf, ``cell_final``.
+
+Equation: ``S_0 = init``; ``S_t = cell(X[:, t], S_{t−1})``, ``Y[:, t] = S_t[h]`` — what the
+Python loop computes, op for op.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from seqgate.errors import Refusal
+from seqgate.export.core.builder import FLOAT, GraphBuilder
+from seqgate.export.torch.values import TV, TorchCall, want_tensor
+from seqgate.onnxfile.probes import Probe
+
+Path = tuple[int, ...]
+
+
+def _paths(template: Any, out: list[tuple[Any, Path]], at: Path = ()) -> None:
+    """(leaf, position) of every ("init", j) / ("path", p) leaf in an argument template."""
+    if isinstance(template, tuple) and len(template) == 2 and template[0] in ("init", "path"):
+        out.append((template, at))
+    elif isinstance(template, list | tuple):
+        for i, t in enumerate(template):
+            _paths(t, out, (*at, i))
+
+
+def _carried(m: Any) -> list[tuple[Path, Path, int]]:
+    """(output path, argument position, init index) of each carried leaf, in output order."""
+    later: list[tuple[Any, Path]] = []
+    first: list[tuple[Any, Path]] = []
+    _paths(m.template["later"], later)
+    _paths(m.template["first"], first)
+    init_at = {pos: leaf[1] for leaf, pos in first if leaf[0] == "init"}
+    carried = []
+    for leaf, pos in later:
+        if pos not in init_at:
+            raise Refusal(f"the first call of {m.cell_name} gets no initial state where later steps get "
+                          "the previous state", "pass explicit initial states (zeros) to the first call")
+        carried.append((leaf[1], pos, init_at[pos]))
+    return sorted(carried)
+
+
+def user_cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
+    """Emit the Scan (module docstring); returns (collected sequence, last output structure)."""
+    m = call.module
+    x = want_tensor(call.args[0], "input")
+    init = list(call.args[1:])
+    carried = _carried(m)
+    states = [want_tensor(init[j], "initial state") for _, _, j in carried]
+    if x.rank != 3 or any(s.rank != 2 for s in states):
+        raise Refusal("a user cell over tensors other than [batch, time, I] with [batch, H] states")
+    out_paths = [p for p, _, _ in carried]
+    seq_path = m.seq_path if m.seq_path is not None else out_paths[0]
+    if seq_path not in out_paths:
+        raise Refusal("the loop collects a value that is not carried state")
+    body = _body(b, m, x, states, carried, out_paths.index(seq_path))
+    finals = [b.fresh("state") for _ in carried]
+    seq = b.fresh("sequence")
+    b.node("Scan", [s.name for s in states] + [x.name], [*finals, seq], body=body,
+           num_scan_inputs=1, scan_input_axes=[m.axis], scan_output_axes=[m.seq_dim])
+    _probes(b, m, seq, finals, out_paths, seq_path)
+    last = _structure(out_paths, finals)
+    return (seq if m.seq_path is not None else None, last)
+
+
+def _structure(paths: list[Path], names: list[str]) -> Any:
+    """Rebuild the cell's output structure from leaf paths (() = a single tensor)."""
+    if paths == [()]:
+        return names[0]
+    n = max(p[0] for p in paths) + 1
+    parts: list[Any] = []
+    for i in range(n):
+        sub = [(p[1:], v) for p, v in zip(paths, names, strict=True) if p[0] == i]
+        if not sub:
+            raise Refusal("the cell returns values that are not carried as state")
+        parts.append(_structure([p for p, _ in sub], [v for _, v in sub]))
+    return tuple(parts)
+
+
+def _body(b: GraphBuilder, m: Any, x: TV, states: list[TV], carried: list[tuple[Path, Path, int]],
+          seq_index: int) -> Any:
+    """The Scan body: the cell's traced forward, walked into its own graph."""
+    from seqgate.export.torch.capture import _Walk, clean, tracer_class
+    from seqgate.export.torch.inputs import InputSpec, forward_params, record_runs
+
+    label = f"{m.cell_name} ({type(m.cell).__name__})"
+    plan = forward_params(m.cell, {}, label)
+    tracer = tracer_class()()
+    try:
+        import torch.fx
+
+        gm = clean(torch.fx.GraphModule(m.cell, tracer.trace(m.cell), type(m.cell).__name__), label)
+    except Refusal:
+        raise
+    except Exception as e:
+        raise Refusal(f"the cell's forward cannot be traced ({type(e).__name__})") from None
+    if len(plan.params) < 2:
+        raise Refusal("a cell whose forward takes no state argument")
+    plan.concrete = {}
+    feature = (("batch", int(x.shape[2])) if x.shape[2] is not None else None)
+    if feature is None:
+        raise Refusal("the loop input's feature size is not fixed")
+    specs = [InputSpec(plan.params[0], feature)]
+    by_arg: dict[int, list[tuple[Path, int]]] = {}
+    for k, (_, pos, _) in enumerate(carried):
+        by_arg.setdefault(pos[0], []).append((pos[1:], k))
+    for a, name in enumerate(plan.params[1:]):
+        leaves = sorted(by_arg.get(a, []))
+        if not leaves:
+            raise Refusal(f"the cell's argument {name!r} is not carried state")
+        dims = ("batch", int(states[leaves[0][1]].shape[1] or 0))
+        specs.append(InputSpec(name, dims, parts=len(leaves) if leaves[0][0] else 0))
+    plan.inputs = specs
+    metas, _, _ = record_runs(gm, plan, label)
+    sub = GraphBuilder(b.opset, graph_name=f"{m.cell_name}_step", framework="torch")
+    walk = _Walk(sub, gm, metas)
+    result = walk.run(plan)
+    if walk.problems:
+        raise Refusal("; ".join(p.line() for p in dict.fromkeys(walk.problems)))
+    return _finish_body(sub, result, specs, carried, seq_index, m.cell_name)
+
+
+def _finish_body(sub: GraphBuilder, result: Any, specs: list[Any], carried: list[tuple[Path, Path, int]],
+                 seq_index: int, prefix: str) -> Any:
+    """Declare body outputs (new states, then the scan output) and order the inputs as Scan wants."""
+    outs = []
+    for out_path, _, _ in carried:
+        v = result
+        for i in out_path:
+            v = v[i]
+        if not isinstance(v, TV):
+            raise Refusal("the cell returns something other than tensors")
+        outs.append(v)
+    for k, v in enumerate(outs):
+        sub.output(v.name, f"state_out_{k}", FLOAT, [None] * v.rank)
+    seq_src = outs[seq_index]
+    sub.output(seq_src.name, "step_out", FLOAT, [None] * seq_src.rank)
+    graph = sub.build({}, check=False).graph
+    names = [n for s in specs for n in s.onnx_names]
+    state_inputs: list[str] = []
+    for _, pos, _ in carried:
+        spec = specs[1 + pos[0]]
+        state_inputs.append(spec.onnx_names[pos[1]] if spec.parts else spec.onnx_names[0])
+    order = [*state_inputs, names[0]]
+    by_name = {vi.name: vi for vi in graph.input}
+    del graph.input[:]
+    graph.input.extend(by_name[n] for n in order)
+    _prefix_names(graph, f"{prefix}/step/")
+    return graph
+
+
+def _prefix_names(graph: Any, prefix: str) -> None:
+    """Give every body name a prefix so it cannot clash with the outer graph's."""
+    def p(n: str) -> str:
+        return prefix + n if n else n
+
+    for vi in [*graph.input, *graph.output, *graph.value_info]:
+        vi.name = p(vi.name)
+    for init in graph.initializer:
+        init.name = p(init.name)
+    for node in graph.node:
+        node.name = p(node.name)
+        node.input[:] = [p(i) for i in node.input]
+        node.output[:] = [p(o) for o in node.output]
+
+
+def _probes(b: GraphBuilder, m: Any, seq: str, finals: list[str], paths: list[Path],
+            seq_path: Path) -> None:
+    """Per-step and final state probes on the Scan's outputs (Unsqueeze adds the direction axis)."""
+    src = {"framework": "torch", "module": m.cell_name, "module_type": type(m.cell).__name__,
+           "cell_calls": list(m.calls), "h_path": list(seq_path)}
+    others = [p for p in paths if p != seq_path]
+    if others:
+        src["c_path"] = list(others[0])
+    seq_axis = 2 if m.seq_dim == 1 else 1
+    y = b.unsqueeze(seq, [seq_axis])
+    kinds = [("hidden_sequence", y, "NTDH" if m.seq_dim == 1 else "TNDH", b.last_node_name)]
+    h = b.unsqueeze(finals[paths.index(seq_path)], [1])
+    kinds.append(("hidden_final", h, "NDH", b.last_node_name))
+    if others:
+        c = b.unsqueeze(finals[paths.index(others[0])], [1])
+        kinds.append(("cell_final", c, "NDH", b.last_node_name))
+    for kind, value, axes, node in kinds:
+        b.probe(Probe(name=f"{m.cell_name}/forward/{kind}", kind=kind, layer=m.cell_name, direction="forward",
+                      direction_index=0, node=node, output_index=0, value=value, axes=axes, source=src))
