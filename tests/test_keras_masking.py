@@ -60,8 +60,8 @@ def test_masked_layer_matches_keras_and_oracle(kind: str, go_backwards: bool, ze
         km.assert_matches(got, ref, f"{kind} {pattern} {opts}")
         # Keras masking docs (RNN: masked steps skipped; zero_output_for_mask; go_backwards)
         for name, offset in (("seq", 0), ("last", len(ref) - 1)):
-            seq, last, states = keras_masked_rnn(kind, _weights(model, name), x, mask, go_backwards=go_backwards,
-                                                 zero_output_for_mask=zero_output,
+            seq, last, states = keras_masked_rnn(kind, _weights(model, name), x, mask,
+                                                 go_backwards=go_backwards, zero_output_for_mask=zero_output,
                                                  reset_after=bool(opts.get("reset_after", False)))
             if name == "seq":
                 km.assert_matches(got[:1 + len(states)], [seq, *states], f"oracle {kind} {pattern}")
@@ -131,9 +131,12 @@ def test_masking_layer_output_and_nonzero_mask_value() -> None:
     """keras Masking.call: ``where(any(x != v, -1), x, 0)``; the mask value need not be 0."""
     k = km.keras()
     rng = np.random.default_rng(3)
-    model = km.functional((None, F), lambda x: [k.layers.Masking(-1.0)(x),
-                                                 k.layers.SimpleRNN(H, return_sequences=True)(k.layers.Masking(-1.0)(x))],
-                          rng, name="mv")
+
+    def body(x: Any) -> list[Any]:
+        seq = k.layers.SimpleRNN(H, return_sequences=True)(k.layers.Masking(-1.0)(x))
+        return [k.layers.Masking(-1.0)(x), seq]
+
+    model = km.functional((None, F), body, rng, name="mv")
     mask = mask_patterns(rng, 3, 6)["holes"]
     x = np.where(mask[..., None], rng.normal(size=(3, 6, F)), -1.0).astype(np.float32)
     x[0, 0, 0] = -1.0  # one feature equal to the mask value: the step stays valid (any, not all)
@@ -173,7 +176,8 @@ def test_long_holey_sequences(batch: int) -> None:
     ref = km.keras_outputs(model, [x], compiled=True)
     got = km.onnx_outputs(km.export(model), [x])
     km.assert_matches(got, ref, f"T=1000 batch {batch}")
-    seq, _, states = keras_masked_rnn("gru", _weights(model, "seq"), x, mask, reset_after=True)  # Keras GRU default
+    # reset_after=True: the Keras GRU default
+    seq, _, states = keras_masked_rnn("gru", _weights(model, "seq"), x, mask, reset_after=True)
     km.assert_matches(got[:2], [seq, states[0]], "oracle T=1000")
 
 

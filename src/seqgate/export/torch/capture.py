@@ -16,7 +16,7 @@ Contract:
 - Every refusal is collected, with the module's qualified name or the function and the
   source line; the walk goes on with placeholder values so one
   :class:`~seqgate.errors.UnsupportedModelError` (exit 3) lists every problem. A forward that
-  fx cannot trace (Python control flow on tensors, ``int(x.size(1))``, packed sequences) is
+  fx cannot trace (Python control flow on tensors, ``int(x.size(1))``, hand-built packed sequences) is
   also exit 3, naming the line and the construct to change.
 - Recurrent modules: one native ONNX node per stacked layer, probes named
   ``<qualname>/l<k>/<direction>/<kind>`` (``<qualname>/call<i>/l<k>/…`` for the i-th extra
@@ -97,10 +97,13 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
         def is_leaf_module(self, m: Any, qualname: str) -> bool:
             return super().is_leaf_module(m, qualname) or module_mapping(m) is not None
 
-    tracer = Tracer()
-    tracer.record_stack_traces = True
+    from seqgate.export.torch.packing import packing_leaves
+
     try:
-        graph = tracer.trace(module, concrete_args=dict(concrete) or None)
+        with packing_leaves(module) as leaves:
+            tracer = Tracer(autowrap_functions=leaves)
+            tracer.record_stack_traces = True
+            graph = tracer.trace(module, concrete_args=dict(concrete) or None)
         gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
     except Exception as e:
         raise UnsupportedModelError(label, [_untraceable(module, e)]) from None
@@ -191,9 +194,9 @@ def _untraceable(module: Any, e: BaseException) -> Unsupported:
 
 
 def _trace_hint(msg: str, code: str) -> str:
-    if "pack_padded" in code or "PackedSequence" in code or "pack_sequence" in code:
-        return ("packed sequences are not supported; pass the padded [batch, time, features] "
-                "tensor to the recurrent module")
+    if "PackedSequence" in code or "pack_sequence" in code:
+        return ("pack_sequence and hand-built PackedSequence objects are not supported; use "
+                "pack_padded_sequence(x, lengths, ...) with the lengths as a forward() input")
     if "takes 1 positional argument" in msg and ("zeros" in code or "ones" in code or "empty" in code):
         return ("torch.zeros/ones with a traced size as the first of several arguments cannot be traced; "
                 "pass the sizes as one tuple: torch.zeros((layers, x.size(0), hidden))")
