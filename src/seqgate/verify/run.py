@@ -322,7 +322,7 @@ def verify_model(
     """Compare the ONNX file with its source on every window; see the module docstring."""
     from seqgate.onnxfile.load import load_onnx
     from seqgate.util.environment import environment
-    from seqgate.verify.synthetic import synthetic_sets
+    from seqgate.verify.synthetic import read_padding, synthetic_sets
 
     if batch_size < 1:
         raise BadInputError(f"--batch-size must be ≥ 1, got {batch_size}.")
@@ -348,7 +348,7 @@ def verify_model(
     recs = [load_recording(w, specs) for w in windows]
     if synthetic:
         stats = feature_stats(recs[0], batch_size) if recs else None
-        recs += synthetic_sets(specs, stats, seed)
+        recs += synthetic_sets(specs, stats, seed, padding=read_padding(model))
     infos = _tensor_infos(model, probes)
     warnings += [f"tolerance pattern {p!r} matches no tensor" for p in tol.unmatched([t.name for t in infos])]
     from seqgate.runtimes.onnx import OnnxRunner

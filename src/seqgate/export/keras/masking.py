@@ -124,3 +124,36 @@ def emit_masking(b: GraphBuilder, call: Any) -> list[str]:
 def _reduce_bool_last(b: GraphBuilder, x_bool: str) -> str:
     as_int = b.op("Cast", [x_bool], to=np_to_onnx_type(np.int32))
     return b.op("Cast", [b.reduce("ReduceMax", as_int, [-1], keepdims=True)], to=BOOL)
+
+
+PADDING_KEY = "seqgate.padding"
+ALL_PATTERNS = ["right", "left", "holes"]
+
+
+def padding_metadata(graph: Any) -> dict[str, str]:
+    """``seqgate.padding``: graph inputs whose padded steps make a mask, for verify's padded sets.
+
+    An entry ``{"kind": "value", "input": NAME, "value": V, "patterns": [...]}`` says a step of
+    input NAME whose features all equal V (Masking) or whose id is V (Embedding mask_zero) is
+    padding; every pattern is exact (``core.masked_steps``), so right, left and holes are listed.
+    """
+    import json
+
+    from seqgate.sources.keras_graph import graph_nodes
+
+    inputs = {id(t): t.name for t in graph.inputs}
+    entries = []
+    for node, layer in graph_nodes(graph):
+        cls = type(layer).__name__
+        src = node.input_tensors[0] if node.input_tensors else None
+        if src is None or id(src) not in inputs:
+            continue
+        if cls == "Masking":
+            value = float(layer.mask_value)
+        elif cls == "Embedding" and getattr(layer, "mask_zero", False):
+            value = 0
+        else:
+            continue
+        entries.append({"kind": "value", "input": inputs[id(src)], "value": value, "patterns": ALL_PATTERNS,
+                        "min_length": 0})
+    return {PADDING_KEY: json.dumps(entries, sort_keys=True)} if entries else {}

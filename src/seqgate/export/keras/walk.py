@@ -22,7 +22,7 @@ import numpy as np
 from seqgate.errors import BadInputError, Refusal, Unsupported, UnsupportedModelError
 from seqgate.export.core.builder import DimSpec, GraphBuilder, np_to_onnx_type
 from seqgate.export.keras.call import KV, KerasCall
-from seqgate.export.keras.masking import emit_mask_op, refuse_unhandled_mask
+from seqgate.export.keras.masking import emit_mask_op, padding_metadata, refuse_unhandled_mask
 from seqgate.sources.keras_graph import graph_nodes, is_nested
 
 
@@ -45,7 +45,7 @@ def export_keras_model(model: Any, opset: int, metadata: dict[str, str]) -> Any:
     for t, oname in zip(graph.outputs, _output_names(model, graph), strict=True):
         v = values[id(t)]
         b.output(v.name, oname, np_to_onnx_type(np.dtype(v.dtype)), _output_dims(v.shape))
-    return b.build(metadata)
+    return b.build({**metadata, **padding_metadata(graph)})
 
 
 def _output_names(model: Any, graph: Any) -> list[str]:

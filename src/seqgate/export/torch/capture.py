@@ -82,7 +82,9 @@ def export_torch_module(
     if walk.problems:
         raise UnsupportedModelError(label, walk.problems)
     _declare_outputs(b, result, metas.get(_output_node(gm).name), plan, sa, sb, label)
-    return b.build(metadata)
+    from seqgate.export.torch.packing import padding_metadata
+
+    return b.build({**metadata, **padding_metadata(plan)})
 
 
 # ----- tracing ----------------------------------------------------------------------------

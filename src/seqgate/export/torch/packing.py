@@ -37,7 +37,7 @@ from torch.nn.utils import rnn as rnn_utils
 
 from seqgate.errors import Refusal
 from seqgate.export.core.builder import INT32, INT64, GraphBuilder, np_to_onnx_type
-from seqgate.export.torch.values import TV, Table, TorchCall, want_tensor
+from seqgate.export.torch.values import TV, DimV, Table, TorchCall, want_tensor
 
 TABLE = Table()  # merged in registry.py
 PACK = rnn_utils.pack_padded_sequence
@@ -139,8 +139,10 @@ def _steps(b: GraphBuilder, p: PackedV, total_length: Any) -> str:
     """0-d int64: ``max(lengths)`` (PyTorch's default) or ``total_length``."""
     if total_length is None:
         return b.reduce("ReduceMax", p.lengths_i64, [0], keepdims=False)
+    if isinstance(total_length, DimV):  # total_length=x.size(1): the padded input's own length
+        return b.squeeze(total_length.name, [0])
     if isinstance(total_length, bool) or not isinstance(total_length, int):
-        raise Refusal(f"total_length={total_length!r}", "give total_length as an int")
+        raise Refusal(f"total_length={total_length!r}", "give total_length as an int or x.size(1)")
     return b.const(np.asarray(total_length, np.int64), "total_length")
 
 
@@ -189,3 +191,19 @@ for _op, _neg, _keys in (
     TABLE.add(*_keys, sig=_cmp_sig)(_compare(_op, _neg))
 
 TABLE.add("Tensor.cpu", sig=lambda input, memory_format=None: None)(lambda b, call, a: want_tensor(a["input"]))
+
+
+def padding_metadata(plan: Any) -> dict[str, str]:
+    """``seqgate.padding`` for a lengths input of ``pack_padded_sequence`` (verify's padded sets):
+    ``{"kind": "lengths", "lengths": NAME, "inputs": [sequence inputs], "patterns": ["right"],
+    "min_length": 1}`` — right padding only (that is what lengths mean), never length 0
+    (PyTorch refuses it)."""
+    import json
+
+    lengths = [s.name for s in plan.inputs if getattr(s, "fill", "") == "lengths"]
+    if not lengths:
+        return {}
+    seqs = [s.name for s in plan.inputs if s.name not in lengths and "time" in s.dims]
+    entries = [{"kind": "lengths", "lengths": n, "inputs": seqs, "patterns": ["right"], "min_length": 1}
+               for n in lengths]
+    return {"seqgate.padding": json.dumps(entries, sort_keys=True)}
