@@ -20,7 +20,8 @@ PyTorch semantics (``torch.nn.utils.rnn`` docs) and their ONNX form:
 - Lengths outside 0..T fail at run time in onnxruntime.
 
 ``torch.fx`` cannot trace ``pack_padded_sequence`` (it checks values); during tracing both
-functions are recorded as leaf calls (see :func:`packing_leaves`).
+functions are recorded as leaf calls (see :func:`packing_leaves`). Imported only once torch is
+loaded (by ``registry``, ``capture.trace`` and ``modules``).
 """
 
 from __future__ import annotations
