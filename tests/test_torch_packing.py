@@ -170,3 +170,14 @@ def test_length_zero_gives_padding_and_zero_states() -> None:
     ok = _torch(m, x[[0, 2]], lengths[[0, 2]])
     _close([y[[0, 2]], h[:, [0, 2]]], ok, "rows with a length")
     del torch
+
+
+def test_exporting_a_packed_model_leaves_later_traces_working() -> None:
+    """Regression: fx's autowrap must not leave a process-wide patch entry behind."""
+    m = tm.randomize(_classes()["Forecaster"]("gru"), seed=1)
+    tm.export(m)
+    tm.export(m)
+    from torch import nn
+
+    plain = tm.randomize(nn.Sequential(nn.Linear(F, H)), seed=2)
+    assert tm.export(plain).graph.node  # a module without packing still traces (it failed with KeyError)

@@ -106,6 +106,11 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
             tracer = Tracer(autowrap_functions=leaves)
             tracer.record_stack_traces = True
             graph = tracer.trace(module, concrete_args=dict(concrete) or None)
+        for n in graph.nodes:
+            # fx would emit a process-wide wrap("torch.nn.utils.rnn.…") into the generated code,
+            # which breaks every later trace (KeyError); this graph is never traced again
+            if n.op == "call_function" and any(n.target is f for f in leaves):
+                n.meta.pop("is_wrapped", None)
         gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
     except Exception as e:
         raise UnsupportedModelError(label, [_untraceable(module, e)]) from None
