@@ -184,9 +184,10 @@ UNTRACEABLE = {
                      ["control flow", "if x.sum() > 0:", "constructor argument"]),
     "int_size": ("n = int(x.size(1))\n        return self.rnn(x)[0].view(-1, n)",
                  ["int(x.size(1))", "Python int"]),
-    "packed": ("p = nn.utils.rnn.pack_padded_sequence(x, [3, 2], batch_first=True)\n"
+    # pack_padded_sequence with a lengths input is supported (test_torch_packing.py); pack_sequence is not
+    "packed": ("p = nn.utils.rnn.pack_sequence([x[0], x[1]])\n"
                "        return self.rnn(p)[1]",
-               ["pack_padded_sequence", "packed sequences are not supported"]),
+               ["pack_sequence", "pack_sequence and hand-built PackedSequence objects are not supported"]),
     "python_loop": ("for t in range(x.size(1)):\n            x = x + 1\n        return x",
                     ["range(x.size(1))", "loop over time"]),
 }

@@ -13,6 +13,10 @@ are then rebuilt from the clone's:
   input order; merge ``concat``/``sum``/``mul``/``ave``/``None`` as Keras does; states follow as
   fwd ``h[, c]``, bwd ``h[, c]``; an ``initial_state`` list is split in halves.
 
+A recurrent call with a ``mask=`` argument passes the mask to its clone; the layer's own
+non-sequence output is then the clone's last sequence step (Keras's ``last_output``, which
+differs from the state when the last steps are masked or a row has no valid step).
+
 Probes (DESIGN.md axes): the sequence in input order (flipped back for ``go_backwards``)
 as ``[N, T, 1, H]``; ``h`` and ``c`` as ``[N, 1, H]``. Because the outputs come from this
 re-execution, :meth:`KerasRunner.self_check` compares them once with the original model's own
@@ -125,6 +129,7 @@ class KerasRunner:
         self.probes = [p for p in probes if states] if probes else []
         self._layers = {p.source.get("layer", p.layer) for p in self.probes}
         self._clones: dict[str, Any] = {}
+        self._mask: Any = None  # the mask of the recurrent call being re-executed
         self._prepare_clones(self.graph, "")
         missing = sorted(self._layers - {k.split("#")[0] for k in self._clones})
         if missing:
@@ -189,16 +194,22 @@ class KerasRunner:
         if init is None and len(args) > 1:
             init = args[1]
         init_list = None if init is None else (list(init) if isinstance(init, list | tuple) else [init])
+        self._mask = kwargs.get("mask")
         if type(layer).__name__ == "Bidirectional":
             return self._bidirectional(full, layer, x, init_list, probes)
         seq, states = self._run_clone(self._clones[full], x, init_list)
         self._record(full, "forward" if not layer.go_backwards else "reverse", seq, states,
                      layer.go_backwards, probes)
-        outs = [seq if layer.return_sequences else states[0]]
+        outs = [seq if layer.return_sequences else self._last(seq, states)]
         return outs + (states if layer.return_state else [])
 
+    def _last(self, seq: Any, states: list[Any]) -> Any:
+        """Keras's ``last_output``: with a mask, the last processed step's output (not the state)."""
+        return states[0] if self._mask is None else seq[:, -1]
+
     def _run_clone(self, clone: Any, x: Any, init: list[Any] | None) -> tuple[Any, list[Any]]:
-        res = clone(x, initial_state=init) if init is not None else clone(x)
+        kw = {} if self._mask is None else {"mask": self._mask}
+        res = clone(x, initial_state=init, **kw) if init is not None else clone(x, **kw)
         return res[0], list(res[1:])
 
     def _record(self, full: str, direction: str, seq: Any, states: list[Any], backwards: bool,
@@ -224,7 +235,7 @@ class KerasRunner:
         if layer.return_sequences:
             yf, yb = fseq, ops.flip(bseq, axis=1)
         else:
-            yf, yb = fstates[0], bstates[0]
+            yf, yb = self._last(fseq, fstates), self._last(bseq, bstates)
         mode = layer.merge_mode
         merged: list[Any]
         if mode == "concat":

@@ -348,7 +348,7 @@ def verify_model(
     """
     from seqgate.onnxfile.load import load_onnx
     from seqgate.util.environment import environment
-    from seqgate.verify.synthetic import synthetic_sets
+    from seqgate.verify.synthetic import read_padding, synthetic_sets
 
     opts, tol = _settings(locals())
     synthetic, batch_size, states, oracle, task, seed = (
@@ -372,7 +372,7 @@ def verify_model(
     recs = [load_recording(w, specs) for w in windows]
     if synthetic:
         stats = feature_stats(recs[0], batch_size) if recs else None
-        recs += synthetic_sets(specs, stats, seed)
+        recs += synthetic_sets(specs, stats, seed, padding=read_padding(model))
     infos = tensor_infos(model, probes)
     warnings += [f"tolerance pattern {p!r} matches no tensor" for p in tol.unmatched([t.name for t in infos])]
     from seqgate.runtimes.factory import open_source_runner

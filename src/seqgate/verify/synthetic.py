@@ -11,6 +11,15 @@ feature is constant; ``μ = 0, σ = 1`` when there is no recording):
 - ``synthetic:long``     — ``N(μ, σ²)`` with 4× the recorded steps, only when the model's time
   axis is dynamic (inputs sharing that symbolic dim all get 4×).
 
+Padded models (ONNX metadata ``seqgate.padding``, written at export): a lengths input gets the
+full window length in the sets above, and padded sets are added (their notes count the padded
+steps): ``synthetic:padded_random_lengths`` (right padding, lengths uniform in 1..T),
+``synthetic:padded_left`` and ``synthetic:padded_holes`` where the model's masking allows
+them (Keras masks), ``synthetic:padded_all`` (every step padded; only where a length of 0 is
+valid: not for PyTorch packing, which refuses it) and ``synthetic:padded_length_1``. Padded
+steps hold the padding value (a ``value`` entry) or zeros beyond the length (a ``lengths``
+entry); valid integer steps never hold the padding id.
+
 Integer inputs (token ids) use the recorded range ``[low, high]`` instead: uniform ids,
 zeros, constant ids spread over the range, and ``low``/``high`` at random as extremes.
 Each set draws from its own stream ``default_rng([seed, k])`` so sets are reproducible alone.
@@ -69,8 +78,10 @@ def _draw(kind: str, spec: InputSpec, st: FeatureStats, shape: tuple[int, ...],
 
 
 def synthetic_sets(specs: list[InputSpec], stats: dict[str, FeatureStats] | None, seed: int,
-                   windows: int = SYNTHETIC_WINDOWS) -> list[Recording]:
-    """One :class:`Recording` per synthetic kind (``long`` only for a dynamic time axis)."""
+                   windows: int = SYNTHETIC_WINDOWS,
+                   padding: list[dict[str, Any]] | None = None) -> list[Recording]:
+    """One :class:`Recording` per synthetic kind (``long`` only for a dynamic time axis), then
+    the padded sets of ``padding`` (module docstring)."""
     per = {s.name: (stats or {}).get(s.name) or _default_stats(s) for s in specs}
     long_dims = {s.window_dims[1] for s in specs if s.time_dynamic}
     out = []
@@ -85,6 +96,97 @@ def synthetic_sets(specs: list[InputSpec], stats: dict[str, FeatureStats] | None
                 shape = (windows, 4 * shape[1], *shape[2:])
             x = _draw(kind, s, per[s.name], shape, rng)
             arrays[s.name] = MappedArray(x, f"synthetic:{kind} {s.name!r}")
+        _full_lengths(arrays, padding or [], f"synthetic:{kind}")
         notes = {"seed": seed, "scale": "recording" if stats else "unit (no recording)"}
         out.append(Recording(f"synthetic:{kind}", f"synthetic:{kind}", dict(arrays), windows, notes=notes))
+    if padding:
+        out += padded_sets(specs, per, padding, seed, windows, stats is not None)
     return out
+
+
+def _full_lengths(arrays: dict[str, MappedArray], padding: list[dict[str, Any]], label: str) -> None:
+    """A lengths input of an unpadded set: every window at its full length."""
+    for entry in padding:
+        if entry.get("kind") != "lengths" or entry["lengths"] not in arrays:
+            continue
+        seq = next((arrays[n].array for n in entry.get("inputs", []) if n in arrays), None)
+        if seq is None:
+            continue
+        lengths = np.full(seq.shape[0], seq.shape[1], dtype=arrays[entry["lengths"]].dtype)
+        arrays[entry["lengths"]] = MappedArray(lengths, f"{label} {entry['lengths']!r}")
+
+
+PADDED = ("random_lengths", "left", "holes", "all", "length_1")
+_NEEDS = {"left": "left", "holes": "holes"}
+
+
+def _pattern(kind: str, n: int, t: int, rng: np.random.Generator) -> np.ndarray[Any, Any]:
+    """Valid-step mask ``[n, t]`` of one padded kind."""
+    steps = np.arange(t)[None]
+    if kind == "random_lengths":
+        return steps < rng.integers(1, t + 1, size=n)[:, None]
+    if kind == "left":
+        return steps >= t - rng.integers(1, t + 1, size=n)[:, None]
+    if kind == "holes":
+        m = rng.random((n, t)) < 0.6
+        m[np.arange(n), rng.integers(0, t, size=n)] = True  # at least one valid step per window
+        return m
+    if kind == "all":
+        return np.zeros((n, t), dtype=bool)
+    return np.broadcast_to(steps < 1, (n, t)).copy()  # length_1
+
+
+def padded_sets(specs: list[InputSpec], per: dict[str, FeatureStats], padding: list[dict[str, Any]],
+                seed: int, windows: int, recorded: bool) -> list[Recording]:
+    """The padded synthetic sets (module docstring); one mask per set, shared by every entry."""
+    out = []
+    for k, kind in enumerate(PADDED):
+        allowed = [e for e in padding if _NEEDS.get(kind, "right") in e.get("patterns", ["right"])
+                   and not (kind == "all" and int(e.get("min_length", 1)) > 0)]
+        if not allowed:
+            continue
+        rng = np.random.default_rng([seed, 100 + k])
+        arrays = {s.name: MappedArray(_draw("scaled", s, per[s.name], (windows, *per[s.name].shape), rng),
+                                      f"synthetic:padded_{kind} {s.name!r}") for s in specs}
+        seq = next((s for s in specs if s.is_sequence), None)
+        if seq is None:
+            continue
+        mask = _pattern(kind, windows, per[seq.name].shape[0], rng)
+        for entry in allowed:
+            _apply(arrays, entry, mask, f"synthetic:padded_{kind}")
+        notes = {"seed": seed, "scale": "recording" if recorded else "unit (no recording)",
+                 "padding_steps": int((~mask).sum()), "steps": int(mask.size)}
+        out.append(Recording(f"synthetic:padded_{kind}", f"synthetic:padded_{kind}", arrays, windows,
+                             notes=notes))
+    return out
+
+
+def _apply(arrays: dict[str, MappedArray], entry: dict[str, Any], mask: np.ndarray[Any, Any],
+           label: str) -> None:
+    """Write one padding entry's padded steps (or lengths) into the set's arrays."""
+    if entry.get("kind") == "lengths":
+        name = entry["lengths"]
+        if name in arrays:
+            arrays[name] = MappedArray(mask.sum(axis=1).astype(arrays[name].dtype), f"{label} {name!r}")
+        names, value = entry.get("inputs", []), 0
+    else:
+        names, value = [entry["input"]], entry["value"]
+    for name in names:
+        if name not in arrays or arrays[name].array.shape[1] != mask.shape[1]:
+            continue
+        x = np.array(arrays[name].array)
+        m = mask.reshape(mask.shape + (1,) * (x.ndim - 2))
+        if x.dtype.kind in "iu":
+            x = np.where(x == value, value + 1, x)  # a valid step never holds the padding id
+        x = np.where(m, x, np.asarray(value, dtype=x.dtype)).astype(x.dtype)
+        arrays[name] = MappedArray(x, f"{label} {name!r}")
+
+
+def read_padding(model: Any) -> list[dict[str, Any]]:
+    """The ``seqgate.padding`` entries of an exported ONNX model ([] when it has none)."""
+    import json
+
+    for p in model.metadata_props:
+        if p.key == "seqgate.padding":
+            return list(json.loads(p.value))
+    return []

@@ -55,8 +55,15 @@ def emit_recurrent(
     need_h: bool = False,
     need_c: bool = False,
     sequence_lens: str = "",
+    probes: bool = True,
 ) -> RecurrentOut:
-    """Emit the node over time-major ``x_tni``; register hidden_sequence/final (and cell) probes."""
+    """Emit the node over time-major ``x_tni``; register hidden_sequence/final (and cell) probes.
+
+    ``sequence_lens`` (int32 ``[N]``, ONNX spec): row n runs over its first ``len[n]`` steps;
+    Y is zero for t ≥ len, Y_h/Y_c hold the state after the last valid step (zero for len 0).
+    ``probes=False`` leaves the probes to the caller (:func:`register_probe_slots`), for
+    callers whose states live in values computed after the node (masked steps moved back).
+    """
     p = call.packed
     w = b.const(p.W, "W")
     r = b.const(p.R, "R")
@@ -79,7 +86,8 @@ def emit_recurrent(
         outs[1] = names["y_h"]
     b.node(ONNX_OP[call.kind], inputs, outs, **attrs)
     node = b.last_node_name
-    _register_probes(b, call, node, names)
+    if probes:
+        _register_probes(b, call, node, names)
     return RecurrentOut(
         y=names["y"] if need_y else "",
         y_h=outs[1],
@@ -114,3 +122,32 @@ def _register_probes(b: GraphBuilder, call: RecurrentCall, node: str, names: dic
                     source=src,
                 )
             )
+
+
+@dataclass(frozen=True)
+class ProbeSlot:
+    """Where one probe's tensor lives: a node output of the given axes (``NTDH``, ``DNH``…)."""
+
+    node: str
+    output_index: int
+    value: str
+    axes: str
+    direction_index: int = 0
+
+
+def register_probe_slots(b: GraphBuilder, call: RecurrentCall, slots: list[dict[str, ProbeSlot]]) -> None:
+    """Register probes of ``call`` from explicit slots: ``slots[d][kind]`` for direction d."""
+    labels = call.direction_labels or DIRECTION_NAMES[call.direction]
+    prefix = call.probe_prefix or call.layer
+    for d, label in enumerate(labels):
+        src = dict(call.source)
+        if call.per_direction_source:
+            src.update(call.per_direction_source[d])
+        for kind in ("hidden_sequence", "hidden_final", "cell_final"):
+            slot = slots[d].get(kind)
+            if slot is None:
+                continue
+            b.probe(Probe(name=f"{prefix}/{label}/{kind}", kind=kind, layer=call.layer, direction=label,
+                          direction_index=slot.direction_index, node=slot.node,
+                          output_index=slot.output_index, value=slot.value, axes=slot.axes,
+                          stack_index=call.stack_index, source=src))

@@ -25,6 +25,7 @@ from seqgate.export.core.activations import emit_activation
 from seqgate.export.core.builder import GraphBuilder
 from seqgate.export.keras.activation import keras_activation
 from seqgate.export.keras.call import KerasCall
+from seqgate.export.keras.masking import emit_masking, mask_of
 from seqgate.export.keras.recurrent import RECURRENT_LAYERS
 
 F32 = np.float32
@@ -49,11 +50,15 @@ def _dense(b: GraphBuilder, call: KerasCall) -> list[str]:
 
 
 def _time_distributed(b: GraphBuilder, call: KerasCall) -> list[str]:
+    """TimeDistributed(inner); a mask is passed on only to an inner layer that takes one
+    (keras TimeDistributed.call), and none of the supported inner layers does."""
     inner = call.layer.layer
     cls = type(inner).__name__
     fn = _TIME_DISTRIBUTABLE.get(cls)
     if fn is None:
         raise Refusal(f"TimeDistributed({cls})", "only Dense, Activation and dropout layers")
+    if mask_of(call) is not None and getattr(inner, "_call_has_mask_arg", False):
+        raise Refusal(f"TimeDistributed({cls}) with a mask", "the inner layer would read the mask")
     sub = KerasCall(inner, call.name, call.inputs, {}, call.outputs, (), call.values)
     return fn(b, sub)
 
@@ -165,11 +170,21 @@ def _global_pool(op: str) -> Any:
     def fn(b: GraphBuilder, call: KerasCall) -> list[str]:
         layer = call.layer
         axis = 1 if layer.data_format == "channels_last" else 2
-        if call.kwargs.get("mask") is not None:
-            raise Refusal("a mask is passed to the pooling layer", "masking is not supported yet")
+        mask = mask_of(call)
+        if mask is not None:
+            return [_masked_average(b, call.inputs[0].name, mask.name, axis, bool(layer.keepdims))]
         return [b.reduce(op, call.inputs[0].name, [axis], keepdims=bool(layer.keepdims))]
 
     return fn
+
+
+def _masked_average(b: GraphBuilder, x: str, mask: str, axis: int, keepdims: bool) -> str:
+    """keras GlobalAveragePooling1D with a mask: ``Σ_t where(m, x, 0) / Σ_t m`` (0/0 = NaN for a
+    window with no valid step, as in Keras)."""
+    m = b.unsqueeze(b.op("Cast", [mask], to=9), [2 if axis == 1 else 1])  # TensorProto.BOOL
+    kept = b.op("Where", [m, x, b.scalar(0.0, "zero")])
+    count = b.reduce("ReduceSum", b.op("Cast", [m], to=1), [axis], keepdims=keepdims)  # FLOAT
+    return b.op("Div", [b.reduce("ReduceSum", kept, [axis], keepdims=keepdims), count])
 
 
 def _layer_norm(b: GraphBuilder, call: KerasCall) -> list[str]:
@@ -224,9 +239,8 @@ def _normalization(b: GraphBuilder, call: KerasCall) -> list[str]:
 
 
 def _embedding(b: GraphBuilder, call: KerasCall) -> list[str]:
+    """Gather of rows; with ``mask_zero`` Keras records the mask (ids ≠ 0) as its own op node."""
     layer = call.layer
-    if layer.mask_zero:
-        raise Refusal("mask_zero=True", "masking is not supported yet; export without mask_zero")
     if getattr(layer, "quantization_mode", None):
         raise Refusal(f"quantized Embedding ({layer.quantization_mode})")
     ids = call.inputs[0]
@@ -234,10 +248,6 @@ def _embedding(b: GraphBuilder, call: KerasCall) -> list[str]:
     if ids.dtype not in ("int32", "int64"):
         idx = b.op("Cast", [idx], to=7)  # TensorProto.INT64
     return [b.op("Gather", [b.const(layer.embeddings.numpy().astype(F32), "embeddings"), idx], axis=0)]
-
-
-def _masking(b: GraphBuilder, call: KerasCall) -> list[str]:
-    raise Refusal("Masking layer", "masking is not supported yet; remove the Masking layer")
 
 
 _DROPOUT_LIKE = (
@@ -281,5 +291,5 @@ LAYERS: dict[str, Any] = {
     "BatchNormalization": _batch_norm,
     "Normalization": _normalization,
     "Embedding": _embedding,
-    "Masking": _masking,
+    "Masking": emit_masking,
 }

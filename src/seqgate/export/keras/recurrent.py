@@ -21,8 +21,10 @@ from seqgate.export.core.activations import cell_activation
 from seqgate.export.core.builder import GraphBuilder
 from seqgate.export.core.recurrent import CellActivation, Packed, keras_weights, stack_directions
 from seqgate.export.core.rnn_nodes import RecurrentCall, RecurrentOut, emit_recurrent
+from seqgate.export.keras import masked_recurrent as masked
 from seqgate.export.keras.activation import keras_activation
 from seqgate.export.keras.call import KerasCall
+from seqgate.export.keras.masking import mask_of
 
 _CELL_KIND = {"SimpleRNNCell": "rnn", "GRUCell": "gru", "LSTMCell": "lstm"}
 
@@ -63,8 +65,6 @@ def _pack(kind: str, cell: Any) -> Packed:
 
 def _initial_states(b: GraphBuilder, call: KerasCall, n_dirs: int, kind: str) -> tuple[str, str]:
     """Keras initial_state tensors ([h] / [h, c] per direction) → ONNX initial_h, initial_c."""
-    if call.kwargs.get("mask") is not None:
-        raise Refusal("a mask is passed to the layer", "masking is not supported yet")
     init = call.kwargs.get("initial_state")
     if init is None and len(call.args) > 1:
         init = call.args[1]
@@ -101,6 +101,9 @@ def emit_keras_rnn(b: GraphBuilder, call: KerasCall) -> list[str]:
     )
     h0, c0 = _initial_states(b, call, 1, kind)
     seqs, state = bool(layer.return_sequences), bool(layer.return_state)
+    mask = mask_of(call)
+    if mask is not None:
+        return _masked_rnn(b, rc, x.name, mask, (h0, c0), seqs, state, bool(layer.zero_output_for_mask))
     xt = b.transpose(x.name, [1, 0, 2])
     out = emit_recurrent(b, rc, xt, h0, c0, need_y=seqs, need_h=True, need_c=state and kind == "lstm")
     h = b.squeeze(out.y_h, [0])
@@ -116,6 +119,27 @@ def emit_keras_rnn(b: GraphBuilder, call: KerasCall) -> list[str]:
         results.append(h)
         if kind == "lstm":
             results.append(b.squeeze(out.y_c, [0]))
+    return results
+
+
+def _masked_rnn(b: GraphBuilder, rc: RecurrentCall, x: str, mask: Any, init: tuple[str, str],
+                seqs: bool, state: bool, zero: bool) -> list[str]:
+    """A masked SimpleRNN/GRU/LSTM (``masked_recurrent``); go_backwards = direction reverse."""
+    back = rc.direction == "reverse"
+    run = masked.run_masked(b, rc, x, mask, init[0], init[1], need_y=seqs)
+    results: list[str] = []
+    seq_slots = None
+    if seqs:
+        seq, slot = masked.sequence_at_positions(b, run, 0, reverse=back, zero_masked=zero)
+        seq_slots = [slot]
+        results.append(b.reverse_time(seq, 1) if back else seq)
+    else:
+        results.append(masked.last_output(b, run, 0, reverse=back, zero_masked=zero))
+    if state:
+        results.append(masked.state_of(b, run.h, 0))
+        if run.c is not None:
+            results.append(masked.state_of(b, run.c, 0))
+    masked.register(b, rc, run, seq_slots)
     return results
 
 
@@ -159,6 +183,10 @@ def emit_keras_bidirectional(b: GraphBuilder, call: KerasCall) -> list[str]:
     )
     h0, c0 = _initial_states(b, call, 2, kind)
     seqs, state = bool(fw.return_sequences), bool(fw.return_state)
+    mask = mask_of(call)
+    if mask is not None:
+        zero = (bool(fw.zero_output_for_mask), bool(bw.zero_output_for_mask))
+        return _masked_bidirectional(b, rc, x.name, mask, (h0, c0), mode, seqs, state, zero)
     xt = b.transpose(x.name, [1, 0, 2])
     out = emit_recurrent(b, rc, xt, h0, c0, need_y=seqs, need_h=True, need_c=state and kind == "lstm")
     results = _merge_sequences(b, out, mode, rc.hidden) if seqs else _merge_finals(b, out, mode, rc.hidden)
@@ -168,6 +196,39 @@ def emit_keras_bidirectional(b: GraphBuilder, call: KerasCall) -> list[str]:
             if kind == "lstm":
                 results.append(_pick(b, out.y_c, d))
     return results
+
+
+def _masked_bidirectional(b: GraphBuilder, rc: RecurrentCall, x: str, mask: Any, init: tuple[str, str],
+                          mode: str | None, seqs: bool, state: bool, zero: tuple[bool, bool]) -> list[str]:
+    """A masked Bidirectional: one bidirectional node over the compacted steps, merged as Keras."""
+    run = masked.run_masked(b, rc, x, mask, init[0], init[1], need_y=seqs)
+    seq_slots = None
+    if seqs:
+        pairs = [masked.sequence_at_positions(b, run, d, reverse=d == 1, zero_masked=zero[d]) for d in range(2)]
+        seq_slots = [p[1] for p in pairs]
+        parts = [p[0] for p in pairs]
+    else:
+        parts = [masked.last_output(b, run, d, reverse=d == 1, zero_masked=zero[d]) for d in range(2)]
+    results = _merge_parts(b, parts, mode)
+    if state:
+        for d in range(2):
+            results.append(masked.state_of(b, run.h, d))
+            if run.c is not None:
+                results.append(masked.state_of(b, run.c, d))
+    masked.register(b, rc, run, seq_slots)
+    return results
+
+
+def _merge_parts(b: GraphBuilder, parts: list[str], mode: str | None) -> list[str]:
+    """Keras Bidirectional merge of [forward, backward] on the last axis."""
+    f, bw = parts
+    if mode is None:
+        return [f, bw]
+    if mode == "concat":
+        return [b.op("Concat", [f, bw], axis=-1)]
+    if mode == "ave":
+        return [b.op("Div", [b.op("Add", [f, bw]), b.scalar(2.0, "two")])]
+    return [b.op("Add" if mode == "sum" else "Mul", [f, bw])]
 
 
 def _pick(b: GraphBuilder, x: str, index: int, axis: int = 0) -> str:

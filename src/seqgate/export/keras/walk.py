@@ -29,6 +29,7 @@ from seqgate.errors import (
 )
 from seqgate.export.core.builder import DimSpec, GraphBuilder, np_to_onnx_type
 from seqgate.export.keras.call import KV, KerasCall
+from seqgate.export.keras.masking import emit_mask_op, padding_metadata, refuse_unhandled_mask
 from seqgate.sources.keras_graph import graph_nodes, is_nested
 
 
@@ -51,7 +52,7 @@ def export_keras_model(model: Any, opset: int, metadata: dict[str, str]) -> Any:
     for t, oname in zip(graph.outputs, _output_names(model, graph), strict=True):
         v = values[id(t)]
         b.output(v.name, oname, np_to_onnx_type(np.dtype(v.dtype)), _output_dims(v.shape))
-    return b.build(metadata)
+    return b.build({**metadata, **padding_metadata(graph)})
 
 
 def _output_names(model: Any, graph: Any) -> list[str]:
@@ -131,13 +132,14 @@ def _walk(
     mask_only = _mask_only_nodes(graph)
     for node, layer in graph_nodes(graph):
         cls = type(layer).__name__
-        if id(node) in mask_only:
-            # mask arithmetic (Masking's not_equal/any): the layer taking the mask refuses it
-            for t in node.outputs:
-                values[id(t)] = KV(b.fresh(f"{prefix}{layer.name}/mask"), tuple(t.shape), str(t.dtype))
-            continue
         full = f"{prefix}{layer.name}"
         ins = [values[id(t)] for t in node.input_tensors]
+        if id(node) in mask_only:
+            # mask arithmetic (Masking's not_equal/any, Embedding's not_equal): see masking.py
+            names = emit_mask_op(b, node, ins, full, problems)
+            for t, n in zip(node.outputs, names, strict=True):
+                values[id(t)] = KV(n, tuple(t.shape), str(t.dtype))
+            continue
         if is_nested(layer):
             _walk_nested(b, layer, node, ins, values, full, problems, table)
             continue
@@ -227,6 +229,7 @@ def _map_one(
         return _placeholders(b, call)
     try:
         _check_dtype_policy(call.layer)
+        refuse_unhandled_mask(cls, call)
         with b.layer(call.name, cls):
             names = fn(b, call)
     except Refusal as r:

@@ -17,7 +17,7 @@ Contract:
 - Every refusal is collected, with the module's qualified name or the function and the
   source line; the walk goes on with placeholder values so one
   :class:`~seqgate.errors.UnsupportedModelError` (exit 3) lists every problem. A forward that
-  fx cannot trace (Python control flow on tensors, ``int(x.size(1))``, packed sequences) is
+  fx cannot trace (Python control flow on tensors, ``int(x.size(1))``, hand-built packed sequences) is
   also exit 3, naming the line and the construct to change.
 - Recurrent modules: one native ONNX node per stacked layer, probes named
   ``<qualname>/l<k>/<direction>/<kind>`` (``<qualname>/call<i>/l<k>/…`` for the i-th extra
@@ -86,7 +86,9 @@ def export_torch_module(
     if walk.problems:  # a refused step inside an unrolled loop is reported once, not once per step
         raise UnsupportedModelError(label, list(dict.fromkeys(walk.problems)))
     _declare_outputs(b, result, metas.get(_output_node(gm).name), plan, sa, sb, label)
-    return b.build(metadata)
+    from seqgate.export.torch.packing import padding_metadata
+
+    return b.build({**metadata, **padding_metadata(plan)})
 
 
 # ----- tracing ----------------------------------------------------------------------------
@@ -94,10 +96,18 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
     """``torch.fx`` GraphModule of ``module`` with asserts on fixed defaults and dead code removed."""
     import torch.fx
 
-    tracer = tracer_class()()
-    tracer.record_stack_traces = True
+    from seqgate.export.torch.packing import packing_leaves
+
     try:
-        graph = tracer.trace(module, concrete_args=dict(concrete) or None)
+        with packing_leaves(module) as leaves:
+            tracer = tracer_class()(autowrap_functions=leaves)
+            tracer.record_stack_traces = True
+            graph = tracer.trace(module, concrete_args=dict(concrete) or None)
+        for n in graph.nodes:
+            # fx would emit a process-wide wrap("torch.nn.utils.rnn.…") into the generated code,
+            # which breaks every later trace (KeyError); this graph is never traced again
+            if n.op == "call_function" and any(n.target is f for f in leaves):
+                n.meta.pop("is_wrapped", None)
         gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
     except Exception as e:
         raise UnsupportedModelError(label, [_untraceable(module, e)]) from None
@@ -235,9 +245,9 @@ def _untraceable(module: Any, e: BaseException) -> Unsupported:
 
 
 def _trace_hint(msg: str, code: str) -> str:
-    if "pack_padded" in code or "PackedSequence" in code or "pack_sequence" in code:
-        return ("packed sequences are not supported; pass the padded [batch, time, features] "
-                "tensor to the recurrent module")
+    if "PackedSequence" in code or "pack_sequence" in code:
+        return ("pack_sequence and hand-built PackedSequence objects are not supported; use "
+                "pack_padded_sequence(x, lengths, ...) with the lengths as a forward() input")
     if "takes 1 positional argument" in msg and ("zeros" in code or "ones" in code or "empty" in code):
         return ("torch.zeros/ones with a traced size as the first of several arguments cannot be traced; "
                 "pass the sizes as one tuple: torch.zeros((layers, x.size(0), hidden))")

@@ -292,6 +292,8 @@ def _reduce(op: str) -> Any:
             raise Refusal(f"{call.label} with dtype={a['dtype']}", "cast the input first")
         x = want_tensor(a["input"], "input")
         name = _as_float(b, x) if op == "ReduceMean" else x.name
+        if x.dtype == "bool" and op == "ReduceSum":  # torch sums a bool tensor as int64
+            name = b.op("Cast", [x.name], to=np_to_onnx_type(np.int64))
         return b.reduce(op, name, _axes(x, a["dim"]), keepdims=bool(a["keepdim"]))
 
     return fn

@@ -18,6 +18,10 @@ modules and ``contiguous``/``float``):
 - ``nn.Linear``: ``[batch, in_features]``;  ``nn.Conv1d``: ``[batch, C_in, time]``;
 - ``nn.Embedding``: ``[batch, time]`` of int64 (this also makes an ``--input`` spec int64).
 
+- ``pack_padded_sequence``'s lengths: ``[batch]`` int64, sampled as the full time size (valid
+  for sorted and unsorted packing); its data is read by the recurrent module in the layout the
+  packing call names (``batch_first`` of the call, not of the module).
+
 Other consumers (``torch.zeros_like(h0)``) are passed over; the first module of those kinds
 that reads the input, directly or through shape-keeping ops (activations, ``x - buffer``,
 ``x / 2``, slicing with slices only such as ``x[:, -12:]``), decides. Through
@@ -50,7 +54,8 @@ _PASS_MODULES = (
     "Identity", "ReLU", "Tanh", "Sigmoid", "GELU", "SiLU", "ELU", "LeakyReLU", "Softplus",
     "Hardtanh", "ReLU6", "Softsign", "Mish",
 )
-_PASS_METHODS = ("contiguous", "float", "to", "clone", "detach", "relu", "tanh", "sigmoid")
+_PASS_METHODS = ("contiguous", "float", "to", "clone", "detach", "relu", "tanh", "sigmoid",
+                 "cpu", "long", "int")
 _PASS_FUNCTIONS = ("relu", "tanh", "sigmoid", "dropout", "gelu", "silu",
                    "add", "sub", "mul", "truediv")  # x ∘ buffer or scalar: x's dims (broadcast)
 
@@ -65,6 +70,7 @@ class InputSpec:
     how: str = ""  # where the dims came from, for messages
     id_limit: int | None = None  # int inputs: sample ids in [0, id_limit)
     parts: int = 0  # 2: a (h0, c0) pair, given to ONNX as NAME_0 and NAME_1 of these dims
+    fill: str = ""  # "lengths": a pack_padded_sequence lengths input, sampled as the full time size
 
     @property
     def onnx_names(self) -> list[str]:
@@ -160,7 +166,8 @@ def infer_inputs(gm: Any, plan: Plan, user: dict[str, tuple[int | str, ...]], la
         g = _guess(gm, ph)
         if name in user:
             plan.inputs.append(InputSpec(name, user[name], g.dtype if g else "float32", "--input",
-                                         g.id_limit if g else None, g.parts if g else 0))
+                                         g.id_limit if g else None, g.parts if g else 0,
+                                         g.fill if g else ""))
         elif not ph.users:
             plan.unused.append(name)
         elif g is None:
@@ -183,9 +190,10 @@ class _Guess:
     id_limit: int | None = None
     parts: int = 0
     how: str = ""
+    fill: str = ""
 
     def spec(self, name: str) -> InputSpec:
-        return InputSpec(name, self.dims, self.dtype, self.how, self.id_limit, self.parts)
+        return InputSpec(name, self.dims, self.dtype, self.how, self.id_limit, self.parts, self.fill)
 
 
 Dims = tuple[int | str, ...]
@@ -205,6 +213,11 @@ def _guess(gm: Any, ph: Any) -> _Guess | None:
         if not used:
             continue
         src = node.args[0] if node.args and _carried(node.args[0], carry) else None
+        packed = _packing_guess(node, carry, src)
+        if isinstance(packed, _Guess):
+            return packed
+        if packed:
+            continue
         if node.op == "call_module":
             m = gm.get_submodule(node.target)
             cls = type(m).__name__
@@ -227,6 +240,23 @@ def _guess(gm: Any, ph: Any) -> _Guess | None:
             if inv is not None:
                 carry[node] = lambda d, inv=inv, up=carry[src]: None if (v := inv(d)) is None else up(v)
     return None
+
+
+def _packing_guess(node: Any, carry: dict[Any, Any], src: Any) -> _Guess | bool:
+    """``pack_padded_sequence(x, lengths, batch_first)``: the lengths are ``[batch]`` int64; the
+    data is carried to the recurrent module in the layout the packing call names."""
+    from seqgate.export.torch.packing import PACK
+
+    if node.op != "call_function" or node.target is not PACK:
+        return False
+    lengths = node.args[1] if len(node.args) > 1 else node.kwargs.get("lengths")
+    if _carried(lengths, carry) and lengths is not src:
+        return _Guess(("batch",), "int64", fill="lengths", how="pack_padded_sequence lengths")
+    if src is not None:
+        carry[node] = carry[src]
+        bf = node.args[2] if len(node.args) > 2 else node.kwargs.get("batch_first", False)
+        carry[("packed", node)] = bool(bf)
+    return True
 
 
 def _keeps_rank(node: Any) -> bool:
@@ -278,7 +308,8 @@ def _module_guess(m: Any, node: Any, carry: dict[Any, Any]) -> _Guess | None:
         d = 2 if m.bidirectional else 1
         if _carried(first, carry):
             f = int(m.input_size)
-            return _Guess(("batch", "time", f) if m.batch_first else ("time", "batch", f))
+            bf = carry.get(("packed", first), m.batch_first)  # a packed input has the packing's layout
+            return _Guess(("batch", "time", f) if bf else ("time", "batch", f))
         hx = node.args[1] if len(node.args) > 1 else node.kwargs.get("hx")
         # forward(x, hidden): hidden = (h0, c0)
         pair = 2 if isinstance(m, nn.LSTM) and _carried(hx, carry) else 0
@@ -351,7 +382,9 @@ def sample_args(plan: Plan, sizes: dict[str, int], seed: int) -> list[Any]:
             args.append(plan.concrete.get(name))
             continue
         shape = [sizes[d] if isinstance(d, str) else d for d in spec.dims]
-        if spec.dtype == "int64":
+        if spec.fill == "lengths":
+            args.append(torch.full(shape, sizes["time"], dtype=torch.int64))
+        elif spec.dtype == "int64":
             args.append(torch.randint(0, max(spec.id_limit or 2, 1), shape, generator=g))
         elif spec.parts:
             args.append(tuple(torch.randn(shape, generator=g) for _ in range(spec.parts)))

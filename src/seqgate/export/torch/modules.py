@@ -34,7 +34,7 @@ from torch import nn
 from seqgate.errors import Refusal
 from seqgate.export.core.builder import GraphBuilder
 from seqgate.export.core.recurrent import CellActivation, Packed, stack_directions, torch_weights
-from seqgate.export.core.rnn_nodes import RecurrentCall, emit_recurrent
+from seqgate.export.core.rnn_nodes import ProbeSlot, RecurrentCall, emit_recurrent, register_probe_slots
 from seqgate.export.torch.functions import activation
 from seqgate.export.torch.shapes import flatten
 from seqgate.export.torch.values import TV, TorchCall, bind, want_tensor
@@ -103,12 +103,19 @@ def _recurrent(b: GraphBuilder, call: TorchCall) -> Any:
     m = call.module
     kind = _KIND[next(c for c in type(m).__mro__ if c in _KIND)]
     a = _args(call)
-    x = want_tensor(a["input"], "input")
+    from seqgate.export.torch.packing import PackedV
+
+    packed = a["input"] if isinstance(a["input"], PackedV) else None
+    x = want_tensor(a["input"], "input") if packed is None else TV(packed.data_tnf, (None, None, m.input_size))
     h0, c0 = _states(m, kind, a.get("hx"))
     _check_rnn(m, x, (h0, c0))
     d, n_layers, hidden = (2 if m.bidirectional else 1), int(m.num_layers), int(m.hidden_size)
     need_y, need_h, need_c = call.uses(0), call.uses(1, 0) if kind == "lstm" else call.uses(1), call.uses(1, 1)
-    inp = b.transpose(x.name, [1, 0, 2]) if m.batch_first else x.name
+    if packed is not None:  # packing.py: time-major data, per-row lengths; finals always named for probes
+        need_h = need_c = True
+        inp = packed.data_tnf
+    else:
+        inp = b.transpose(x.name, [1, 0, 2]) if m.batch_first else x.name
     hs: list[str] = []
     cs: list[str] = []
     prefix = call.name if call.call_index == 0 else f"{call.name}/call{call.call_index}"
@@ -125,16 +132,33 @@ def _recurrent(b: GraphBuilder, call: TorchCall) -> Any:
         ih = _layer_slice(b, h0, k, d, n_layers)
         ic = _layer_slice(b, c0, k, d, n_layers)
         out = emit_recurrent(b, rc, inp, ih, ic, need_y=need_y or not last, need_h=need_h,
-                             need_c=need_c and kind == "lstm")
+                             need_c=need_c and kind == "lstm",
+                             sequence_lens=packed.lengths_i32 if packed else "", probes=packed is None)
+        if packed is not None:
+            _final_probes(b, rc, out, d)
         hs.append(out.y_h)
         cs.append(out.y_c)
         if need_y or not last:
             inp = b.squeeze(out.y, [1]) if d == 1 else b.reshape(b.transpose(out.y, [0, 2, 1, 3]), [0, 0, -1])
     y = (b.transpose(inp, [1, 0, 2]) if m.batch_first else inp) if need_y else None
+    if packed is not None and need_y:
+        y = PackedV(inp, packed.lengths_i32, packed.lengths_i64)  # type: ignore[assignment]
     h = _concat(b, hs) if need_h else None
     if kind != "lstm":
         return (y, h)
     return (y, (h, _concat(b, cs) if need_c else None))
+
+
+def _final_probes(b: GraphBuilder, rc: RecurrentCall, out: Any, d: int) -> None:
+    """Probes of a layer run on a packed input: the final states only (its Y is zero after each
+    row's length, where PyTorch's packed output has no value to compare)."""
+    slots = []
+    for k in range(d):
+        one = {"hidden_final": ProbeSlot(out.node, 1, out.y_h, "DNH", k)}
+        if out.y_c:
+            one["cell_final"] = ProbeSlot(out.node, 2, out.y_c, "DNH", k)
+        slots.append(one)
+    register_probe_slots(b, rc, slots)
 
 
 def _layer_slice(b: GraphBuilder, s: TV | None, k: int, d: int, n_layers: int) -> str:
