@@ -18,15 +18,14 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from seqgate import __version__
 from seqgate.errors import BadInputError
+from seqgate.export.metadata import source_metadata
 from seqgate.sources.keras import load_keras
 from seqgate.sources.spec import Source, parse_source
-from seqgate.util.files import check_writable, sha256_file, write_atomic
+from seqgate.util.files import check_writable, write_atomic
 
 DEFAULT_OPSET = 17
 MIN_OPSET = 17
-UNTRAINED_KEY = "seqgate.source.untrained"
 MAX_OPSET = 28  # highest onnx 1.23 knows; every opset in range runs on onnxruntime 1.32 (tests/test_opsets.py)
 
 
@@ -51,25 +50,6 @@ def check_opset(opset: int) -> int:
     return opset
 
 
-def source_metadata(src: Source, framework_version: str) -> dict[str, str]:
-    """The provenance written to metadata_props (no absolute paths: output stays reproducible)."""
-    meta = {
-        "seqgate.version": __version__,
-        "seqgate.source.framework": src.framework,
-        "seqgate.source.framework_version": framework_version,
-        "seqgate.source.text": _portable_text(src),
-    }
-    if src.path is not None:
-        meta["seqgate.source.file"] = src.path.name
-        meta["seqgate.source.sha256"] = sha256_file(src.path)
-    if src.weights is not None:
-        meta["seqgate.source.weights"] = src.weights.name
-        meta["seqgate.source.weights_sha256"] = sha256_file(src.weights)
-    elif src.framework == "torch":
-        meta[UNTRAINED_KEY] = "true"
-    return meta
-
-
 def check_weights_choice(src: Source, untrained: bool) -> None:
     """A PyTorch factory needs a weights file, or ``untrained`` to say it is meant to go without."""
     if src.framework != "torch":
@@ -88,13 +68,6 @@ def check_weights_choice(src: Source, untrained: bool) -> None:
             f"If the model is meant to be untrained (a test or placeholder), pass --untrained "
             f"([model] untrained = true); the file and every report then say so."
         )
-
-
-def _portable_text(src: Source) -> str:
-    """The source as typed, without directories, so exports made from any working dir match."""
-    if src.framework == "torch" and src.path is not None and src.factory:
-        return f"{src.path.name}:{src.factory}"
-    return Path(src.text).name if src.framework == "keras" else src.text
 
 
 def build_onnx(src: Source, opset: int = DEFAULT_OPSET, **options: Any) -> Any:

@@ -173,7 +173,6 @@ def profile_model(
     from seqgate.onnxfile.costs import summary
     from seqgate.onnxfile.load import load_onnx
     from seqgate.util.environment import environment
-    from seqgate.util.files import sha256_file
 
     opts = _options(locals())
     warmup, min_runs, min_time = opts["warmup"], opts["min_runs"], opts["min_time"]
@@ -189,10 +188,7 @@ def profile_model(
     thread_list = list(opts["threads"])
     _check_memory(plans, lengths, batch_list)
     src = _parse_source(source, weights)
-    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    if max(thread_list) > cores:
-        notes.append(f"--threads {max(thread_list)} is more than the {cores} cores this process may use; "
-                     f"those points measure oversubscription.")
+    _note_oversubscription(thread_list, notes)
     cost = summary(model)  # one pass of the cost model (two shape inferences) for every length
     macs = {t: cost["macs_per_sequence"] + cost["macs_per_step"] * t for t in lengths}
     runner = _open_runner(src, model, thread_list)
@@ -204,20 +200,31 @@ def profile_model(
         notes.append("some points have fewer than 100 runs: their p99 is close to their max; raise "
                      "--min-runs or --min-time for a steadier tail.")
     fits = fits_for(points, q, budget_list, notes)
-    env = environment()
-    env["session_options"] = sessions
     return ProfileReport(
-        model={"path": str(path), "sha256": sha256_file(path), "cost": cost,
-               "inputs": [{"name": p.name, "dtype": p.dtype, "dims": list(p.dims), "vocab": p.vocab}
-                          for p in plans],
-               "fixed_time": axes.fixed_time, "fixed_batch": axes.fixed_batch},
+        model=_model_record(path, cost, plans, axes),
         source=_source_record(src, sweep.agreement),
         options={"seq_lens": lengths, "batch_sizes": batch_list, "threads": thread_list, "warmup": warmup,
                  "min_runs": min_runs, "min_time": min_time, "percentile": q,
                  "budgets": [b.to_json() for b in budget_list]},
         seed=seed, points=points, fits=fits, budgets=budget_checks(points, budget_list, q, fits),
-        environment=env, timer=timer_overhead(), notes=notes,
+        environment={**environment(), "session_options": sessions}, timer=timer_overhead(), notes=notes,
     )
+
+
+def _model_record(path: Path, cost: dict[str, Any], plans: list[Any], axes: Any) -> dict[str, Any]:
+    from seqgate.util.files import sha256_file
+
+    return {"path": str(path), "sha256": sha256_file(path), "cost": cost,
+            "inputs": [{"name": p.name, "dtype": p.dtype, "dims": list(p.dims), "vocab": p.vocab}
+                       for p in plans],
+            "fixed_time": axes.fixed_time, "fixed_batch": axes.fixed_batch}
+
+
+def _note_oversubscription(thread_list: list[int], notes: list[str]) -> None:
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    if max(thread_list) > cores:
+        notes.append(f"--threads {max(thread_list)} is more than the {cores} cores this process may use; "
+                     f"those points measure oversubscription.")
 
 
 def _options(args: dict[str, Any]) -> dict[str, Any]:

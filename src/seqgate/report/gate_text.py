@@ -61,60 +61,10 @@ def gate_markdown(d: dict[str, Any]) -> str:
         lines.append(f"| {c['name']} | {'pass' if c['passed'] else '**fail**'} | {_cell(c['detail'])} |")
     if d.get("error"):
         lines += ["", "## Error", "", "```", d["error"]["message"], "```"]
-    v = d.get("verify")
-    if v:
-        fd = v.get("first_divergence")
-        if fd:
-            lines += [
-                "",
-                "## First divergence",
-                "",
-                f"`{fd['tensor']}` ({fd['kind']}, layer {fd.get('layer')}) "
-                f"in {fd['recording']}, step {_g(fd.get('step'))}, window {_g(fd.get('window'))}: "
-                f"max |Δ| {_g(fd.get('max_abs'))}, {fd.get('outside')} elements outside.",
-            ]
-        lines += [
-            "",
-            "## Tensors",
-            "",
-            "| tensor | kind | max abs | p99 abs | outside | verdict |",
-            "|---|---|---:|---:|---:|---|",
-        ]
-        for t in v["tensors"]:
-            m = t["metrics"]
-            lines.append(
-                f"| `{t['name']}` | {t['kind']} | {_g(m['max_abs'])} | {_g(m['p99_abs'])} | "
-                f"{m['outside']} | {'pass' if t['passed'] else '**fail**'} |"
-            )
-    p = d.get("profile")
-    if p:
-        lines += [
-            "",
-            "## Latency budgets",
-            "",
-            "| seq len | batch | threads | budget ms | measured ms | longest T within budget | verdict |",
-            "|---:|---:|---:|---:|---:|---|---|",
-        ]
-        for b in p.get("budgets") or []:
-            lines.append(
-                f"| {b['seq_len']} | {b['batch']} | {b['threads']} | {_g(b['budget_ms'])} | "
-                f"{_g(b['measured_ms'])} | {_longest(b)} | {'pass' if b['passed'] else '**fail**'} |"
-            )
-        lines += ["", "Verdicts come from the percentile measured at each budget's length; a length the "
-                      "latency line predicts outside the measured lengths is marked extrapolated and decides "
-                      "nothing."]
-        lines += [
-            "",
-            "## Latency points",
-            "",
-            "| runtime | seq len | batch | threads | p50 ms | p99 ms | speed-up |",
-            "|---|---:|---:|---:|---:|---:|---:|",
-        ]
-        for pt in p.get("points") or []:
-            lines.append(
-                f"| {pt['runtime']} | {pt['seq_len']} | {pt['batch']} | {pt['threads']} | "
-                f"{_g(pt['p50_ms'])} | {_g(pt['p99_ms'])} | {_g(pt.get('speedup'))} |"
-            )
+    if d.get("verify"):
+        lines += _verify_lines(d["verify"])
+    if d.get("profile"):
+        lines += _latency_lines(d["profile"])
     lines += ["", "## Provenance", ""]
     if prov:
         lines += _provenance_lines(prov)
@@ -128,6 +78,67 @@ def gate_markdown(d: dict[str, Any]) -> str:
         "fit for a safety-relevant use.",
     ]
     return "\n".join(lines) + "\n"
+
+
+def _verify_lines(v: dict[str, Any]) -> list[str]:
+    """First divergence (when there is one) and the table of tensors."""
+    lines: list[str] = []
+    fd = v.get("first_divergence")
+    if fd:
+        lines += [
+            "",
+            "## First divergence",
+            "",
+            f"`{fd['tensor']}` ({fd['kind']}, layer {fd.get('layer')}) "
+            f"in {fd['recording']}, step {_g(fd.get('step'))}, window {_g(fd.get('window'))}: "
+            f"max |Δ| {_g(fd.get('max_abs'))}, {fd.get('outside')} elements outside.",
+        ]
+    lines += [
+        "",
+        "## Tensors",
+        "",
+        "| tensor | kind | max abs | p99 abs | outside | verdict |",
+        "|---|---|---:|---:|---:|---|",
+    ]
+    for t in v["tensors"]:
+        m = t["metrics"]
+        lines.append(
+            f"| `{t['name']}` | {t['kind']} | {_g(m['max_abs'])} | {_g(m['p99_abs'])} | "
+            f"{m['outside']} | {'pass' if t['passed'] else '**fail**'} |"
+        )
+    return lines
+
+
+def _latency_lines(p: dict[str, Any]) -> list[str]:
+    """Budget verdicts (measured lengths only) and the latency points."""
+    lines = [
+        "",
+        "## Latency budgets",
+        "",
+        "| seq len | batch | threads | budget ms | measured ms | longest T within budget | verdict |",
+        "|---:|---:|---:|---:|---:|---|---|",
+    ]
+    for b in p.get("budgets") or []:
+        lines.append(
+            f"| {b['seq_len']} | {b['batch']} | {b['threads']} | {_g(b['budget_ms'])} | "
+            f"{_g(b['measured_ms'])} | {_longest(b)} | {'pass' if b['passed'] else '**fail**'} |"
+        )
+    lines += ["", "Verdicts come from the percentile measured at each budget's length; a length the "
+                  "latency line predicts outside the measured lengths is marked extrapolated and decides "
+                  "nothing."]
+    lines += [
+        "",
+        "## Latency points",
+        "",
+        "| runtime | seq len | batch | threads | p50 ms | p99 ms | speed-up |",
+        "|---|---:|---:|---:|---:|---:|---:|",
+    ]
+    for pt in p.get("points") or []:
+        lines.append(
+            f"| {pt['runtime']} | {pt['seq_len']} | {pt['batch']} | {pt['threads']} | "
+            f"{_g(pt['p50_ms'])} | {_g(pt['p99_ms'])} | {_g(pt.get('speedup'))} |"
+        )
+    return lines
 
 
 def _provenance_lines(prov: dict[str, Any]) -> list[str]:

@@ -15,13 +15,8 @@ import io
 import os
 from typing import Any
 
+from seqgate.report.columns import CSV_COLUMNS
 from seqgate.util.files import write_atomic, write_text_atomic
-
-CSV_COLUMNS = (
-    "seq_len", "batch", "threads", "runtime", "p50_ms", "p90_ms", "p99_ms", "min_ms", "max_ms",
-    "mean_ms", "std_ms", "runs", "sequences_per_s", "steps_per_s", "us_per_step",
-    "macs_per_sequence", "gflops", "speedup", "framework_threads",
-)
 
 
 def write_json(report: dict[str, Any], path: str | os.PathLike[str]) -> None:

@@ -47,7 +47,7 @@ def written_by_seqgate(path: Path) -> bool:
     if suffix == ".xml":
         return b'<testsuites name="seqgate ' in head
     if suffix == ".csv":
-        from seqgate.report.profile_report import CSV_COLUMNS
+        from seqgate.report.columns import CSV_COLUMNS
 
         return head.split(b"\n", 1)[0].decode("utf-8", "replace") == ",".join(CSV_COLUMNS)
     if suffix == ".png":

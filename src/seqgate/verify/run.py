@@ -348,7 +348,6 @@ def verify_model(
     """
     from seqgate.onnxfile.load import load_onnx
     from seqgate.util.environment import environment
-    from seqgate.verify.synthetic import read_padding, synthetic_sets
 
     opts, tol = _settings(locals())
     synthetic, batch_size, states, oracle, task, seed = (
@@ -362,58 +361,85 @@ def verify_model(
     path = Path(model_path)
     model = load_onnx(path)
     src = source if isinstance(source, Source) else parse_source(source, weights)
+    prov, probes, warnings = _check_source(model, src, states)
+    specs = input_specs(model)
+    recs = _window_sets(model, specs, windows, synthetic, batch_size, seed)
+    infos = tensor_infos(model, probes)
+    warnings += [f"tolerance pattern {p!r} matches no tensor" for p in tol.unmatched([t.name for t in infos])]
+    onnx_runner, src_runner = _runners(model, src, probes, states, recs, specs, str(path))
+    comparer = Comparer(infos, tol, _classes(model, task), specs, output_dims(model))
+    comparer.where = (str(path), src.text)
+    results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress or SILENT)
+    oracle_out = None
+    if oracle:
+        from seqgate.verify.oracle import run_oracle
+
+        oracle_out = run_oracle(model, probes, infos, results, onnx_runner, src_runner, tol)
+    first = _first_divergence(infos, results)
+    return VerifyReport(
+        passed=first is None,
+        tensors=[_tensor_entry(t, results, comparer.batch_axis.get(t.name, 0)) for t in infos],
+        first_divergence=first, recordings=[r.recording.to_json() for r in results],
+        model=_model_record(path, specs), source=_source_record(src), seed=seed,
+        settings={**{k: opts[k] for k in ("batch_size", "states", "synthetic", "task", "oracle")},
+                  "atol": tol.atol, "rtol": tol.rtol, "tolerances_file": tolerances,
+                  "tolerance": [o.to_json() for o in tol.overrides]},
+        environment=environment(), oracle=oracle_out, warnings=warnings, provenance=prov)
+
+
+def _model_record(path: Path, specs: list[InputSpec]) -> dict[str, Any]:
+    return {"path": str(path), "sha256": sha256_file(path),
+            "inputs": [{"name": s.name, "dtype": s.dtype.name, "dims": list(s.dims)} for s in specs]}
+
+
+def _source_record(src: Source) -> dict[str, Any]:
+    return {"text": src.text, "framework": src.framework,
+            "files": [{"path": str(f), "sha256": sha256_file(f)} for f in src.files()]}
+
+
+def _check_source(model: Any, src: Source, states: bool) -> tuple[Any, list[Probe], list[str]]:
+    """Framework and provenance checks; the probes to compare (none when ``states`` is off); warnings."""
     warnings: list[str] = []
     _check_framework(model, src)
     prov = _provenance(model, src, warnings)
     probes = read_probe_map(model) if states else []
     if states and not probes:
         warnings.append("the ONNX file has no seqgate probe map: only the model outputs were compared.")
-    specs = input_specs(model)
+    return prov, probes, warnings
+
+
+def _window_sets(model: Any, specs: list[InputSpec], windows: list[str | Path], synthetic: bool,
+                 batch_size: int, seed: int) -> list[Recording]:
+    """The recordings as given, then the synthetic sets (scaled from the first recording's statistics)."""
+    from seqgate.verify.synthetic import read_padding, synthetic_sets
+
     recs = [load_recording(w, specs) for w in windows]
     if synthetic:
         stats = feature_stats(recs[0], batch_size) if recs else None
         recs += synthetic_sets(specs, stats, seed, padding=read_padding(model))
-    infos = tensor_infos(model, probes)
-    warnings += [f"tolerance pattern {p!r} matches no tensor" for p in tol.unmatched([t.name for t in infos])]
-    from seqgate.runtimes.factory import open_source_runner
+    return recs
+
+
+def _runners(model: Any, src: Source, probes: list[Probe], states: bool, recs: list[Recording],
+             specs: list[InputSpec], label: str) -> tuple[Any, Any]:
+    """ONNX Runtime's runner and the source framework's, after checking the file fits the source."""
+    from seqgate.runtimes.factory import load_source_model, open_source_runner
     from seqgate.runtimes.onnx import OnnxRunner
 
     onnx_runner = OnnxRunner(model, probes)
-    output_names = [o.name for o in model.graph.output]
-    from seqgate.runtimes.factory import load_source_model
-
     loaded = load_source_model(src)
-    _check_interface(model, src, loaded, recs, specs, onnx_runner, str(path))
-    src_runner = open_source_runner(src, probes, output_names, states, loaded=loaded)
-    if task == "classify":
-        classes = set(output_names)
-    elif task == "regress":
-        classes = set()
-    else:
-        classes = _class_outputs(model)
-    comparer = Comparer(infos, tol, classes, specs, output_dims(model))
-    comparer.where = (str(path), src.text)
-    results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress or SILENT)
-    entries = [_tensor_entry(t, results, comparer.batch_axis.get(t.name, 0)) for t in infos]
-    first = _first_divergence(infos, results)
-    oracle_out = None
-    if oracle:
-        from seqgate.verify.oracle import run_oracle
+    _check_interface(model, src, loaded, recs, specs, onnx_runner, label)
+    output_names = [o.name for o in model.graph.output]
+    return onnx_runner, open_source_runner(src, probes, output_names, states, loaded=loaded)
 
-        oracle_out = run_oracle(model, probes, infos, results, onnx_runner, src_runner, tol)
-    env = environment()
-    return VerifyReport(
-        passed=first is None, tensors=entries, first_divergence=first,
-        recordings=[r.recording.to_json() for r in results],
-        model={"path": str(path), "sha256": sha256_file(path), "inputs": [
-            {"name": s.name, "dtype": s.dtype.name, "dims": list(s.dims)} for s in specs]},
-        source={"text": src.text, "framework": src.framework,
-                "files": [{"path": str(f), "sha256": sha256_file(f)} for f in src.files()]},
-        seed=seed, settings={"atol": tol.atol, "rtol": tol.rtol, "batch_size": batch_size, "states": states,
-                             "synthetic": synthetic, "task": task, "oracle": oracle,
-                             "tolerances_file": tolerances,
-                             "tolerance": [o.to_json() for o in tol.overrides]},
-        environment=env, oracle=oracle_out, warnings=warnings, provenance=prov)
+
+def _classes(model: Any, task: str | None) -> set[str]:
+    """Outputs judged as class scores (top-1 agreement): all for classify, none for regress, else guessed."""
+    if task == "classify":
+        return {o.name for o in model.graph.output}
+    if task == "regress":
+        return set()
+    return _class_outputs(model)
 
 
 def _settings(args: dict[str, Any]) -> tuple[dict[str, Any], Tolerances]:

@@ -27,11 +27,12 @@ Contract:
 from __future__ import annotations
 
 import operator
-from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 from seqgate.errors import MappingError, Refusal, SeqgateError, Unsupported, UnsupportedModelError
 from seqgate.export.core.builder import GraphBuilder, np_to_onnx_type
+from seqgate.export.torch.inplace import inplace_problems
 from seqgate.export.torch.inputs import (
     Plan,
     TMeta,
@@ -41,15 +42,15 @@ from seqgate.export.torch.inputs import (
     parse_input_options,
     record_runs,
 )
+from seqgate.export.torch.untraceable import untraceable
 from seqgate.export.torch.values import TV, UNKNOWN, TorchCall, source_line
 from seqgate.sources.spec import Source
 from seqgate.util.outputs import flatten_with_paths
-from seqgate.util.text import first_line
 
 
 def export_torch_source(src: Source, opset: int, inputs: list[str] | None = None, **options: Any) -> Any:
     """Load ``src`` (``sources_torch.load_torch``) and return its ONNX ModelProto."""
-    from seqgate.export.run import source_metadata
+    from seqgate.export.metadata import source_metadata
     from seqgate.sources.torch import load_torch_with_info
     from seqgate.util.frameworks import version_of
 
@@ -110,7 +111,7 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
                 n.meta.pop("is_wrapped", None)
         gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
     except Exception as e:
-        raise UnsupportedModelError(label, [_untraceable(module, e)]) from None
+        raise UnsupportedModelError(label, [untraceable(module, e)]) from None
     return clean(gm, label)
 
 
@@ -162,107 +163,12 @@ def clean(gm: Any, label: str) -> Any:
     for n in list(gm.graph.nodes):
         if n.op == "call_function" and n.target in asserts:
             gm.graph.erase_node(n)
-    problems = _inplace_problems(gm)  # before dead-code removal, which would drop them silently
+    problems = inplace_problems(gm)  # before dead-code removal, which would drop them silently
     if problems:
         raise UnsupportedModelError(label, problems)
     gm.graph.eliminate_dead_code()
     gm.recompile()
     return gm
-
-
-# Results that share memory with their input, so mutating them mutates the input too.
-_ALIASING = {"getitem", "view", "reshape", "transpose", "permute", "squeeze", "unsqueeze", "expand",
-             "flatten", "narrow", "select", "t", "view_as", "reshape_as", "expand_as", "chunk", "split",
-             "unbind", "contiguous", "detach", "swapaxes", "swapdims", "Identity", "Dropout", "Dropout1d",
-             "Dropout2d", "Dropout3d", "AlphaDropout", "FeatureAlphaDropout", "Flatten"}
-
-
-def _inplace_problems(gm: Any) -> list[Unsupported]:
-    """In-place ops are exported as their out-of-place form only when that is the same program.
-
-    That holds when the op's result is used and its input has no other live reader and is not
-    a view of another tensor (``y = lin(x); y = y.relu_()``). Anything else (``y.relu_()`` as a
-    statement, in-place on a slice) is refused: fx records the call, but the functional graph
-    would not see the mutation.
-    """
-    out: list[Unsupported] = []
-    for n in gm.graph.nodes:
-        what = _inplace_label(gm, n)
-        if what is None:
-            continue
-        src = n.args[0] if n.args else None
-        live = [u for u in getattr(src, "users", {}) if u.users or u is n or u.op == "output"]
-        ok = (bool(n.users) and hasattr(src, "op") and live == [n]
-              and _name_of(gm, src) not in _ALIASING)
-        if not ok:
-            line = source_line(n)
-            out.append(Unsupported(f"{what}{' at ' + line if line else ''}",
-                                   "in-place operation whose effect the exported graph would not see",
-                                   "write it out of place and use the result (y = torch.relu(y))"))
-    return out
-
-
-def _inplace_label(gm: Any, n: Any) -> str | None:
-    from seqgate.export.torch.functions import function_label
-
-    if n.op == "call_method" and n.target.endswith("_") and not n.target.startswith("__"):
-        return f"Tensor.{n.target}"
-    if n.op == "call_function":
-        name = getattr(n.target, "__name__", "")
-        if (name.endswith("_") and not name.startswith("__")) or n.kwargs.get("inplace") is True:
-            return function_label(n.target)
-    if n.op == "call_module" and getattr(gm.get_submodule(n.target), "inplace", False) is True:
-        return f"{n.target} ({type(gm.get_submodule(n.target)).__name__}, inplace=True)"
-    return None
-
-
-def _name_of(gm: Any, n: Any) -> str:
-    if n.op == "call_method":
-        return str(n.target)
-    if n.op == "call_module":
-        return type(gm.get_submodule(n.target)).__name__
-    return getattr(n.target, "__name__", "") if n.op == "call_function" else n.op
-
-
-def _untraceable(module: Any, e: BaseException) -> Unsupported:
-    import traceback
-
-    import torch
-
-    torch_dir = str(Path(torch.__file__).parent)
-    own_dir = str(Path(__file__).parents[2])  # src/seqgate
-    frames = [f for f in traceback.extract_tb(e.__traceback__)
-              if not f.filename.startswith((torch_dir, own_dir))]
-    at = ""
-    code = ""
-    if frames:
-        f = frames[-1]
-        code = (f.line or "").strip()
-        at = f" at {Path(f.filename).name}:{f.lineno}: `{code}`"
-    msg = first_line(e)
-    return Unsupported(f"{type(module).__name__}.forward{at}",
-                       f"torch.fx cannot trace it ({type(e).__name__}: {msg})", _trace_hint(msg, code))
-
-
-def _trace_hint(msg: str, code: str) -> str:
-    if "PackedSequence" in code or "pack_sequence" in code:
-        return ("pack_sequence and hand-built PackedSequence objects are not supported; use "
-                "pack_padded_sequence(x, lengths, ...) with the lengths as a forward() input")
-    if "takes 1 positional argument" in msg and ("zeros" in code or "ones" in code or "empty" in code):
-        return ("torch.zeros/ones with a traced size as the first of several arguments cannot be traced; "
-                "pass the sizes as one tuple: torch.zeros((layers, x.size(0), hidden))")
-    if "does not support item assignment" in msg:
-        return "build the tensor with torch.cat/torch.stack/torch.where instead of assigning into it"
-    if "'len' is not supported" in msg:
-        return "use x.size(0) instead of len(x)"
-    if "control flow" in msg:
-        return ("a tensor (or a size read from it) decides a Python if/while/for/assert or bool(); "
-                "decide on a constructor argument instead, or express it with tensor operations")
-    if "Proxy" in msg and ("int" in msg or "integer" in msg or "index" in msg):
-        return ("a tensor size is turned into a Python int (int(x.size(1)), range(x.size(0)), "
-                "a Python loop over time); keep sizes as x.size(d) values passed to view/reshape, "
-                "and let the recurrent module loop over time")
-    return "rewrite that line with tensor operations on the forward() inputs"
 
 
 def _output_node(gm: Any) -> Any:
@@ -337,7 +243,7 @@ class _Walk:
         index = self.calls.get(name, 0) if node.op == "call_module" else 0
         self.calls[name] = index + 1
         used = frozenset(_used_paths(node, meta))
-        call = TorchCall(node, name, args, kwargs, meta, module, used, index, kind)
+        call = TorchCall(node, name, args, kwargs, meta, module, used, index, kind, CAPTURE)
         try:
             with self.b.layer(name, kind, record_empty=node.op == "call_module"):
                 raw = fn(self.b, call)
@@ -506,3 +412,7 @@ def _meta_at(meta: Any, path: tuple[Any, ...]) -> Any:
         else:
             return None
     return meta
+
+
+# What a mapping that walks a sub-graph receives as ``TorchCall.capture``.
+CAPTURE = SimpleNamespace(walk=_Walk, clean=clean, tracer_class=tracer_class)

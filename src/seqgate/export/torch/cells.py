@@ -129,9 +129,9 @@ def cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
     if x.rank != 3:
         raise Refusal(f"input of rank {x.rank}", "loop over a [batch, time, features] tensor")
     init = [want_tensor(a, "initial state") if a is not None else None for a in call.args[1:]]
-    from seqgate.export.torch.loopfold import _fill
+    from seqgate.export.torch.loopfold import fill_dims
 
-    hx = _fill(m.template["first"], init, None)
+    hx = fill_dims(m.template["first"], init, None)
     h0, c0 = _state(kind, hx[0] if hx else None)
     rc = _call(m.cell, kind, m.cell_name, m.cell_name, {"cell_calls": list(m.calls)})
     xt = b.transpose(x.name, [1, 0, 2]) if m.axis == 1 else x.name

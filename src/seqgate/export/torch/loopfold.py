@@ -56,7 +56,7 @@ def _cell_loop_class() -> type:
             out: Any = None
             seq = []
             for t in range(x.size(self.axis)):
-                state = _fill(self.template["first" if t == 0 else "later"], init, out)
+                state = fill_dims(self.template["first" if t == 0 else "later"], init, out)
                 out = self.cell(x.select(self.axis, t), *state)
                 if self.seq_path is not None:
                     seq.append(_at(out, self.seq_path))
@@ -75,14 +75,14 @@ def cell_loop_class() -> type:
     return _CLASS[0]
 
 
-def _fill(template: Any, init: Any, prev: Any) -> Any:
+def fill_dims(template: Any, init: Any, prev: Any) -> Any:
     if isinstance(template, tuple) and len(template) == 2 and template[0] in ("init", "path"):
         return init[template[1]] if template[0] == "init" and init is not None else (
             _at(prev, template[1]) if template[0] == "path" else None)
     if isinstance(template, list):
-        return [_fill(t, init, prev) for t in template]
+        return [fill_dims(t, init, prev) for t in template]
     if isinstance(template, tuple):
-        return tuple(_fill(t, init, prev) for t in template)
+        return tuple(fill_dims(t, init, prev) for t in template)
     return template
 
 

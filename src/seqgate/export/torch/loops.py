@@ -57,17 +57,14 @@ def user_cell_candidates(module: Any) -> list[Any]:
     return out
 
 
-def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int] = frozenset()) -> Any:
-    """A tracer class derived from ``base`` (capture's leaf rules) that carries sample values."""
-    import torch
+def _proxy_class() -> type:
+    """A proxy whose sizes can be read as Python numbers (the sample's)."""
     import torch.fx
-    from torch.fx.proxy import Attribute, TraceError
+    from torch.fx.proxy import TraceError
 
     class ValueProxy(torch.fx.Proxy):
-        """A proxy whose sizes can be read as Python numbers (the sample's)."""
-
         def __index__(self) -> int:
-            v = self.tracer.value_of(self)
+            v = self.tracer.value_of(self)  # type: ignore[attr-defined]
             if isinstance(v, int) and not isinstance(v, bool):
                 return v
             raise TraceError(f"{self.node.name} is a tensor, not an integer")
@@ -76,15 +73,78 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
             return self.__index__()
 
         def __len__(self) -> int:
-            return len(self.tracer.value_of(self))
+            return len(self.tracer.value_of(self))  # type: ignore[attr-defined]
 
         def __iter__(self) -> Any:
-            return iter([self[i] for i in range(len(self.tracer.value_of(self)))])
+            return iter([self[i] for i in range(len(self.tracer.value_of(self)))])  # type: ignore[attr-defined]
 
-    class ValueTracer(base):  # type: ignore[misc, valid-type]
-        """See the module docstring. ``computing`` is set while a sample value is evaluated,
-        so module calls inside that evaluation run eagerly instead of being recorded."""
+    return ValueProxy
 
+
+class _SampleValues:
+    """Tracer mixin: every recorded node also gets its value on the sample inputs (``values``)."""
+
+    inputs: dict[str, Any]
+    values: dict[Any, Any]
+    computing: bool
+    root: Any
+
+    def value_of(self, a: Any) -> Any:
+        import torch.fx
+        from torch.fx.proxy import Attribute
+
+        if isinstance(a, Attribute):
+            return getattr(self.value_of(a.root), a.attr)
+        if isinstance(a, torch.fx.Proxy):
+            return self.values[a.node]
+        if isinstance(a, list | tuple):
+            return type(a)(self.value_of(x) for x in a)
+        if isinstance(a, dict):
+            return {k: self.value_of(v) for k, v in a.items()}
+        if isinstance(a, slice):
+            return slice(self.value_of(a.start), self.value_of(a.stop), self.value_of(a.step))
+        return a
+
+    def create_proxy(self, kind: str, target: Any, args: Any, kwargs: Any, name: Any = None,
+                     type_expr: Any = None, proxy_factory_fn: Any = None) -> Any:
+        import torch
+
+        p = super().create_proxy(kind, target, args, kwargs, name, type_expr, proxy_factory_fn)  # type: ignore[misc]
+        self.computing = True
+        try:
+            with torch.no_grad():
+                self.values[p.node] = self._evaluate(kind, target, args, kwargs)
+        finally:
+            self.computing = False
+        return p
+
+    def _evaluate(self, kind: str, target: Any, args: Any, kwargs: Any) -> Any:
+        if kind == "placeholder":
+            return self.inputs.get(target)
+        if kind == "get_attr":
+            obj: Any = self.root
+            for part in str(target).split("."):
+                obj = getattr(obj, part)
+            return obj
+        a, k = self.value_of(args), self.value_of(kwargs)
+        if kind == "call_module":
+            return self.root.get_submodule(target)(*a, **k)
+        if kind == "call_method":
+            return getattr(a[0], target)(*a[1:], **k)
+        if kind == "call_function":
+            return target(*a, **k)
+        return None
+
+
+def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int] = frozenset()) -> Any:
+    """A tracer class derived from ``base`` (capture's leaf rules) that carries sample values.
+
+    ``computing`` is set while a sample value is evaluated, so module calls inside that
+    evaluation run eagerly instead of being recorded.
+    """
+    proxy_class = _proxy_class()
+
+    class ValueTracer(_SampleValues, base):  # type: ignore[misc, valid-type]
         def __init__(self) -> None:
             super().__init__()
             self.inputs = inputs
@@ -92,7 +152,7 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
             self.computing = False
 
         def proxy(self, node: Any) -> Any:
-            return ValueProxy(node, self)
+            return proxy_class(node, self)
 
         def is_leaf_module(self, m: Any, qualname: str) -> bool:
             return id(m) in leaves or super().is_leaf_module(m, qualname)
@@ -106,47 +166,6 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
             if self.computing:
                 return attr_val
             return super().getattr(attr, attr_val, parameter_proxy_cache)
-
-        def value_of(self, a: Any) -> Any:
-            if isinstance(a, Attribute):
-                return getattr(self.value_of(a.root), a.attr)
-            if isinstance(a, torch.fx.Proxy):
-                return self.values[a.node]
-            if isinstance(a, list | tuple):
-                return type(a)(self.value_of(x) for x in a)
-            if isinstance(a, dict):
-                return {k: self.value_of(v) for k, v in a.items()}
-            if isinstance(a, slice):
-                return slice(self.value_of(a.start), self.value_of(a.stop), self.value_of(a.step))
-            return a
-
-        def create_proxy(self, kind: str, target: Any, args: Any, kwargs: Any, name: Any = None,
-                         type_expr: Any = None, proxy_factory_fn: Any = None) -> Any:
-            p = super().create_proxy(kind, target, args, kwargs, name, type_expr, proxy_factory_fn)
-            self.computing = True
-            try:
-                with torch.no_grad():
-                    self.values[p.node] = self._evaluate(kind, target, args, kwargs)
-            finally:
-                self.computing = False
-            return p
-
-        def _evaluate(self, kind: str, target: Any, args: Any, kwargs: Any) -> Any:
-            if kind == "placeholder":
-                return self.inputs.get(target)
-            if kind == "get_attr":
-                obj: Any = self.root
-                for part in str(target).split("."):
-                    obj = getattr(obj, part)
-                return obj
-            a, k = self.value_of(args), self.value_of(kwargs)
-            if kind == "call_module":
-                return self.root.get_submodule(target)(*a, **k)
-            if kind == "call_method":
-                return getattr(a[0], target)(*a[1:], **k)
-            if kind == "call_function":
-                return target(*a, **k)
-            return None
 
     return ValueTracer
 
@@ -218,7 +237,7 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
                 label: str) -> tuple[Any, dict[Any, Any]]:
     import torch.fx
 
-    from seqgate.export.torch.capture import _untraceable
+    from seqgate.export.torch.untraceable import untraceable
 
     tracer = tracer_cls()
     tracer.record_stack_traces = True
@@ -226,7 +245,7 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
         with _factories_recorded(tracer):
             graph = tracer.trace(module, concrete_args=dict(concrete) or None)
     except Exception as e:
-        raise UnsupportedModelError(label, [_untraceable(module, e)]) from None
+        raise UnsupportedModelError(label, [untraceable(module, e)]) from None
     return torch.fx.GraphModule(tracer.root, graph, type(module).__name__), tracer.values
 
 

@@ -67,7 +67,7 @@ def user_cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
     seq_path = m.seq_path if m.seq_path is not None else out_paths[0]
     if seq_path not in out_paths:
         raise Refusal("the loop collects a value that is not carried state")
-    body = _body(b, m, x, states, carried, out_paths.index(seq_path))
+    body = _body(b, call.capture, m, x, states, carried, out_paths.index(seq_path))
     finals = [b.fresh("state") for _ in carried]
     seq = b.fresh("sequence")
     b.node("Scan", [s.name for s in states] + [x.name], [*finals, seq], body=body,
@@ -91,19 +91,18 @@ def _structure(paths: list[Path], names: list[str]) -> Any:
     return tuple(parts)
 
 
-def _body(b: GraphBuilder, m: Any, x: TV, states: list[TV], carried: list[tuple[Path, Path, int]],
-          seq_index: int) -> Any:
-    """The Scan body: the cell's traced forward, walked into its own graph."""
-    from seqgate.export.torch.capture import _Walk, clean, tracer_class
+def _body(b: GraphBuilder, capture: Any, m: Any, x: TV, states: list[TV],
+          carried: list[tuple[Path, Path, int]], seq_index: int) -> Any:
+    """The Scan body: the cell's traced forward, walked into its own graph by ``capture.walk``."""
     from seqgate.export.torch.inputs import InputSpec, forward_params, record_runs
 
     label = f"{m.cell_name} ({type(m.cell).__name__})"
     plan = forward_params(m.cell, {}, label)
-    tracer = tracer_class()()
+    tracer = capture.tracer_class()()
     try:
         import torch.fx
 
-        gm = clean(torch.fx.GraphModule(m.cell, tracer.trace(m.cell), type(m.cell).__name__), label)
+        gm = capture.clean(torch.fx.GraphModule(m.cell, tracer.trace(m.cell), type(m.cell).__name__), label)
     except Refusal:
         raise
     except Exception as e:
@@ -127,7 +126,7 @@ def _body(b: GraphBuilder, m: Any, x: TV, states: list[TV], carried: list[tuple[
     plan.inputs = specs
     metas, _, _ = record_runs(gm, plan, label)
     sub = GraphBuilder(b.opset, graph_name=f"{m.cell_name}_step", framework="torch")
-    walk = _Walk(sub, gm, metas)
+    walk = capture.walk(sub, gm, metas)
     result = walk.run(plan)
     if walk.problems:
         raise Refusal("; ".join(p.line() for p in dict.fromkeys(walk.problems)))

@@ -176,6 +176,9 @@ class TorchCall:
     used: frozenset[tuple[int, ...]] = frozenset({()})
     call_index: int = 0
     label: str = ""  # "Tensor.view", "torch.cat", "LSTM" — for messages
+    # The capture itself (``walk``, ``clean``, ``tracer_class``) for mappings that walk a
+    # sub-graph (a user cell's step): handed in, so those modules need not import the walker.
+    capture: Any = None
 
     def uses(self, *path: int) -> bool:
         """Is the part of the result at ``path`` (e.g. ``(1, 0)`` = h of an LSTM) needed?"""
