@@ -84,3 +84,22 @@ def test_windows_rerun_replaces_its_own_recording(tmp_path: Path) -> None:
     assert first.exit_code == 0, first.output
     assert written_by_seqgate(out)
     assert runner.invoke(app, args).exit_code == 0
+
+
+@pytest.mark.parametrize("name", ["notes.json", "notes.md"])
+def test_verify_refuses_to_replace_a_foreign_report(tmp_path: Path, name: str) -> None:
+    model = tmp_path / "m.onnx"
+    assert _export(model) == 0
+    foreign = tmp_path / name
+    foreign.write_text('{"schema": "someone-else/1"}' if name.endswith(".json") else "# my notes\n")
+    before = foreign.read_bytes()
+    option = "--report" if name.endswith(".json") else "--summary"
+    args = ["verify", str(model), "--source", SOURCE, "--weights", WEIGHTS, "--synthetic", "--quiet",
+            option, str(foreign)]
+    r = runner.invoke(app, args)
+    assert r.exit_code == 2 and "not written by seqgate" in r.output, r.output
+    assert foreign.read_bytes() == before
+    r = runner.invoke(app, [*args, "--force"])
+    assert r.exit_code == 0, r.output
+    assert written_by_seqgate(foreign)
+    assert runner.invoke(app, args).exit_code == 0  # now seqgate's own: replaced without --force

@@ -17,7 +17,7 @@ from seqgate.cli.errors import exits_on_error
 from seqgate.cli.progress import stage_display
 from seqgate.errors import EXIT_CHECK_FAILED
 from seqgate.settings import defaults as d
-from seqgate.util.files import check_output_path
+from seqgate.util.files import check_writable
 
 
 def _csv(values: tuple[int, ...]) -> str:
@@ -51,6 +51,8 @@ def profile_command(
     csv: Annotated[Path | None, typer.Option("--csv", help="Write one CSV row per point here.")] = None,
     plot: Annotated[Path | None, typer.Option("--plot", help="Write a PNG plot of latency vs T here.")] = None,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display.")] = False,
+    force: Annotated[bool, typer.Option(
+        "--force", help="Replace report files that seqgate did not write.")] = False,
 ) -> None:
     """Measure CPU latency per sequence length with ONNX Runtime, against budgets and the source."""
     from seqgate.profile.run import profile_model
@@ -60,7 +62,7 @@ def profile_command(
                           budget or [], percentile, seed)
     for path, option in ((report, "--report"), (csv, "--csv"), (plot, "--plot")):
         if path is not None:
-            check_output_path(path, option)
+            check_writable(path, force, option)
     with stage_display(quiet) as progress:
         result = profile_model(model, source=source, weights=weights, progress=progress, **opts)
     data = result.to_dict()

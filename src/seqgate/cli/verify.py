@@ -14,7 +14,7 @@ import typer
 from seqgate.cli.errors import exits_on_error
 from seqgate.cli.progress import stage_display
 from seqgate.settings import defaults as d
-from seqgate.util.files import check_output_path
+from seqgate.util.files import check_writable
 
 TOLERANCE_HELP = (
     "TOML file: top-level atol/rtol, plus \\[\\[tolerance]] tables with match = \"fnmatch pattern\" and "
@@ -55,6 +55,8 @@ def verify(
         "regress: none does.")] = d.TASK,
     seed: Annotated[int, typer.Option("--seed", help="Seed of the synthetic windows.")] = d.SEED,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display and no table.")] = False,
+    force: Annotated[bool, typer.Option(
+        "--force", help="Replace report files that seqgate did not write.")] = False,
 ) -> None:
     """Replay windows through the source framework and ONNX Runtime; compare outputs and every hidden state."""
     from seqgate.settings import CLI, Problems, parse_settings
@@ -69,7 +71,7 @@ def verify(
     problems.raise_if_any()
     for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
         if p is not None:
-            check_output_path(p, option)
+            check_writable(p, force, option)
     with stage_display(quiet) as progress:
         rep = verify_model(
             model, source, weights, recordings=[*(recordings or []), *(old_windows or [])],
