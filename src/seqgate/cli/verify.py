@@ -55,8 +55,15 @@ def verify(
         "regress: none does.")] = d.TASK,
     seed: Annotated[int, typer.Option("--seed", help="Seed of the synthetic windows.")] = d.SEED,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display and no table.")] = False,
+    custom_code: Annotated[Path | None, typer.Option(
+        "--custom-code", help="Keras: run this Python file first; it defines and registers the model's "
+        "custom classes. Without it such models are refused.")] = None,
 ) -> None:
     """Replay windows through the source framework and ONNX Runtime; compare outputs and every hidden state."""
+    if custom_code is not None:
+        from seqgate.sources.keras import load_custom_code
+
+        load_custom_code(custom_code)
     from seqgate.settings import CLI, Problems, parse_settings
     from seqgate.verify.run import verify_model
     from seqgate.verify.tolerances import read_tolerances

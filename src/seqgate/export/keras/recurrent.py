@@ -100,6 +100,10 @@ def emit_keras_rnn(b: GraphBuilder, call: KerasCall) -> list[str]:
         from seqgate.export.keras.stacked import emit_stacked_rnn
 
         return emit_stacked_rnn(b, call)
+    if is_custom_cell(getattr(layer, "cell", None)):
+        from seqgate.export.keras.customcells import emit_custom_cell_rnn
+
+        return emit_custom_cell_rnn(b, call)
     kind, cell = _cell_of(layer, call.name)
     check_options(layer)
     x = call.inputs[0]

@@ -29,6 +29,7 @@ from seqgate.errors import Refusal
 from seqgate.export.core.builder import FLOAT, GraphBuilder
 from seqgate.export.core.cellmatch import NativeCell, match_step
 from seqgate.export.core.rnn_nodes import RecurrentCall, emit_recurrent
+from seqgate.export.core.scanbody import order_inputs, prefix_names
 from seqgate.export.torch.values import TV, TorchCall, want_tensor
 from seqgate.onnxfile.probes import Probe
 
@@ -185,26 +186,9 @@ def _finish_body(sub: GraphBuilder, result: Any, specs: list[Any], carried: list
         spec = specs[1 + pos[0]]
         state_inputs.append(spec.onnx_names[pos[1]] if spec.parts else spec.onnx_names[0])
     order = [*state_inputs, names[0]]
-    by_name = {vi.name: vi for vi in graph.input}
-    del graph.input[:]
-    graph.input.extend(by_name[n] for n in order)
-    _prefix_names(graph, f"{prefix}/step/")
+    order_inputs(graph, order)
+    prefix_names(graph, f"{prefix}/step/")
     return graph
-
-
-def _prefix_names(graph: Any, prefix: str) -> None:
-    """Give every body name a prefix so it cannot clash with the outer graph's."""
-    def p(n: str) -> str:
-        return prefix + n if n else n
-
-    for vi in [*graph.input, *graph.output, *graph.value_info]:
-        vi.name = p(vi.name)
-    for init in graph.initializer:
-        init.name = p(init.name)
-    for node in graph.node:
-        node.name = p(node.name)
-        node.input[:] = [p(i) for i in node.input]
-        node.output[:] = [p(o) for o in node.output]
 
 
 def _probes(b: GraphBuilder, m: Any, seq: str, finals: list[str], paths: list[Path],
