@@ -12,7 +12,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from torch_cell_models import IN, H, UserCellOverTime, _seeded
+from torch_cell_models import IN, H, UserCellOverTime
 
 
 class _Gates(nn.Module):
@@ -122,7 +122,13 @@ class GRUUpdateOnCandidate(HandGRUResetInside):
 
 
 def _make(cell: nn.Module, lstm_like: bool, seed: int) -> nn.Module:
-    return _seeded(UserCellOverTime(cell, lstm_like), seed)
+    """Wrap ``cell`` in a loop over time; every parameter U(−0.5, 0.5) from a seeded generator."""
+    m = UserCellOverTime(cell, lstm_like)
+    g = torch.Generator().manual_seed(seed)
+    with torch.no_grad():
+        for p in m.parameters():
+            p.copy_(torch.rand(p.shape, generator=g) - 0.5)
+    return m.eval()
 
 
 def make_hand_lstm() -> nn.Module:
