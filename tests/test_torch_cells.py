@@ -205,10 +205,13 @@ def blocks(a: np.ndarray) -> np.ndarray:
     return np.concatenate([np.split(a, 4)[k] for k in (0, 3, 1, 2)])
 
 
-def test_peephole_lstm_cell_scan_matches_the_published_equations() -> None:
+def test_peephole_lstm_cell_is_one_native_lstm_matching_the_published_equations() -> None:
     for t in (4, 23):
         m, model, x, got = _user_run(M.make_peephole, t, t)
-        assert "Scan" in _ops(model) and "LSTM" not in _ops(model)
+        # recognised structurally (core.cellmatch): ONE native LSTM with the P input, no Scan
+        assert "Scan" not in _ops(model) and _ops(model).count("LSTM") == 1
+        (node,) = [n for n in model.graph.node if n.op_type == "LSTM"]
+        assert len(node.input) == 8 and node.input[7]
         # ONNX LSTM spec with peepholes P = [Pi, Po, Pf] (Gers & Schmidhuber 2000: i, f see C_{t−1},
         # o sees C_t), NumPy float64 in reference_equations; the cell's blocks are i, f, g, o.
         cell = m.cell

@@ -57,9 +57,17 @@ def export(
         "(a test or placeholder model); recorded in the file and shown in every report.")] = False,
     input_spec: Annotated[list[str] | None, typer.Option(
         "--input", help="PyTorch input NAME:DIM,DIM,... (symbolic names or integers); repeatable.")] = None,
+    custom_code: Annotated[Path | None, typer.Option(
+        "--custom-code", help="Keras: run this Python file first; it defines and registers the model's "
+        "custom classes (e.g. a custom RNN cell). Without it such models are refused.")] = None,
 ) -> None:
     """Write the ONNX graph of a trained model, with native RNN/GRU/LSTM ops and a probe map."""
     from seqgate.export.run import DEFAULT_OPSET, export_source
+
+    if custom_code is not None:
+        from seqgate.sources.keras import load_custom_code
+
+        load_custom_code(custom_code)
 
     options = {"inputs": input_spec} if input_spec else {}
     res = export_source(source, out, opset or DEFAULT_OPSET, force, weights, untrained, **options)

@@ -57,18 +57,15 @@ def verify(
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display and no table.")] = False,
     force: Annotated[bool, typer.Option(
         "--force", help="Replace report files that seqgate did not write.")] = False,
+    custom_code: Annotated[Path | None, typer.Option(
+        "--custom-code", help="Keras: run this Python file first; it defines and registers the model's "
+        "custom classes. Without it such models are refused.")] = None,
 ) -> None:
     """Replay windows through the source framework and ONNX Runtime; compare outputs and every hidden state."""
-    from seqgate.settings import CLI, Problems, parse_settings
     from seqgate.verify.run import verify_model
-    from seqgate.verify.tolerances import read_tolerances
 
-    problems = Problems()
-    raw = {"synthetic": synthetic, "seed": seed, "batch_size": batch_size, "states": states, "task": task,
-           "oracle": oracle}
-    opts = parse_settings("verify", raw, CLI, problems)
-    read_tolerances(tolerances, atol, rtol, problems)  # --atol/--rtol with the file they override
-    problems.raise_if_any()
+    opts = _parse_options(custom_code, synthetic, seed, batch_size, states, task, oracle, tolerances,
+                          atol, rtol)
     for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
         if p is not None:
             check_writable(p, force, option)
@@ -84,6 +81,26 @@ def verify(
         _print_table(rep)
     typer.echo(rep.headline())
     raise typer.Exit(rep.exit_code)
+
+
+def _parse_options(custom_code: Path | None, synthetic: bool, seed: int, batch_size: int, states: bool,
+                   task: str, oracle: bool, tolerances: Path | None, atol: float | None,
+                   rtol: float | None) -> dict[str, Any]:
+    """Every option through ``seqgate.settings``, all problems in one error (exit 2); custom code loaded."""
+    if custom_code is not None:
+        from seqgate.sources.keras import load_custom_code
+
+        load_custom_code(custom_code)
+    from seqgate.settings import CLI, Problems, parse_settings
+    from seqgate.verify.tolerances import read_tolerances
+
+    problems = Problems()
+    raw = {"synthetic": synthetic, "seed": seed, "batch_size": batch_size, "states": states, "task": task,
+           "oracle": oracle}
+    opts = parse_settings("verify", raw, CLI, problems)
+    read_tolerances(tolerances, atol, rtol, problems)  # --atol/--rtol with the file they override
+    problems.raise_if_any()
+    return opts
 
 
 def _write_reports(rep: Any, report: Path | None, junit: Path | None, summary: Path | None) -> None:

@@ -10,6 +10,7 @@ default)::
     onnx = "shipped.onnx"              # gate this ONNX file instead of exporting one (optional)
     untrained = false                  # PyTorch without weights on purpose (shown in every report)
     expect_other_source = "reason"     # the ONNX file is known not to come from these files: why
+    custom_code = "cells.py"           # Keras: run this file to register custom classes (opt-in)
 
     [export]
     opset = 17
@@ -61,7 +62,7 @@ from seqgate.errors import BadInputError
 from seqgate.settings import CONFIG, SETTINGS, Budget, Problems, Tolerances, check_input_memory, parse_settings
 from seqgate.settings.values import parse_int, problems_message, read_toml, unknown_key
 
-MODEL_KEYS = ("source", "weights", "inputs", "onnx", "untrained", "expect_other_source")
+MODEL_KEYS = ("source", "weights", "inputs", "onnx", "untrained", "expect_other_source", "custom_code")
 EXPORT_KEYS = ("opset",)
 SECTIONS = ("model", "export", "verify", "profile")
 RENAMED = {("profile", "batch"): "batch_sizes"}  # old spellings, named in the error
@@ -97,6 +98,7 @@ class GateConfig:
     onnx: Path | None = None
     untrained: bool = False
     expect_other_source: str | None = None  # the reason the ONNX file may come from other files
+    custom_code: Path | None = None  # Keras: the user's file of custom classes, run only when named
 
     @property
     def base(self) -> Path:
@@ -179,6 +181,7 @@ def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any]
         compare_source=pr["compare_source"], budgets=tuple(pr["budget"]), profile_enabled=profile_enabled,
         onnx=files.path(model["onnx"], "[model] onnx") if "onnx" in model else None,
         untrained=_untrained(c, model), expect_other_source=_other_source(c, model),
+        custom_code=files.path(model["custom_code"], "[model] custom_code") if "custom_code" in model else None,
     )
 
 

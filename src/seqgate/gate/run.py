@@ -212,6 +212,10 @@ def _run_checks(report: GateReport, progress: Progress) -> None:
     cfg = report.config
     model_path = report.work_dir / "model.onnx"
     weights = str(cfg.weights) if cfg.weights else None
+    if cfg.custom_code is not None:  # [model] custom_code: the user's opt-in to running that file
+        from seqgate.sources.keras import load_custom_code
+
+        load_custom_code(cfg.custom_code)
     if cfg.onnx is not None:
         model = _adopt_onnx(report, model_path)
     else:

@@ -103,6 +103,25 @@ def _clone(layer: Any, input_shape: tuple[Any, ...], name: str) -> Any:
     return clone
 
 
+def _cell_clone(layer: Any, k: int, features: int, name: str) -> Any:
+    """Cell k of an ``RNN([cells])`` as its own RNN returning sequences and states, same weights."""
+    from seqgate.util.frameworks import import_keras
+
+    keras = import_keras()
+    cell = layer.cell.cells[k]
+    copy = type(cell).from_config(cell.get_config())
+    rnn = keras.layers.RNN(copy, return_sequences=True, return_state=True,
+                           go_backwards=bool(layer.go_backwards) and k == 0, name=name)
+    rnn.build((None, None, features if k == 0 else _output_size(layer.cell.cells[k - 1])))
+    rnn.set_weights(cell.get_weights())
+    return rnn
+
+
+def _output_size(below: Any) -> int:
+    size = below.output_size if getattr(below, "output_size", None) else below.state_size
+    return int(size[0] if isinstance(size, list | tuple) else size)
+
+
 class KerasRunner:
     """Runs a loaded Keras model; see the module docstring."""
 
@@ -154,7 +173,11 @@ class KerasRunner:
                 continue
             n = len(self._clones)
             shape = tuple(node.input_tensors[0].shape)
-            if type(layer).__name__ == "Bidirectional":
+            if type(getattr(layer, "cell", None)).__name__ == "StackedRNNCells":
+                for k in range(len(layer.cell.cells)):  # one RNN per cell: see _stacked
+                    self._clones[f"{full}#cell{k}"] = _cell_clone(layer, k, int(shape[-1]),
+                                                                  f"seqgate_probe_{n}_{k}")
+            elif type(layer).__name__ == "Bidirectional":
                 self._clones[full + "#fw"] = _clone(layer.forward_layer, shape, f"seqgate_probe_{n}_fw")
                 self._clones[full + "#bw"] = _clone(layer.backward_layer, shape, f"seqgate_probe_{n}_bw")
             else:
@@ -197,6 +220,8 @@ class KerasRunner:
         self._mask = kwargs.get("mask")
         if type(layer).__name__ == "Bidirectional":
             return self._bidirectional(full, layer, x, init_list, probes)
+        if f"{full}#cell0" in self._clones:
+            return self._stacked(full, layer, x, init_list, probes)
         seq, states = self._run_clone(self._clones[full], x, init_list)
         self._record(full, "forward" if not layer.go_backwards else "reverse", seq, states,
                      layer.go_backwards, probes)
@@ -220,9 +245,31 @@ class KerasRunner:
                  "hidden_final": ops.expand_dims(states[0], 1)}
         if len(states) > 1:
             found["cell_final"] = ops.expand_dims(states[1], 1)
+        layer, _, cell = full.partition("#cell")
         for p in self.probes:
-            if p.source.get("layer", p.layer) == full and p.direction == direction and p.kind in found:
+            if cell and str(p.source.get("cell_index")) != cell:
+                continue
+            if p.source.get("layer", p.layer) == layer and p.direction == direction and p.kind in found:
                 probes[p.name] = found[p.kind]
+
+    def _stacked(self, full: str, layer: Any, x: Any, init: list[Any] | None,
+                 probes: dict[str, Any]) -> list[Any]:
+        """RNN([cells]): cell k over cell k−1's output sequence equals the stack step by step
+        (each cell's state reads only the cell below at steps ≤ t). Only cell 0 reverses time
+        under ``go_backwards``; the cells above read its output in that processing order."""
+        seq, states = x, []
+        direction = "reverse" if layer.go_backwards else "forward"
+        at = 0
+        for k, cell in enumerate(layer.cell.cells):
+            size = cell.state_size
+            count = len(size) if isinstance(size, list | tuple) else 1
+            part = None if init is None else init[at:at + count]
+            at += count
+            seq, st = self._run_clone(self._clones[f"{full}#cell{k}"], seq, part)
+            states.extend(st)
+            self._record(f"{full}#cell{k}", direction, seq, st, layer.go_backwards, probes)
+        outs = [seq if layer.return_sequences else self._last(seq, states[-count:])]
+        return outs + (states if layer.return_state else [])
 
     def _bidirectional(self, full: str, layer: Any, x: Any, init: list[Any] | None,
                        probes: dict[str, Any]) -> list[Any]:

@@ -2,6 +2,12 @@
 
 Lambda layers and classes from outside Keras are refused, because loading them would run code
 from the file; every failure becomes one clear paragraph (exit 2).
+
+Opt-in to custom classes (a custom RNN cell): :func:`load_custom_code` imports the Python file
+the user names (``--custom-code FILE.py``, gate ``[model] custom_code``), which defines the
+classes and registers them with ``keras.saving.register_keras_serializable``. Only that file's
+code runs; loading itself keeps ``safe_mode=True`` (Lambda layers stay refused). Registration is
+Keras's own process-wide registry, so the import is done once per file and process.
 """
 
 from __future__ import annotations
@@ -11,6 +17,39 @@ from typing import Any
 
 from seqgate.errors import BadInputError, UnsafeSourceError
 from seqgate.util.text import first_line
+
+OPT_IN = ("--custom-code FILE.py (in a gate config: [model] custom_code = \"FILE.py\")")
+_IMPORTED: dict[Path, Any] = {}
+
+
+def load_custom_code(path: str | Path) -> Any:
+    """Import the user's file of custom Keras classes (the explicit opt-in; module docstring)."""
+    import importlib.util
+    import sys
+
+    p = Path(path).resolve()
+    if p in _IMPORTED:
+        return _IMPORTED[p]
+    if p.suffix != ".py" or not p.is_file():
+        raise BadInputError(f"custom code {path}: not an existing .py file. Name the Python file that defines "
+                            f"and registers your Keras classes (keras.saving.register_keras_serializable).")
+    name = f"seqgate_custom_code_{len(_IMPORTED)}_{p.stem}"
+    spec = importlib.util.spec_from_file_location(name, p)
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[name] = module
+    try:
+        from seqgate.util.frameworks import import_keras
+
+        import_keras()
+        spec.loader.exec_module(module)
+    except Exception as e:
+        del sys.modules[name]
+        why = f"{type(e).__name__}: {first_line(str(e))}"
+        raise BadInputError(f"custom code {path}: importing it failed ({why}). "
+                            f"Fix the file so that `python {p.name}` runs, then try again.") from e
+    _IMPORTED[p] = module
+    return module
 
 
 def load_keras(path: Path) -> Any:
@@ -36,8 +75,10 @@ def load_keras(path: Path) -> Any:
         if "Could not locate" in msg or "custom" in msg.lower() or "register" in msg:
             raise UnsafeSourceError(
                 f"{path}: {_custom_class_what(msg)} that is not part of Keras; building it would run "
-                f"code from outside Keras, so safe loading refuses it. seqgate loads only Keras's own "
-                f"layers: rebuild the model from built-in layers and save it again."
+                f"code from outside Keras, so safe loading refuses it by default. If you trust the code, "
+                f"opt in by naming the Python file that defines and registers the class "
+                f"(@keras.saving.register_keras_serializable) with {OPT_IN}; otherwise rebuild the model "
+                f"from built-in layers and save it again."
             ) from e
         raise BadInputError(f"{path}: Keras could not load the model: {first_line(msg)}") from e
     except (OSError, KeyError, AttributeError, IndexError) as e:

@@ -58,6 +58,7 @@ class Packed:
     R: Array
     B: Array | None
     linear_before_reset: int = 0
+    P: Array | None = None  # LSTM peepholes [D, 3H], order i, o, f (ONNX spec); None = no P input
 
     @property
     def directions(self) -> int:

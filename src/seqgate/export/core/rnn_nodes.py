@@ -71,6 +71,8 @@ def emit_recurrent(
     inputs = [x_tni, w, r, bias, sequence_lens, initial_h]
     if call.kind == "lstm":
         inputs.append(initial_c)
+        if p.P is not None:
+            inputs.append(b.const(p.P, "P"))
     names = {"y": b.fresh("Y"), "y_h": b.fresh("Y_h"), "y_c": b.fresh("Y_c") if call.kind == "lstm" else ""}
     outs = [names["y"] if need_y else "", names["y_h"] if need_h else ""]
     if call.kind == "lstm":

@@ -21,6 +21,9 @@ class KerasCall:
     outputs: list[Any]  # KerasTensors this call produced (shapes, dtypes)
     args: tuple[Any, ...] = ()
     values: dict[int, KV] = field(default_factory=dict)  # id(KerasTensor) → KV
+    # The layer table, for mappings that walk a sub-graph (a custom cell's step): handed in by
+    # the walker, so those modules need not import the table that imports them.
+    table: dict[str, Any] = field(default_factory=dict)
 
     def value_of(self, tensor: Any) -> KV:
         return self.values[id(tensor)]

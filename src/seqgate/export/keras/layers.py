@@ -59,7 +59,7 @@ def _time_distributed(b: GraphBuilder, call: KerasCall) -> list[str]:
         raise Refusal(f"TimeDistributed({cls})", "only Dense, Activation and dropout layers")
     if mask_of(call) is not None and getattr(inner, "_call_has_mask_arg", False):
         raise Refusal(f"TimeDistributed({cls}) with a mask", "the inner layer would read the mask")
-    sub = KerasCall(inner, call.name, call.inputs, {}, call.outputs, (), call.values)
+    sub = KerasCall(inner, call.name, call.inputs, {}, call.outputs, (), call.values, call.table)
     return fn(b, sub)
 
 

@@ -17,50 +17,17 @@ from typing import Any
 import numpy as np
 
 from seqgate.errors import Refusal
-from seqgate.export.core.activations import cell_activation
 from seqgate.export.core.builder import GraphBuilder
-from seqgate.export.core.recurrent import CellActivation, Packed, keras_weights, stack_directions
+from seqgate.export.core.recurrent import stack_directions
 from seqgate.export.core.rnn_nodes import RecurrentCall, RecurrentOut, emit_recurrent
 from seqgate.export.keras import masked_recurrent as masked
-from seqgate.export.keras.activation import keras_activation
 from seqgate.export.keras.call import KerasCall
+from seqgate.export.keras.cellparts import builtin_cell, cell_slots, check_options, is_custom_cell, pack_cell
 from seqgate.export.keras.masking import mask_of
-
-_CELL_KIND = {"SimpleRNNCell": "rnn", "GRUCell": "gru", "LSTMCell": "lstm"}
 
 
 def _cell_of(layer: Any, where: str) -> tuple[str, Any]:
-    cell = getattr(layer, "cell", None)
-    kind = _CELL_KIND.get(type(cell).__name__) if cell is not None else None
-    if kind is None or not type(cell).__module__.startswith("keras."):
-        raise Refusal(f"{where} uses cell {type(cell).__name__}",
-                      "only the built-in SimpleRNNCell, GRUCell and LSTMCell map to ONNX ops")
-    return kind, cell
-
-
-def _check_options(layer: Any) -> None:
-    if getattr(layer, "stateful", False):
-        raise Refusal("stateful=True", "export a stateless copy of the layer (stateful=False); "
-                      "carrying state across calls is not supported yet")
-
-
-def _slots(kind: str, cell: Any) -> list[CellActivation]:
-    act = cell_activation(*keras_activation(cell.activation))
-    if kind == "rnn":
-        return [act]
-    rec = cell_activation(*keras_activation(cell.recurrent_activation))
-    return [rec, act] if kind == "gru" else [rec, act, act]
-
-
-def _pack(kind: str, cell: Any) -> Packed:
-    bias = cell.bias.numpy() if getattr(cell, "use_bias", True) and cell.bias is not None else None
-    return keras_weights(
-        kind,
-        cell.kernel.numpy(),
-        cell.recurrent_kernel.numpy(),
-        bias,
-        reset_after=bool(getattr(cell, "reset_after", False)),
-    )
+    return builtin_cell(getattr(layer, "cell", None), where)
 
 
 def _initial_states(b: GraphBuilder, call: KerasCall, n_dirs: int, kind: str) -> tuple[str, str]:
@@ -87,15 +54,23 @@ def _initial_states(b: GraphBuilder, call: KerasCall, n_dirs: int, kind: str) ->
 def emit_keras_rnn(b: GraphBuilder, call: KerasCall) -> list[str]:
     """SimpleRNN, GRU, LSTM and RNN(built-in cell)."""
     layer = call.layer
+    if type(getattr(layer, "cell", None)).__name__ == "StackedRNNCells":
+        from seqgate.export.keras.stacked import emit_stacked_rnn
+
+        return emit_stacked_rnn(b, call)
+    if is_custom_cell(getattr(layer, "cell", None)):
+        from seqgate.export.keras.customcells import emit_custom_cell_rnn
+
+        return emit_custom_cell_rnn(b, call)
     kind, cell = _cell_of(layer, call.name)
-    _check_options(layer)
+    check_options(layer)
     x = call.inputs[0]
     if x.rank != 3:
         raise Refusal(f"input of rank {x.rank}, expected [batch, time, features]")
     back = bool(layer.go_backwards)
     rc = RecurrentCall(
         kind=kind, hidden=int(cell.units), direction="reverse" if back else "forward",
-        packed=_pack(kind, cell), activations=_slots(kind, cell), layer=call.name,
+        packed=pack_cell(kind, cell), activations=cell_slots(kind, cell), layer=call.name,
         source={"framework": "keras", "layer": call.name, "go_backwards": back,
                 "return_sequences": bool(layer.return_sequences)},
     )
@@ -159,7 +134,7 @@ def emit_keras_bidirectional(b: GraphBuilder, call: KerasCall) -> list[str]:
     fw, bw = layer.forward_layer, layer.backward_layer
     kind, fcell = _cell_of(fw, call.name)
     _, bcell = _cell_of(bw, call.name)
-    _check_options(fw)
+    check_options(fw)
     _same_config(fw, bw)
     if fw.go_backwards or not bw.go_backwards:
         raise Refusal("Bidirectional around a layer with go_backwards=True",
@@ -172,8 +147,8 @@ def emit_keras_bidirectional(b: GraphBuilder, call: KerasCall) -> list[str]:
         raise Refusal(f"merge_mode={mode!r}")
     rc = RecurrentCall(
         kind=kind, hidden=int(fcell.units), direction="bidirectional",
-        packed=stack_directions([_pack(kind, fcell), _pack(kind, bcell)]),
-        activations=_slots(kind, fcell) + _slots(kind, bcell), layer=call.name,
+        packed=stack_directions([pack_cell(kind, fcell), pack_cell(kind, bcell)]),
+        activations=cell_slots(kind, fcell) + cell_slots(kind, bcell), layer=call.name,
         source={"framework": "keras", "layer": call.name, "wrapper": "Bidirectional",
                 "merge_mode": mode, "return_sequences": bool(fw.return_sequences)},
         per_direction_source=[

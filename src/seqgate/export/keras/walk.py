@@ -151,6 +151,7 @@ def _walk(
             outputs=list(node.outputs),
             args=tuple(node.arguments.args),
             values=values,
+            table=table,
         )
         names = _map_one(b, call, cls, problems, table)
         for t, n in zip(node.outputs, names, strict=True):

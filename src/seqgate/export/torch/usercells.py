@@ -1,7 +1,11 @@
-"""A user-written cell (an ``nn.Module`` of Linear layers and elementwise ops) run over time → ONNX ``Scan``.
+"""A user-written cell (an ``nn.Module`` of Linear layers and elementwise ops) run over time → ONNX
+``Scan``, or ONE native LSTM/GRU/RNN node when the step is proven to be one.
 
 The loop is proven by ``loopfold`` (the cell's state is exactly its previous output); this module
-exports it as one ``Scan`` over the dynamic time axis whose body is the cell's own step:
+builds the cell's step graph and asks ``core.cellmatch`` whether it is structurally a plain or
+peephole LSTM, a GRU or an Elman RNN whose collected value is its hidden state. If so, one native
+node over the time axis replaces the loop (same probes); otherwise one ``Scan`` over the dynamic
+time axis whose body is the cell's own step:
 
 - the cell's ``forward`` is traced with ``torch.fx`` (Linear etc. as leaves) and mapped by the
   same tables as any forward, into a separate graph: the Scan body;
@@ -23,6 +27,9 @@ from typing import Any
 
 from seqgate.errors import Refusal
 from seqgate.export.core.builder import FLOAT, GraphBuilder
+from seqgate.export.core.cellmatch import NativeCell, match_step
+from seqgate.export.core.rnn_nodes import RecurrentCall, emit_recurrent
+from seqgate.export.core.scanbody import order_inputs, prefix_names
 from seqgate.export.torch.values import TV, TorchCall, want_tensor
 from seqgate.onnxfile.probes import Probe
 
@@ -68,6 +75,11 @@ def user_cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
     if seq_path not in out_paths:
         raise Refusal("the loop collects a value that is not carried state")
     body = _body(b, call.capture, m, x, states, carried, out_paths.index(seq_path))
+    cell, _ = match_step(body, len(carried))
+    if cell is not None and cell.h_state == out_paths.index(seq_path):
+        seq, finals = _native(b, m, x, states, cell)
+        _probes(b, m, seq, finals, out_paths, seq_path, cell.form)
+        return (seq if m.seq_path is not None else None, _structure(out_paths, finals))
     finals = [b.fresh("state") for _ in carried]
     seq = b.fresh("sequence")
     b.node("Scan", [s.name for s in states] + [x.name], [*finals, seq], body=body,
@@ -75,6 +87,24 @@ def user_cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
     _probes(b, m, seq, finals, out_paths, seq_path)
     last = _structure(out_paths, finals)
     return (seq if m.seq_path is not None else None, last)
+
+
+def _native(b: GraphBuilder, m: Any, x: TV, states: list[TV], cell: NativeCell) -> tuple[str, list[str]]:
+    """The proven native node (``core.cellmatch``) over the loop's time axis: the collected
+    sequence in the collector's layout and the final states in carried order."""
+    xt = x.name if m.axis == 0 else b.transpose(x.name, [1, 0, 2])
+    h0 = b.unsqueeze(states[cell.h_state].name, [0])
+    c0 = b.unsqueeze(states[cell.c_state].name, [0]) if cell.c_state is not None else ""
+    rc = RecurrentCall(kind=cell.kind, hidden=cell.hidden, direction="forward", packed=cell.packed,
+                       activations=cell.activations, layer=m.cell_name)
+    out = emit_recurrent(b, rc, xt, h0, c0, need_y=True, need_h=True, need_c=cell.kind == "lstm", probes=False)
+    y = b.squeeze(out.y, [1])  # [T, N, H]
+    seq = y if m.seq_dim == 0 else b.transpose(y, [1, 0, 2])
+    finals = [""] * len(states)
+    finals[cell.h_state] = b.squeeze(out.y_h, [0])
+    if cell.c_state is not None:
+        finals[cell.c_state] = b.squeeze(out.y_c, [0])
+    return seq, finals
 
 
 def _structure(paths: list[Path], names: list[str]) -> Any:
@@ -155,33 +185,17 @@ def _finish_body(sub: GraphBuilder, result: Any, specs: list[Any], carried: list
         spec = specs[1 + pos[0]]
         state_inputs.append(spec.onnx_names[pos[1]] if spec.parts else spec.onnx_names[0])
     order = [*state_inputs, names[0]]
-    by_name = {vi.name: vi for vi in graph.input}
-    del graph.input[:]
-    graph.input.extend(by_name[n] for n in order)
-    _prefix_names(graph, f"{prefix}/step/")
+    order_inputs(graph, order)
+    prefix_names(graph, f"{prefix}/step/")
     return graph
 
 
-def _prefix_names(graph: Any, prefix: str) -> None:
-    """Give every body name a prefix so it cannot clash with the outer graph's."""
-    def p(n: str) -> str:
-        return prefix + n if n else n
-
-    for vi in [*graph.input, *graph.output, *graph.value_info]:
-        vi.name = p(vi.name)
-    for init in graph.initializer:
-        init.name = p(init.name)
-    for node in graph.node:
-        node.name = p(node.name)
-        node.input[:] = [p(i) for i in node.input]
-        node.output[:] = [p(o) for o in node.output]
-
-
 def _probes(b: GraphBuilder, m: Any, seq: str, finals: list[str], paths: list[Path],
-            seq_path: Path) -> None:
-    """Per-step and final state probes on the Scan's outputs (Unsqueeze adds the direction axis)."""
+            seq_path: Path, form: str = "") -> None:
+    """Per-step and final state probes on the Scan's (or the native node's) outputs (Unsqueeze
+    adds the direction axis); ``form`` names the recognised native form, "" for a Scan."""
     src = {"framework": "torch", "module": m.cell_name, "module_type": type(m.cell).__name__,
-           "cell_calls": list(m.calls), "h_path": list(seq_path)}
+           "cell_calls": list(m.calls), "h_path": list(seq_path), "exported_as": form or "Scan"}
     others = [p for p in paths if p != seq_path]
     if others:
         src["c_path"] = list(others[0])
