@@ -38,10 +38,13 @@ def _cell_of(layer: Any, where: str) -> tuple[str, Any]:
     return kind, cell
 
 
-def _check_options(layer: Any) -> None:
-    if getattr(layer, "stateful", False):
-        raise Refusal("stateful=True", "export a stateless copy of the layer (stateful=False); "
-                      "carrying state across calls is not supported yet")
+def _check_options(layer: Any, bidirectional: bool = False) -> None:
+    """``stateful=True`` is exported as a streaming file (``seqgate.export.streaming``), except
+    in a Bidirectional wrapper: its backward direction starts from the window's last step."""
+    if bidirectional and getattr(layer, "stateful", False):
+        raise Refusal("Bidirectional with stateful=True: the backward direction starts from the window's "
+                      "last step, so its state cannot be carried from one call to the next",
+                      "use stateful=False, or a unidirectional stateful layer")
 
 
 def _slots(kind: str, cell: Any) -> list[CellActivation]:
@@ -97,7 +100,8 @@ def emit_keras_rnn(b: GraphBuilder, call: KerasCall) -> list[str]:
         kind=kind, hidden=int(cell.units), direction="reverse" if back else "forward",
         packed=_pack(kind, cell), activations=_slots(kind, cell), layer=call.name,
         source={"framework": "keras", "layer": call.name, "go_backwards": back,
-                "return_sequences": bool(layer.return_sequences)},
+                "return_sequences": bool(layer.return_sequences),
+                **({"stateful": True} if getattr(layer, "stateful", False) else {})},
     )
     h0, c0 = _initial_states(b, call, 1, kind)
     seqs, state = bool(layer.return_sequences), bool(layer.return_state)
@@ -159,7 +163,7 @@ def emit_keras_bidirectional(b: GraphBuilder, call: KerasCall) -> list[str]:
     fw, bw = layer.forward_layer, layer.backward_layer
     kind, fcell = _cell_of(fw, call.name)
     _, bcell = _cell_of(bw, call.name)
-    _check_options(fw)
+    _check_options(fw, bidirectional=True)
     _same_config(fw, bw)
     if fw.go_backwards or not bw.go_backwards:
         raise Refusal("Bidirectional around a layer with go_backwards=True",
