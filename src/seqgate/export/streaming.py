@@ -81,15 +81,17 @@ def make_streaming(model: onnx.ModelProto, source: str) -> onnx.ModelProto:
     g = m.graph
     problems, pairs = [], []
     prefixes = _probe_prefixes(m)
+    slots = {(p.node, p.output_index): p.value for p in read_probe_map(m)}
     dims = _dims_of(model)
     for node in [n for n in g.node if n.op_type in RECURRENT_OPS]:
         if any(len(node.input) > i and node.input[i] for i in (5, 6)):
             problems.append(Unsupported(layer_of(node), "its initial state comes from the model's inputs",
                                         "the ordinary export already takes and returns that state; stream it"))
             continue
-        pairs += _wire(g, node, prefixes.get(node.name, node.name), dims)
+        pairs += _wire(g, node, prefixes.get(node.name, node.name), dims, slots)
     if problems:
         raise UnsupportedModelError(f"{source} for streaming", problems)
+    _sort_nodes(g)  # copies the nodes: done once, after every node was wired
     outputs = [{"name": o.name, "time_axis": _time_axis(kinds.get(o.name), o)} for o in model.graph.output]
     _free_time_dims(m, {o["name"]: o["time_axis"] for o in outputs})
     inputs = [{"name": n, "time_axis": a} for n, a in sequence_inputs(model).items()]
@@ -130,8 +132,10 @@ def _dims_of(model: onnx.ModelProto) -> dict[str, list[Any]]:
     return out
 
 
-def _wire(g: onnx.GraphProto, node: onnx.NodeProto, prefix: str, dims: dict[str, list[Any]]) -> list[StatePair]:
-    """Add the state inputs/outputs of one node (h at input 5 / output 1, c at 6 / 2)."""
+def _wire(g: onnx.GraphProto, node: onnx.NodeProto, prefix: str, dims: dict[str, list[Any]],
+          slots: dict[tuple[str, int], str]) -> list[StatePair]:
+    """Add the state inputs/outputs of one node (h at input 5 / output 1, c at 6 / 2); an empty
+    output slot gets the name the probe map gives it (``slots``), so probes still fit."""
     hidden = next(a.i for a in node.attribute if a.name == "hidden_size")
     x_dims = dims.get(node.input[0]) or [None, None, None]
     batch = x_dims[1] if len(x_dims) > 1 and x_dims[1] else "batch"
@@ -147,7 +151,7 @@ def _wire(g: onnx.GraphProto, node: onnx.NodeProto, prefix: str, dims: dict[str,
         while len(node.output) <= out_index:
             node.output.append("")
         if not node.output[out_index]:
-            node.output[out_index] = f"{node.name}/{state}_state"
+            node.output[out_index] = slots.get((node.name, out_index), f"{node.name}/{state}_state")
         g.node.append(helper.make_node("Identity", [node.output[out_index]], [name_out],
                                        name=f"streaming/{name_out}", doc_string=node.doc_string))
         g.output.append(helper.make_tensor_value_info(name_out, TensorProto.FLOAT, shape))
@@ -220,3 +224,31 @@ def _free_time_dims(m: onnx.ModelProto, out_axes: dict[str, int | None]) -> None
                 d.ClearField("dim_value")
                 d.dim_param = "time"
     del m.graph.value_info[:]
+
+
+def ordinary_view(model: onnx.ModelProto) -> onnx.ModelProto:
+    """The ordinary graph inside a streaming file (state inputs, outputs and their nodes removed).
+
+    It computes what the ordinary export computes: every node starts from zeros again.
+    """
+    pairs = state_pairs(model)
+    ins, outs = {p.input for p in pairs}, {p.output for p in pairs}
+    m = copy.deepcopy(model)
+    g = m.graph
+    keep = [n for n in g.node if not n.name.startswith("streaming/")]
+    for n in keep:
+        for i, v in enumerate(n.input):
+            if v.startswith("streaming/"):
+                n.input[i] = ""
+    del g.node[:]
+    g.node.extend(keep)
+    kept_in = [i for i in g.input if i.name not in ins]
+    kept_out = [o for o in g.output if o.name not in outs]
+    del g.input[:]
+    g.input.extend(kept_in)
+    del g.output[:]
+    g.output.extend(kept_out)
+    meta = {k: v for k, v in read_metadata(m).items() if k != STREAMING_KEY}
+    del m.metadata_props[:]
+    helper.set_model_props(m, meta)
+    return m

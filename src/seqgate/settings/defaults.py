@@ -26,6 +26,8 @@ STATES = True
 TASK = "auto"
 TASKS = ("auto", "classify", "regress")
 ORACLE = False
+# streaming files: chunk size streamed besides 1 and 7 (seqgate.verify.streaming)
+CHUNK = 16
 # profile
 SEQ_LENS = (16, 64, 256)
 BATCH_SIZES = (1,)

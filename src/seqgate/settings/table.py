@@ -74,6 +74,8 @@ SETTINGS: tuple[Setting, ...] = (
             "relative tolerance of every tensor"),
     Setting("verify", "oracle", "--oracle", "settings.oracle", d.ORACLE, parse_bool,
             "re-run the worst windows under onnx.reference"),
+    Setting("verify", "chunk", "--chunk", "streaming.chunk_sizes", d.CHUNK, parse_count,
+            "streaming files: the chunk size streamed besides 1 and 7"),
     Setting("verify", "tolerance", None, "settings.tolerance", (), parse_overrides,
             "per-tensor overrides: match, atol, rtol ([[tolerance]] in a --tolerances file)", table=True),
     Setting("profile", "seq_lens", "--seq-lens", "options.seq_lens", d.SEQ_LENS, parse_int_list,
