@@ -229,7 +229,8 @@ def _axis_op(what: str) -> Callable[[onnx.NodeProto, list[Kind], _Graph], list[K
     def rule(node: onnx.NodeProto, ins: list[Kind], g: _Graph) -> list[Kind]:
         axis = int(_attr(node, "axis", -1))
         r = g.rank(node.input[0])
-        axes = [axis] if what != "normalisation" else list(range(axis if axis >= 0 else (r or 0) + axis, r or 0))
+        first = axis if axis >= 0 else (r or 0) + axis
+        axes = [axis] if what != "normalisation" else list(range(first, r or 0))
         _check_axis(ins[0], axes, r, what)
         if isinstance(ins[0], Step) and r is None:
             raise _Bad("input rank unknown")

@@ -166,17 +166,20 @@ def _optional_state(g: onnx.GraphProto, node: onnx.NodeProto, name: str, shape: 
     s = f"streaming/{name}"
     x = node.input[0]
     hidden = int(shape[2])
-    const = [helper.make_node("Constant", [], [f"{s}/{k}"], value=helper.make_tensor(k, TensorProto.INT64, [1], [v]))
+    const = [helper.make_node("Constant", [], [f"{s}/{k}"],
+                              value=helper.make_tensor(k, TensorProto.INT64, [1], [v]))
              for k, v in (("one", 1), ("hidden", hidden), ("start", 1), ("end", 2))]
-    zeros = helper.make_graph(const + [
+    zeros = helper.make_graph([
+        *const,
         helper.make_node("Shape", [x], [f"{s}/xshape"]),
         helper.make_node("Slice", [f"{s}/xshape", f"{s}/start", f"{s}/end"], [f"{s}/batch"]),
         helper.make_node("Concat", [f"{s}/one", f"{s}/batch", f"{s}/hidden"], [f"{s}/shape"], axis=0),
         helper.make_node("ConstantOfShape", [f"{s}/shape"], [f"{s}/zeros"],
                          value=helper.make_tensor("zero", TensorProto.FLOAT, [1], [0.0])),
     ], f"{s}/absent", [], [helper.make_tensor_value_info(f"{s}/zeros", TensorProto.FLOAT, shape)])
+    given_out = helper.make_tensor_value_info(f"{s}/given", TensorProto.FLOAT, shape)
     given = helper.make_graph([helper.make_node("OptionalGetElement", [name], [f"{s}/given"])],
-                              f"{s}/given", [], [helper.make_tensor_value_info(f"{s}/given", TensorProto.FLOAT, shape)])
+                              f"{s}/given", [], [given_out])
     g.node.append(helper.make_node("OptionalHasElement", [name], [f"{s}/has"], name=f"{s}/has"))
     g.node.append(helper.make_node("If", [f"{s}/has"], [f"{s}/initial"], name=f"{s}/initial",
                                    then_branch=given, else_branch=zeros))

@@ -13,6 +13,7 @@ default)::
 
     [export]
     opset = 17
+    streaming = true                   # state inputs/outputs per recurrent layer (default: stateful Keras only)
 
     [verify]                           # keys, defaults and parsers: seqgate.settings.table
     recordings = ["windows.npz"]       # paths relative to this file
@@ -58,11 +59,12 @@ from pathlib import Path
 from typing import Any
 
 from seqgate.errors import BadInputError
+from seqgate.settings import defaults as d
 from seqgate.settings import CONFIG, SETTINGS, Budget, Problems, Tolerances, check_input_memory, parse_settings
 from seqgate.settings.values import parse_int, problems_message, read_toml, unknown_key
 
 MODEL_KEYS = ("source", "weights", "inputs", "onnx", "untrained", "expect_other_source")
-EXPORT_KEYS = ("opset",)
+EXPORT_KEYS = ("opset", "streaming")
 SECTIONS = ("model", "export", "verify", "profile")
 RENAMED = {("profile", "batch"): "batch_sizes"}  # old spellings, named in the error
 
@@ -97,6 +99,8 @@ class GateConfig:
     onnx: Path | None = None
     untrained: bool = False
     expect_other_source: str | None = None  # the reason the ONNX file may come from other files
+    streaming: bool | None = None  # [export] streaming; None: only for Keras stateful layers
+    chunk: int = d.CHUNK  # [verify] chunk
 
     @property
     def base(self) -> Path:
@@ -179,7 +183,17 @@ def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any]
         compare_source=pr["compare_source"], budgets=tuple(pr["budget"]), profile_enabled=profile_enabled,
         onnx=files.path(model["onnx"], "[model] onnx") if "onnx" in model else None,
         untrained=_untrained(c, model), expect_other_source=_other_source(c, model),
+        streaming=_streaming(c, export), chunk=v["chunk"],
     )
+
+
+def _streaming(c: Problems, export: dict[str, Any]) -> bool | None:
+    """``[export] streaming``: a boolean; absent = stream only Keras ``stateful=True`` models."""
+    value = export.get("streaming")
+    if value is not None and not isinstance(value, bool):
+        c.add(f"[export] streaming must be true or false, got {value!r}")
+        return None
+    return value
 
 
 def _check_sweep_memory(c: Problems, pr: dict[str, Any]) -> None:

@@ -235,7 +235,7 @@ def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
     cfg = report.config
     options = {"inputs": list(cfg.inputs)} if cfg.inputs else {}
     res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, untrained=cfg.untrained,
-                        **options)
+                        streaming=cfg.streaming, **options)
     from seqgate.onnxfile.probes import read_metadata
 
     meta = read_metadata(res.model)
@@ -289,13 +289,17 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
     vr = verify_model(
         model_path, cfg.source, weights=weights, recordings=[str(p) for p in cfg.recordings],
         synthetic=cfg.synthetic, tolerances=cfg.tolerances, batch_size=cfg.batch_size, states=cfg.states,
-        oracle=cfg.oracle, progress=progress, task=cfg.task, seed=cfg.seed,
+        oracle=cfg.oracle, progress=progress, task=cfg.task, seed=cfg.seed, chunk=cfg.chunk,
     )
     report.verify = vr.to_json()
     for r in report.verify["recordings"]:  # hashed once, by verify
         if r.get("path"):
             report.files[r["path"]] = r["sha256"]
     report.checks.append({"name": "verify", "passed": vr.passed, "detail": vr.headline()})
+    if vr.streaming is not None:
+        from seqgate.report.streaming import streaming_check_entry
+
+        report.checks.append(streaming_check_entry(vr.streaming))
 
 
 def _profile(report: GateReport, model_path: Path, weights: str | None, progress: Progress) -> None:

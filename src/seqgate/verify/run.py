@@ -357,7 +357,6 @@ def verify_model(
     opts, tol = _settings(locals())
     synthetic, batch_size, states, oracle, task, seed = (
         opts[k] for k in ("synthetic", "batch_size", "states", "oracle", "task", "seed"))
-    from seqgate.export.streaming import is_streaming, ordinary_view
     windows = list(recordings)
     if not windows and not synthetic:
         raise BadInputError("nothing to compare: give recorded windows with --recording REC.npz and/or "
@@ -365,9 +364,7 @@ def verify_model(
     if isinstance(tolerances, Tolerances):  # built by a caller (the gate config), not read from a file
         tolerances = None
     path = Path(model_path)
-    model = stream_model = load_onnx(path)
-    if is_streaming(model):  # compared as the ordinary graph, then streamed (seqgate.verify.streaming)
-        model = ordinary_view(model)
+    stream_model, model = _split_streaming(load_onnx(path))
     src = source if isinstance(source, Source) else parse_source(source, weights)
     prov, probes, warnings = _check_source(model, src, states)
     specs = input_specs(model)
@@ -384,11 +381,7 @@ def verify_model(
 
         oracle_out = run_oracle(model, probes, infos, results, onnx_runner, src_runner, tol)
     first = _first_divergence(infos, results)
-    streaming = None
-    if is_streaming(stream_model):
-        from seqgate.verify.streaming import verify_streaming
-
-        streaming = verify_streaming(stream_model, recs, specs, src_runner.run, tol.atol, tol.rtol, opts["chunk"])
+    streaming = _streaming(stream_model, recs, specs, src_runner, tol, opts["chunk"])
     return VerifyReport(
         passed=first is None and (streaming is None or streaming["passed"]), streaming=streaming,
         tensors=[_tensor_entry(t, results, comparer.batch_axis.get(t.name, 0)) for t in infos],
@@ -398,6 +391,23 @@ def verify_model(
                   "atol": tol.atol, "rtol": tol.rtol, "tolerances_file": tolerances,
                   "tolerance": [o.to_json() for o in tol.overrides]},
         environment=environment(), oracle=oracle_out, warnings=warnings, provenance=prov)
+
+
+def _split_streaming(model: Any) -> tuple[Any, Any]:
+    """(the streaming file or None, the graph compared with the source: its ordinary view)."""
+    from seqgate.export.streaming import is_streaming, ordinary_view
+
+    return (model, ordinary_view(model)) if is_streaming(model) else (None, model)
+
+
+def _streaming(stream_model: Any, recs: list[Recording], specs: list[InputSpec], src_runner: Any,
+               tol: Tolerances, chunk: int) -> dict[str, Any] | None:
+    """The streaming section (``seqgate.verify.streaming``) of a streaming file; None otherwise."""
+    if stream_model is None:
+        return None
+    from seqgate.verify.streaming import verify_streaming
+
+    return verify_streaming(stream_model, recs, specs, src_runner.run, tol.atol, tol.rtol, chunk)
 
 
 def _model_record(path: Path, specs: list[InputSpec]) -> dict[str, Any]:

@@ -77,7 +77,7 @@ class StreamChecker:
         info = read_streaming(model)
         assert info is not None, "not a streaming file"
         self.info, self.atol, self.rtol = info, atol, rtol
-        self.probes = [p for p in read_probe_map(model) if p.kind in ("hidden_final", "cell_final", "hidden_sequence")]
+        self.probes = [p for p in read_probe_map(model) if p.kind in ("hidden_final", "cell_final")]
         self.runner = OnnxRunner(model, self.probes)
         self.seq_inputs = {i["name"]: i["time_axis"] for i in info["inputs"]}
         self.timed = {o["name"]: o["time_axis"] for o in info["outputs"]}
@@ -250,13 +250,15 @@ def streaming_check(model: Any, batches: list[tuple[str, Feeds]], atol: float, r
     runs = [merged[c].to_json() for c in sizes]
     return {"passed": all(r["passed"] for r in runs), "chunk_sizes": sizes, "windows": windows,
             "atol": atol, "rtol": rtol, "compared_with_source": source_run is not None,
-            "states": [{k: s[k] for k in ("layer", "state", "input", "output", "shape")} for s in checker.states],
+            "states": [{k: s[k] for k in ("layer", "state", "input", "output", "shape")}
+                       for s in checker.states],
             "runs": runs}
 
 
 
-def verify_streaming(model: Any, recs: list[Any], specs: list[Any], source_run: Callable[[Feeds], dict[str, Array]],
-                     atol: float, rtol: float, chunk: int | None) -> dict[str, Any]:
+def verify_streaming(model: Any, recs: list[Any], specs: list[Any],
+                     source_run: Callable[[Feeds], dict[str, Array]], atol: float, rtol: float,
+                     chunk: int | None) -> dict[str, Any]:
     """``streaming_check`` over the first ``STREAM_WINDOWS`` windows of every set of a verify run."""
     from seqgate.verify.recordings import to_model_layout
 
