@@ -59,8 +59,8 @@ from pathlib import Path
 from typing import Any
 
 from seqgate.errors import BadInputError
-from seqgate.settings import defaults as d
 from seqgate.settings import CONFIG, SETTINGS, Budget, Problems, Tolerances, check_input_memory, parse_settings
+from seqgate.settings import defaults as d
 from seqgate.settings.values import parse_int, problems_message, read_toml, unknown_key
 
 MODEL_KEYS = ("source", "weights", "inputs", "onnx", "untrained", "expect_other_source")
@@ -101,6 +101,8 @@ class GateConfig:
     expect_other_source: str | None = None  # the reason the ONNX file may come from other files
     streaming: bool | None = None  # [export] streaming; None: only for Keras stateful layers
     chunk: int = d.CHUNK  # [verify] chunk
+    chunks: tuple[int, ...] = d.CHUNKS  # [profile] chunks (streaming files)
+    call_budgets: tuple[Budget, ...] = ()  # [[profile.call_budget]] (streaming files)
 
     @property
     def base(self) -> Path:
@@ -183,7 +185,8 @@ def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any]
         compare_source=pr["compare_source"], budgets=tuple(pr["budget"]), profile_enabled=profile_enabled,
         onnx=files.path(model["onnx"], "[model] onnx") if "onnx" in model else None,
         untrained=_untrained(c, model), expect_other_source=_other_source(c, model),
-        streaming=_streaming(c, export), chunk=v["chunk"],
+        streaming=_streaming(c, export), chunk=v["chunk"], chunks=tuple(pr["chunks"]),
+        call_budgets=tuple(pr["call_budget"]),
     )
 
 

@@ -317,6 +317,11 @@ def _profile(report: GateReport, model_path: Path, weights: str | None, progress
         n = len(cfg.budgets)
         detail = (f"{n} budget{'s' if n != 1 else ''} held at p{cfg.percentile} at every batch and thread "
                   f"setting measured ({len(budgets)} verdicts)")
+    calls = (report.profile.get("streaming") or {}).get("call_budgets") or []
+    if calls:
+        detail += "; per call: " + "; ".join(
+            f"{c['chunk']} steps ≤ {c['budget_ms']:g} ms: {c['measured_ms']:.3g} ms "
+            f"({'pass' if c['passed'] else 'fail'})" for c in calls)
     report.checks.append({"name": "latency", "passed": pr.passed, "detail": detail})
 
 
@@ -328,6 +333,7 @@ def _measure(cfg: GateConfig, model_path: Path, weights: str | None, progress: P
         min_runs=cfg.min_runs, min_time=cfg.min_time, budgets=cfg.budgets, percentile=cfg.percentile,
         source=cfg.source if cfg.compare_source else None,
         weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=progress,
+        chunks=cfg.chunks, call_budgets=cfg.call_budgets,
     )
 
 

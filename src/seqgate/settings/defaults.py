@@ -38,6 +38,8 @@ MIN_TIME = 1.0  # seconds per point
 PERCENTILE = 99
 PERCENTILES = (50, 90, 99)  # the percentiles every profile report carries
 COMPARE_SOURCE = True
+# streaming files: steps per call timed by profile (one new sample, and a short chunk)
+CHUNKS = (1, 16)
 # bytes per input element in the memory estimate (float32, the dtype of every sequence input
 # the profiler generates except token ids)
 BYTES_PER_ELEMENT = 4

@@ -96,6 +96,11 @@ SETTINGS: tuple[Setting, ...] = (
             "also time the source framework (on the command line: give --source)"),
     Setting("profile", "budget", "--budget", "options.budgets", (), parse_budgets,
             "latency budgets: seq_len and ms (T=MS on the command line)", table=True, keyword="budgets"),
+    Setting("profile", "chunks", "--chunks", "streaming.chunks", d.CHUNKS, parse_int_list,
+            "streaming files: steps per call to time"),
+    Setting("profile", "call_budget", "--call-budget", "streaming.call_budgets", (), parse_budgets,
+            "streaming files: per-call budgets, seq_len = steps per call and ms (N=MS on the command line)",
+            table=True, keyword="call_budgets"),
 )
 
 

@@ -348,21 +348,19 @@ def verify_model(
 ) -> VerifyReport:
     """Compare the ONNX file with its source on every window; see the module docstring.
 
-    Settings go through the parsers of ``seqgate.settings``; ``tolerances`` is a tolerance file
-    (``atol``/``rtol`` on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored).
-    """
+    Settings go through ``seqgate.settings``; ``tolerances`` is a tolerance file (``atol``/``rtol``
+    on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored)."""
     from seqgate.onnxfile.load import load_onnx
     from seqgate.util.environment import environment
 
     opts, tol = _settings(locals())
-    synthetic, batch_size, states, oracle, task, seed = (
-        opts[k] for k in ("synthetic", "batch_size", "states", "oracle", "task", "seed"))
+    synthetic, batch_size, states, oracle, task, seed = (opts[k] for k in (
+        "synthetic", "batch_size", "states", "oracle", "task", "seed"))
     windows = list(recordings)
     if not windows and not synthetic:
         raise BadInputError("nothing to compare: give recorded windows with --recording REC.npz and/or "
                             "--synthetic.")
-    if isinstance(tolerances, Tolerances):  # built by a caller (the gate config), not read from a file
-        tolerances = None
+    tolerances = None if isinstance(tolerances, Tolerances) else tolerances  # built by the gate config
     path = Path(model_path)
     stream_model, model = _split_streaming(load_onnx(path))
     src = source if isinstance(source, Source) else parse_source(source, weights)
