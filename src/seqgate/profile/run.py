@@ -114,6 +114,7 @@ def lengths_to_measure(model: Any, seq_lens: Sequence[int], budgets: Sequence[Bu
                        batch_sizes: Sequence[int] = d.BATCH_SIZES) -> list[int]:
     """The lengths a profile of ``model`` would measure; ``BadInputError`` for budgets it cannot take
     or a sweep whose inputs would not fit in memory."""
+    model = ordinary_view(model) if is_streaming(model) else model
     plans = plan_inputs(model)
     lengths = _sweep_lengths(model_axes(model, plans), list(seq_lens), list(budgets), [])
     _check_memory(plans, lengths, list(batch_sizes))
