@@ -42,7 +42,7 @@ def files(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
 
     def three_problems(x: Any) -> Any:
         a = L.GRU(3, recurrent_activation="gelu", name="gelu_gru")(x)
-        b = L.LSTM(3, stateful=True, name="stateful_lstm")(x)
+        b = L.Bidirectional(L.LSTM(3, stateful=True), name="stateful_bi")(x)
         c = L.SimpleRNN(3, activation="relu6", name="relu6_rnn")(x)  # no ONNX slot for relu6
         return L.Concatenate()([a, b, c])
 
@@ -116,7 +116,8 @@ def test_opset_out_of_range(opset: str, files: dict[str, Path], tmp_path: Path) 
 def test_every_unsupported_layer_in_one_message(files: dict[str, Path], tmp_path: Path) -> None:
     r = _invoke("export", str(files["unsupported"]), "-o", str(tmp_path / "x.onnx"))
     assert r.exit_code == 3, r.output
-    needles = ("gelu_gru (GRU)", "'gelu'", "stateful_lstm (LSTM)", "stateful=True", "relu6_rnn (SimpleRNN)")
+    needles = ("gelu_gru (GRU)", "'gelu'", "stateful_bi (Bidirectional)", "stateful=True",
+               "relu6_rnn (SimpleRNN)")
     for needle in needles:
         assert needle in r.output, (needle, r.output)
     assert r.output.count("error:") == 1

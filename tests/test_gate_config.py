@@ -115,11 +115,12 @@ def test_example_config_mentions_every_key() -> None:
     from seqgate.gate.config import SECTIONS, section_keys
 
     text = (FIXTURES / "gate_example.toml").read_text(encoding="utf-8")
-    keys = {k for name in SECTIONS for k in section_keys(name)} - {"tolerance", "budget"}
+    keys = {k for name in SECTIONS for k in section_keys(name)} - {"tolerance", "budget", "call_budget"}
     keys |= {"match", "atol", "rtol", "seq_len", "ms"}
     missing = [k for k in sorted(keys) if f"{k} =" not in text]
     assert not missing, missing
-    sections = ("[model]", "[export]", "[verify]", "[[verify.tolerance]]", "[profile]", "[[profile.budget]]")
+    sections = ("[model]", "[export]", "[verify]", "[[verify.tolerance]]", "[profile]", "[[profile.budget]]",
+                "[[profile.call_budget]]")
     for section in sections:
         assert section in text
 
@@ -133,7 +134,7 @@ def test_example_config_shows_the_true_defaults() -> None:
 
     data = tomllib.loads((FIXTURES / "gate_example.toml").read_text(encoding="utf-8"))
     for s in SETTINGS:
-        if s.key in ("recordings", "tolerance", "budget"):
+        if s.key in ("recordings", "tolerance", "budget", "call_budget"):
             continue
         assert s.key in data[s.section], f"[{s.section}] {s.key} missing from the example"
         shown = data[s.section][s.key]

@@ -193,12 +193,14 @@ def _expected_config_defaults() -> dict[tuple[str, str], object]:
     expected: dict[tuple[str, str], object] = {("model", k): None for k in MODEL_KEYS}
     expected[("model", "untrained")] = False
     expected[("export", "opset")] = DEFAULT_OPSET
+    expected[("export", "streaming")] = None
     for st in SETTINGS:
         if st.table:  # the [[...]] tables: their own keys, each required or optional
             continue
         expected[(st.section, st.key)] = list(st.default) if isinstance(st.default, tuple) else st.default
     expected.update({("verify.tolerance", k): None for k in ("match", "atol", "rtol")})
     expected.update({("profile.budget", k): None for k in ("seq_len", "ms")})
+    expected.update({("profile.call_budget", k): None for k in ("seq_len", "ms")})
     return expected
 
 

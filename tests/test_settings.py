@@ -106,7 +106,7 @@ def test_cli_default_is_the_setting_default(st: Any) -> None:
         # not given → the tolerance file, else the default; the help says the default
         assert opt.default is None and f"{st.default:g}" in opt.help
         return
-    if st.key in ("recordings", "budget"):
+    if st.key in ("recordings", "budget", "call_budget"):
         assert not opt.default  # repeatable; nothing by default
         return
     text = isinstance(opt.default, str) and st.key != "task"  # comma lists are parsed as the CLI does

@@ -60,6 +60,9 @@ def export(
     custom_code: Annotated[Path | None, typer.Option(
         "--custom-code", help="Keras: run this Python file first; it defines and registers the model's "
         "custom classes (e.g. a custom RNN cell). Without it such models are refused.")] = None,
+    streaming: Annotated[bool | None, typer.Option(
+        "--streaming/--no-streaming", help="Give every recurrent layer a state input and output, so the "
+        "file runs a stream chunk by chunk (default: only for Keras stateful=True layers).")] = None,
 ) -> None:
     """Write the ONNX graph of a trained model, with native RNN/GRU/LSTM ops and a probe map."""
     from seqgate.export.run import DEFAULT_OPSET, export_source
@@ -70,9 +73,13 @@ def export(
         load_custom_code(custom_code)
 
     options = {"inputs": input_spec} if input_spec else {}
-    res = export_source(source, out, opset or DEFAULT_OPSET, force, weights, untrained, **options)
+    res = export_source(source, out, opset or DEFAULT_OPSET, force, weights, untrained, streaming, **options)
     n_nodes = len(res.model.graph.node)
     typer.echo(f"wrote {res.path} (opset {res.opset}, {n_nodes} nodes, {res.probes} probes)")
+    states = [i.name for i in res.model.graph.input if i.type.HasField("optional_type")]
+    if states:
+        typer.echo(f"streaming: {len(states)} state inputs ({', '.join(states)}); feed each *_out back "
+                   f"as its *_in on the next call (metadata seqgate.streaming)")
     if untrained:
         typer.echo("note: UNTRAINED model (--untrained): exported with the factory's initial parameters.")
 

@@ -53,13 +53,18 @@ def profile_command(
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display.")] = False,
     force: Annotated[bool, typer.Option(
         "--force", help="Replace report files that seqgate did not write.")] = False,
+    chunks: Annotated[str, typer.Option("--chunks", help="Streaming files: steps per call to time, "
+                                        "comma-separated.")] = _csv(d.CHUNKS),
+    call_budget: Annotated[list[str] | None, typer.Option(
+        "--call-budget", help="Streaming files, N=MS: a call carrying N new steps must take <= MS ms at "
+        "the percentile (repeatable).")] = None,
 ) -> None:
     """Measure CPU latency per sequence length with ONNX Runtime, against budgets and the source."""
     from seqgate.profile.run import profile_model
     from seqgate.report.profile_report import write_csv, write_json, write_plot
 
     opts = _parse_options(seq_lens, old_batch or batch_sizes, threads, warmup, min_runs, min_time,
-                          budget or [], percentile, seed)
+                          budget or [], percentile, seed, chunks, call_budget or [])
     for path, option in ((report, "--report"), (csv, "--csv"), (plot, "--plot")):
         if path is not None:
             check_writable(path, force, option)
@@ -78,7 +83,8 @@ def profile_command(
 
 
 def _parse_options(seq_lens: str, batch_sizes: str, threads: str, warmup: int, min_runs: int, min_time: float,
-                   budgets: list[str], percentile: int, seed: int) -> dict[str, Any]:
+                   budgets: list[str], percentile: int, seed: int, chunks: str = _csv(d.CHUNKS),
+                   call_budgets: list[str] | None = None) -> dict[str, Any]:
     """Every option through its parser in ``seqgate.settings``; all problems in one error (exit 2)."""
     from seqgate.settings import CLI, Problems, parse_seed, parse_settings
 
@@ -86,12 +92,14 @@ def _parse_options(seq_lens: str, batch_sizes: str, threads: str, warmup: int, m
     opts = parse_settings("profile", {
         "seq_lens": seq_lens, "batch_sizes": batch_sizes, "threads": threads, "warmup": warmup,
         "min_runs": min_runs, "min_time": min_time, "budget": budgets, "percentile": percentile,
+        "chunks": chunks, "call_budget": call_budgets or [],
     }, CLI, problems)
     checked_seed = problems.take(parse_seed, seed, "--seed")
     problems.raise_if_any()
     return {"seq_lens": opts["seq_lens"], "batch_sizes": opts["batch_sizes"], "threads": opts["threads"],
             "warmup": opts["warmup"], "min_runs": opts["min_runs"], "min_time": opts["min_time"],
-            "budgets": opts["budget"], "percentile": opts["percentile"], "seed": checked_seed}
+            "budgets": opts["budget"], "percentile": opts["percentile"], "seed": checked_seed,
+            "chunks": opts["chunks"], "call_budgets": opts["call_budget"]}
 
 
 def _f(x: float | None, digits: int = 3) -> str:
@@ -140,6 +148,7 @@ def print_tables(data: dict[str, Any]) -> None:
                        _f(b["measured_ms"], 4), _f(b["margin_ms"], 4),
                        Text("pass", "green") if b["passed"] else Text("fail", "bold red"))
         c.print(bt)
+    _print_streaming(c, data.get("streaming"))
     timer, env = data["timer"], data["environment"]
     c.print(Text(f"seed {data['seed']}; timer overhead {timer['overhead_median_ns']} ns per run (reported, "
                  f"not subtracted); {env['cpu']}, {env['logical_cores']} logical cores"))
@@ -150,6 +159,28 @@ def print_tables(data: dict[str, Any]) -> None:
         c.print(Text(f"PASSED: every budget met at p{q}", "bold green") if data["passed"] else
                 Text(f"FAILED: {over} of {len(data['budgets'])} budget verdicts over budget at p{q}",
                      "bold red"))
+
+
+def _print_streaming(c: Any, st: dict[str, Any] | None) -> None:
+    """Per-call latency of a streaming file, then its per-call budgets."""
+    if not st:
+        return
+    from rich.table import Table
+    from rich.text import Text
+
+    q = st["percentile"]
+    t = Table(title=f"streaming: per-call latency ({st['states']} state inputs fed)")
+    cols = ("steps per call", "threads", "batch", "p50 (ms)", "p90 (ms)", "p99 (ms)", f"p{q} µs/sample", "runs")
+    for col in cols:
+        t.add_column(col, justify="right")
+    for p in st["points"]:
+        t.add_row(str(p["chunk"]), str(p["threads"]), str(p["batch"]), _f(p["p50_ms"], 4), _f(p["p90_ms"], 4),
+                  _f(p["p99_ms"], 4), _f(p["us_per_sample"][f"p{q}"], 1), str(p["runs"]))
+    c.print(t)
+    for b in st["call_budgets"]:
+        mark = Text("pass", "green") if b["passed"] else Text("fail", "bold red")
+        c.print(Text.assemble(f"call budget: {b['chunk']} steps per call ≤ {b['budget_ms']:g} ms at p{q}: "
+                              f"measured {b['measured_ms']:.4g} ms ", mark))
 
 
 def longest_text(x: dict[str, Any]) -> str:

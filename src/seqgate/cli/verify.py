@@ -54,6 +54,8 @@ def verify(
         "--task", help="auto: detect softmax/sigmoid outputs; classify: every output holds class scores; "
         "regress: none does.")] = d.TASK,
     seed: Annotated[int, typer.Option("--seed", help="Seed of the synthetic windows.")] = d.SEED,
+    chunk: Annotated[int, typer.Option("--chunk", help="Streaming files: the chunk size streamed besides "
+                                       "1 and 7.")] = d.CHUNK,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display and no table.")] = False,
     force: Annotated[bool, typer.Option(
         "--force", help="Replace report files that seqgate did not write.")] = False,
@@ -64,7 +66,7 @@ def verify(
     """Replay windows through the source framework and ONNX Runtime; compare outputs and every hidden state."""
     from seqgate.verify.run import verify_model
 
-    opts = _parse_options(custom_code, synthetic, seed, batch_size, states, task, oracle, tolerances,
+    opts = _parse_options(custom_code, synthetic, seed, batch_size, states, task, oracle, chunk, tolerances,
                           atol, rtol)
     for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
         if p is not None:
@@ -75,7 +77,7 @@ def verify(
             synthetic=opts["synthetic"], atol=atol, rtol=rtol,
             tolerances=str(tolerances) if tolerances else None,
             batch_size=opts["batch_size"], states=opts["states"], oracle=opts["oracle"], progress=progress,
-            task=opts["task"], seed=opts["seed"])
+            task=opts["task"], seed=opts["seed"], chunk=opts["chunk"])
     _write_reports(rep, report, junit, summary)
     if not quiet:
         _print_table(rep)
@@ -84,7 +86,7 @@ def verify(
 
 
 def _parse_options(custom_code: Path | None, synthetic: bool, seed: int, batch_size: int, states: bool,
-                   task: str, oracle: bool, tolerances: Path | None, atol: float | None,
+                   task: str, oracle: bool, chunk: int, tolerances: Path | None, atol: float | None,
                    rtol: float | None) -> dict[str, Any]:
     """Every option through ``seqgate.settings``, all problems in one error (exit 2); custom code loaded."""
     if custom_code is not None:
@@ -96,7 +98,7 @@ def _parse_options(custom_code: Path | None, synthetic: bool, seed: int, batch_s
 
     problems = Problems()
     raw = {"synthetic": synthetic, "seed": seed, "batch_size": batch_size, "states": states, "task": task,
-           "oracle": oracle}
+           "oracle": oracle, "chunk": chunk}
     opts = parse_settings("verify", raw, CLI, problems)
     read_tolerances(tolerances, atol, rtol, problems)  # --atol/--rtol with the file they override
     problems.raise_if_any()
@@ -147,6 +149,10 @@ def _print_table(rep: Any) -> None:
         c.print(Text.assemble(("warning:", "yellow"), " ", w))
     if rep.oracle is not None and not rep.oracle.get("ran"):
         c.print(Text.assemble(("oracle:", "yellow"), " ", rep.oracle["reason"]))
+    for r in (rep.streaming or {}).get("runs", []):
+        mark = ("pass", "green") if r["passed"] else ("fail", "red")
+        c.print(Text.assemble(("streaming:", "cyan"), f" chunk {r['chunk']}: {r['calls']} calls, max |Δ| "
+                              f"{r['max_abs']:.2e} vs whole window ", mark))
 
 
 @exits_on_error

@@ -70,6 +70,13 @@ def check_weights_choice(src: Source, untrained: bool) -> None:
         )
 
 
+def has_stateful_layer(model: Any) -> bool:
+    """A recurrent layer of the source was ``stateful=True`` (recorded in its probes' source)."""
+    from seqgate.onnxfile.probes import read_probe_map
+
+    return any(p.source.get("stateful") for p in read_probe_map(model))
+
+
 def build_onnx(src: Source, opset: int = DEFAULT_OPSET, **options: Any) -> Any:
     """Load ``src`` and return its ONNX ModelProto (nothing is written)."""
     check_opset(opset)
@@ -92,6 +99,7 @@ def export_source(
     force: bool = False,
     weights: str | None = None,
     untrained: bool = False,
+    streaming: bool | None = None,
     **options: Any,
 ) -> ExportResult:
     """Export ``source`` to ``out`` atomically; refuse to overwrite unless ``force``.
@@ -106,6 +114,10 @@ def export_source(
     check_writable(out_path, force)
     check_opset(opset)
     model = build_onnx(src, opset, **options)
+    if streaming or (streaming is None and has_stateful_layer(model)):
+        from seqgate.export.streaming import make_streaming
+
+        model = make_streaming(model, src.text)
     data = model.SerializeToString(deterministic=True)
     write_atomic(out_path, data)
     return ExportResult(out_path, model, src, len(read_probe_map(model)), opset)

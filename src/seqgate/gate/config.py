@@ -14,6 +14,7 @@ default)::
 
     [export]
     opset = 17
+    streaming = true                   # state inputs/outputs per recurrent layer (default: stateful Keras only)
 
     [verify]                           # keys, defaults and parsers: seqgate.settings.table
     recordings = ["windows.npz"]       # paths relative to this file
@@ -60,10 +61,11 @@ from typing import Any
 
 from seqgate.errors import BadInputError
 from seqgate.settings import CONFIG, SETTINGS, Budget, Problems, Tolerances, check_input_memory, parse_settings
+from seqgate.settings import defaults as d
 from seqgate.settings.values import parse_int, problems_message, read_toml, unknown_key
 
 MODEL_KEYS = ("source", "weights", "inputs", "onnx", "untrained", "expect_other_source", "custom_code")
-EXPORT_KEYS = ("opset",)
+EXPORT_KEYS = ("opset", "streaming")
 SECTIONS = ("model", "export", "verify", "profile")
 RENAMED = {("profile", "batch"): "batch_sizes"}  # old spellings, named in the error
 
@@ -99,6 +101,10 @@ class GateConfig:
     untrained: bool = False
     expect_other_source: str | None = None  # the reason the ONNX file may come from other files
     custom_code: Path | None = None  # Keras: the user's file of custom classes, run only when named
+    streaming: bool | None = None  # [export] streaming; None: only for Keras stateful layers
+    chunk: int = d.CHUNK  # [verify] chunk
+    chunks: tuple[int, ...] = d.CHUNKS  # [profile] chunks (streaming files)
+    call_budgets: tuple[Budget, ...] = ()  # [[profile.call_budget]] (streaming files)
 
     @property
     def base(self) -> Path:
@@ -182,7 +188,18 @@ def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any]
         onnx=files.path(model["onnx"], "[model] onnx") if "onnx" in model else None,
         untrained=_untrained(c, model), expect_other_source=_other_source(c, model),
         custom_code=files.path(model["custom_code"], "[model] custom_code") if "custom_code" in model else None,
+        streaming=_streaming(c, export), chunk=v["chunk"], chunks=tuple(pr["chunks"]),
+        call_budgets=tuple(pr["call_budget"]),
     )
+
+
+def _streaming(c: Problems, export: dict[str, Any]) -> bool | None:
+    """``[export] streaming``: a boolean; absent = stream only Keras ``stateful=True`` models."""
+    value = export.get("streaming")
+    if value is not None and not isinstance(value, bool):
+        c.add(f"[export] streaming must be true or false, got {value!r}")
+        return None
+    return value
 
 
 def _check_sweep_memory(c: Problems, pr: dict[str, Any]) -> None:

@@ -239,7 +239,7 @@ def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
     cfg = report.config
     options = {"inputs": list(cfg.inputs)} if cfg.inputs else {}
     res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, untrained=cfg.untrained,
-                        **options)
+                        streaming=cfg.streaming, **options)
     from seqgate.onnxfile.probes import read_metadata
 
     meta = read_metadata(res.model)
@@ -293,13 +293,17 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
     vr = verify_model(
         model_path, cfg.source, weights=weights, recordings=[str(p) for p in cfg.recordings],
         synthetic=cfg.synthetic, tolerances=cfg.tolerances, batch_size=cfg.batch_size, states=cfg.states,
-        oracle=cfg.oracle, progress=progress, task=cfg.task, seed=cfg.seed,
+        oracle=cfg.oracle, progress=progress, task=cfg.task, seed=cfg.seed, chunk=cfg.chunk,
     )
     report.verify = vr.to_json()
     for r in report.verify["recordings"]:  # hashed once, by verify
         if r.get("path"):
             report.files[r["path"]] = r["sha256"]
     report.checks.append({"name": "verify", "passed": vr.passed, "detail": vr.headline()})
+    if vr.streaming is not None:
+        from seqgate.report.streaming import streaming_check_entry
+
+        report.checks.append(streaming_check_entry(vr.streaming))
 
 
 def _profile(report: GateReport, model_path: Path, weights: str | None, progress: Progress) -> None:
@@ -317,6 +321,11 @@ def _profile(report: GateReport, model_path: Path, weights: str | None, progress
         n = len(cfg.budgets)
         detail = (f"{n} budget{'s' if n != 1 else ''} held at p{cfg.percentile} at every batch and thread "
                   f"setting measured ({len(budgets)} verdicts)")
+    calls = (report.profile.get("streaming") or {}).get("call_budgets") or []
+    if calls:
+        detail += "; per call: " + "; ".join(
+            f"{c['chunk']} steps ≤ {c['budget_ms']:g} ms: {c['measured_ms']:.3g} ms "
+            f"({'pass' if c['passed'] else 'fail'})" for c in calls)
     report.checks.append({"name": "latency", "passed": pr.passed, "detail": detail})
 
 
@@ -328,6 +337,7 @@ def _measure(cfg: GateConfig, model_path: Path, weights: str | None, progress: P
         min_runs=cfg.min_runs, min_time=cfg.min_time, budgets=cfg.budgets, percentile=cfg.percentile,
         source=cfg.source if cfg.compare_source else None,
         weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=progress,
+        chunks=cfg.chunks, call_budgets=cfg.call_budgets,
     )
 
 

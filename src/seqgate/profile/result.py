@@ -165,11 +165,12 @@ class ProfileReport:
     environment: dict[str, Any]
     timer: dict[str, Any]
     notes: list[str] = field(default_factory=list)
+    streaming: dict[str, Any] | None = None  # per-call latency of a streaming file (profile.streaming)
 
     @property
     def passed(self) -> bool:
-        """True when every budget check holds (and trivially with no budget)."""
-        return all(b["passed"] for b in self.budgets)
+        """True when every budget check holds (and trivially with no budget), per-call budgets included."""
+        return all(b["passed"] for b in self.budgets) and (self.streaming is None or self.streaming["passed"])
 
     def to_dict(self) -> dict[str, Any]:
         from seqgate import __version__
@@ -188,6 +189,7 @@ class ProfileReport:
             "environment": self.environment,
             "timer": self.timer,
             "notes": self.notes,
+            "streaming": self.streaming,
         }
 
     def to_json(self) -> str:

@@ -34,6 +34,7 @@ from typing import Any
 import numpy as np
 
 from seqgate.errors import BadInputError
+from seqgate.export.streaming import is_streaming, ordinary_view
 from seqgate.profile.inputs import InputPlan, make_inputs, model_axes, plan_inputs
 from seqgate.profile.result import ONNXRUNTIME, Point, ProfileReport, attach_speedups, budget_checks, fits_for
 from seqgate.profile.stats import summarize_ns
@@ -113,6 +114,7 @@ def lengths_to_measure(model: Any, seq_lens: Sequence[int], budgets: Sequence[Bu
                        batch_sizes: Sequence[int] = d.BATCH_SIZES) -> list[int]:
     """The lengths a profile of ``model`` would measure; ``BadInputError`` for budgets it cannot take
     or a sweep whose inputs would not fit in memory."""
+    model = ordinary_view(model) if is_streaming(model) else model
     plans = plan_inputs(model)
     lengths = _sweep_lengths(model_axes(model, plans), list(seq_lens), list(budgets), [])
     _check_memory(plans, lengths, list(batch_sizes))
@@ -164,22 +166,21 @@ def profile_model(
     weights: str | None = None,
     seed: int = d.SEED,
     progress: Progress | None = None,
+    chunks: str | Sequence[int] = d.CHUNKS,
+    call_budgets: Sequence[str | Budget] = (),
 ) -> ProfileReport:
-    """Measure ``model_path`` over the sweep and judge the budgets (see the module docstring).
-
-    Raises ``BadInputError`` (exit 2) for bad arguments or files before anything is timed; the
-    arguments go through the parsers of ``seqgate.settings`` (already typed values pass unchanged).
-    """
+    """Measure ``model_path`` over the sweep and judge the budgets (module docstring). Bad arguments or
+    files (parsed by ``seqgate.settings``) raise ``BadInputError`` (exit 2) before anything is timed."""
     from seqgate.onnxfile.costs import summary
     from seqgate.onnxfile.load import load_onnx
     from seqgate.util.environment import environment
 
     opts = _options(locals())
     warmup, min_runs, min_time = opts["warmup"], opts["min_runs"], opts["min_time"]
-    q, seed = opts["percentile"], opts["seed"]
-    budget_list = list(opts["budget"])
+    q, seed, budget_list = opts["percentile"], opts["seed"], list(opts["budget"])
     path = Path(model_path)
-    model = load_onnx(path)
+    stream_model = load_onnx(path)  # a streaming file: the sweep times its ordinary graph
+    model = ordinary_view(stream_model) if is_streaming(stream_model) else stream_model
     notes: list[str] = []
     plans = plan_inputs(model)
     axes = model_axes(model, plans)
@@ -201,6 +202,7 @@ def profile_model(
                      "--min-runs or --min-time for a steadier tail.")
     fits = fits_for(points, q, budget_list, notes)
     return ProfileReport(
+        streaming=_streaming(stream_model, plans, opts, batch_list, thread_list, (warmup, min_runs, min_time)),
         model=_model_record(path, cost, plans, axes),
         source=_source_record(src, sweep.agreement),
         options={"seq_lens": lengths, "batch_sizes": batch_list, "threads": thread_list, "warmup": warmup,
@@ -209,6 +211,19 @@ def profile_model(
         seed=seed, points=points, fits=fits, budgets=budget_checks(points, budget_list, q, fits),
         environment={**environment(), "session_options": sessions}, timer=timer_overhead(), notes=notes,
     )
+
+
+def _streaming(model: Any, plans: list[InputPlan], opts: dict[str, Any], batch_list: list[int],
+               thread_list: list[int], counts: tuple[int, int, float]) -> dict[str, Any] | None:
+    """Per-call latency of a streaming file (``seqgate.profile.streaming``) at the smallest batch."""
+    from seqgate.export.streaming import is_streaming
+
+    if not is_streaming(model):
+        return None
+    from seqgate.profile.streaming import profile_calls
+
+    return profile_calls(model, plans, list(opts["chunks"]), list(opts["call_budget"]), min(batch_list),
+                         thread_list, opts["seed"], counts, opts["percentile"], time_call)
 
 
 def _model_record(path: Path, cost: dict[str, Any], plans: list[Any], axes: Any) -> dict[str, Any]:
@@ -231,7 +246,8 @@ def _options(args: dict[str, Any]) -> dict[str, Any]:
     """``profile_model``'s arguments through ``seqgate.settings``; every problem in one error (exit 2)."""
     problems = Problems()
     keys = ("seq_lens", "batch_sizes", "threads", "warmup", "min_runs", "min_time", "percentile")
-    raw = {**{k: args[k] for k in keys}, "budget": args["budgets"]}
+    raw = {**{k: args[k] for k in keys}, "budget": args["budgets"], "chunks": args["chunks"],
+           "call_budget": args["call_budgets"]}
     opts = parse_settings("profile", raw, PYTHON, problems)
     opts["seed"] = problems.take(parse_seed, args["seed"], "argument seed")
     problems.raise_if_any()

@@ -13,6 +13,8 @@ import html
 import io
 from typing import Any
 
+from seqgate.report.streaming import streaming_html
+
 _CSS = """
 body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:2rem auto;max-width:72rem;
 color:#1d232a;line-height:1.45;padding:0 1rem}
@@ -357,6 +359,7 @@ def render_gate_html(report: dict[str, Any]) -> str:
         _stopped(report.get("error")),
         _divergence(report.get("verify")),
         _verify_section(report.get("verify")),
+        streaming_html((report.get("verify") or {}).get("streaming")),
         _profile_section(report.get("profile"), pct),
         _provenance(report),
         "<h2>What this report shows</h2><p class='note'>Passing shows that the exported ONNX graph computes "

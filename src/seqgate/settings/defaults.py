@@ -26,6 +26,8 @@ STATES = True
 TASK = "auto"
 TASKS = ("auto", "classify", "regress")
 ORACLE = False
+# streaming files: chunk size streamed besides 1 and 7 (seqgate.verify.streaming)
+CHUNK = 16
 # profile
 SEQ_LENS = (16, 64, 256)
 BATCH_SIZES = (1,)
@@ -36,6 +38,8 @@ MIN_TIME = 1.0  # seconds per point
 PERCENTILE = 99
 PERCENTILES = (50, 90, 99)  # the percentiles every profile report carries
 COMPARE_SOURCE = True
+# streaming files: steps per call timed by profile (one new sample, and a short chunk)
+CHUNKS = (1, 16)
 # bytes per input element in the memory estimate (float32, the dtype of every sequence input
 # the profiler generates except token ids)
 BYTES_PER_ELEMENT = 4

@@ -74,6 +74,8 @@ SETTINGS: tuple[Setting, ...] = (
             "relative tolerance of every tensor"),
     Setting("verify", "oracle", "--oracle", "settings.oracle", d.ORACLE, parse_bool,
             "re-run the worst windows under onnx.reference"),
+    Setting("verify", "chunk", "--chunk", "streaming.chunk_sizes", d.CHUNK, parse_count,
+            "streaming files: the chunk size streamed besides 1 and 7"),
     Setting("verify", "tolerance", None, "settings.tolerance", (), parse_overrides,
             "per-tensor overrides: match, atol, rtol ([[tolerance]] in a --tolerances file)", table=True),
     Setting("profile", "seq_lens", "--seq-lens", "options.seq_lens", d.SEQ_LENS, parse_int_list,
@@ -94,6 +96,11 @@ SETTINGS: tuple[Setting, ...] = (
             "also time the source framework (on the command line: give --source)"),
     Setting("profile", "budget", "--budget", "options.budgets", (), parse_budgets,
             "latency budgets: seq_len and ms (T=MS on the command line)", table=True, keyword="budgets"),
+    Setting("profile", "chunks", "--chunks", "streaming.chunks", d.CHUNKS, parse_int_list,
+            "streaming files: steps per call to time"),
+    Setting("profile", "call_budget", "--call-budget", "streaming.call_budgets", (), parse_budgets,
+            "streaming files: per-call budgets, seq_len = steps per call and ms (N=MS on the command line)",
+            table=True, keyword="call_budgets"),
 )
 
 

@@ -88,6 +88,7 @@ class VerifyReport:
     oracle: dict[str, Any] | None = None
     warnings: list[str] = field(default_factory=list)
     provenance: dict[str, Any] | None = None
+    streaming: dict[str, Any] | None = None  # seqgate.verify.streaming, for a streaming file
 
     @property
     def exit_code(self) -> int:
@@ -98,6 +99,9 @@ class VerifyReport:
             worst = max((t["metrics"]["max_abs"] or 0.0 for t in self.tensors), default=0.0)
             return (f"PASSED: {len(self.tensors)} tensors on {len(self.recordings)} recordings within "
                     f"tolerance (largest |Δ| {worst:.3g}).")
+        if self.first_divergence is None and self.streaming:
+            fails = [f for r in self.streaming["runs"] for f in r["failures"]]
+            return f"FAILED: streaming check: {fails[0] if fails else 'see the streaming section'}"
         fd = self.first_divergence or {}
         step = f" from step {fd['step']}" if fd.get("step") is not None else ""
         return (f"FAILED: first divergence at {fd.get('kind')} '{fd.get('tensor')}'"
@@ -110,7 +114,7 @@ class VerifyReport:
             "schema": SCHEMA, "passed": self.passed, "headline": self.headline(),
             "first_divergence": self.first_divergence, "tensors": self.tensors,
             "recordings": self.recordings, "model": self.model, "source": self.source,
-            "provenance": self.provenance,
+            "provenance": self.provenance, "streaming": self.streaming,
             "seed": self.seed, "settings": self.settings, "oracle": self.oracle,
             "warnings": self.warnings, "environment": self.environment,
             "seqgate_version": self.environment.get("seqgate"),
@@ -340,26 +344,25 @@ def verify_model(
     progress: Progress | None = None,
     task: str | None = d.TASK,
     seed: int = d.SEED,
+    chunk: int = d.CHUNK,
 ) -> VerifyReport:
     """Compare the ONNX file with its source on every window; see the module docstring.
 
-    Settings go through the parsers of ``seqgate.settings``; ``tolerances`` is a tolerance file
-    (``atol``/``rtol`` on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored).
-    """
+    Settings go through ``seqgate.settings``; ``tolerances`` is a tolerance file (``atol``/``rtol``
+    on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored)."""
     from seqgate.onnxfile.load import load_onnx
     from seqgate.util.environment import environment
 
     opts, tol = _settings(locals())
-    synthetic, batch_size, states, oracle, task, seed = (
-        opts[k] for k in ("synthetic", "batch_size", "states", "oracle", "task", "seed"))
+    synthetic, batch_size, states, oracle, task, seed = (opts[k] for k in (
+        "synthetic", "batch_size", "states", "oracle", "task", "seed"))
     windows = list(recordings)
     if not windows and not synthetic:
         raise BadInputError("nothing to compare: give recorded windows with --recording REC.npz and/or "
                             "--synthetic.")
-    if isinstance(tolerances, Tolerances):  # built by a caller (the gate config), not read from a file
-        tolerances = None
+    tolerances = None if isinstance(tolerances, Tolerances) else tolerances  # built by the gate config
     path = Path(model_path)
-    model = load_onnx(path)
+    stream_model, model = _split_streaming(load_onnx(path))
     src = source if isinstance(source, Source) else parse_source(source, weights)
     prov, probes, warnings = _check_source(model, src, states)
     specs = input_specs(model)
@@ -376,8 +379,9 @@ def verify_model(
 
         oracle_out = run_oracle(model, probes, infos, results, onnx_runner, src_runner, tol)
     first = _first_divergence(infos, results)
+    streaming = _streaming(stream_model, recs, specs, src_runner, tol, opts["chunk"])
     return VerifyReport(
-        passed=first is None,
+        passed=first is None and (streaming is None or streaming["passed"]), streaming=streaming,
         tensors=[_tensor_entry(t, results, comparer.batch_axis.get(t.name, 0)) for t in infos],
         first_divergence=first, recordings=[r.recording.to_json() for r in results],
         model=_model_record(path, specs), source=_source_record(src), seed=seed,
@@ -385,6 +389,23 @@ def verify_model(
                   "atol": tol.atol, "rtol": tol.rtol, "tolerances_file": tolerances,
                   "tolerance": [o.to_json() for o in tol.overrides]},
         environment=environment(), oracle=oracle_out, warnings=warnings, provenance=prov)
+
+
+def _split_streaming(model: Any) -> tuple[Any, Any]:
+    """(the streaming file or None, the graph compared with the source: its ordinary view)."""
+    from seqgate.export.streaming import is_streaming, ordinary_view
+
+    return (model, ordinary_view(model)) if is_streaming(model) else (None, model)
+
+
+def _streaming(stream_model: Any, recs: list[Recording], specs: list[InputSpec], src_runner: Any,
+               tol: Tolerances, chunk: int) -> dict[str, Any] | None:
+    """The streaming section (``seqgate.verify.streaming``) of a streaming file; None otherwise."""
+    if stream_model is None:
+        return None
+    from seqgate.verify.streaming import verify_streaming
+
+    return verify_streaming(stream_model, recs, specs, src_runner.run, tol.atol, tol.rtol, chunk)
 
 
 def _model_record(path: Path, specs: list[InputSpec]) -> dict[str, Any]:
@@ -445,7 +466,7 @@ def _classes(model: Any, task: str | None) -> set[str]:
 def _settings(args: dict[str, Any]) -> tuple[dict[str, Any], Tolerances]:
     """``verify_model``'s arguments through ``seqgate.settings``; every problem in one error (exit 2)."""
     problems = Problems()
-    raw = {k: args[k] for k in ("synthetic", "seed", "batch_size", "states", "task", "oracle")}
+    raw = {k: args[k] for k in ("synthetic", "seed", "batch_size", "states", "task", "oracle", "chunk")}
     opts = parse_settings("verify", {**raw, "task": raw["task"] or d.TASK}, PYTHON, problems)
     tol = args["tolerances"]
     if not isinstance(tol, Tolerances):

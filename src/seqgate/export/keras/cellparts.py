@@ -30,10 +30,13 @@ def is_custom_cell(cell: Any) -> bool:
     return cell is not None and not type(cell).__module__.startswith("keras.")
 
 
-def check_options(layer: Any) -> None:
-    if getattr(layer, "stateful", False):
-        raise Refusal("stateful=True", "export a stateless copy of the layer (stateful=False); "
-                      "carrying state across calls is not supported yet")
+def check_options(layer: Any, bidirectional: bool = False) -> None:
+    """``stateful=True`` is exported as a streaming file (``seqgate.export.streaming``), except
+    in a Bidirectional wrapper: its backward direction starts from the window's last step."""
+    if bidirectional and getattr(layer, "stateful", False):
+        raise Refusal("Bidirectional with stateful=True: the backward direction starts from the window's "
+                      "last step, so its state cannot be carried from one call to the next",
+                      "use stateful=False, or a unidirectional stateful layer")
 
 
 def cell_slots(kind: str, cell: Any) -> list[CellActivation]:

@@ -72,7 +72,8 @@ def emit_keras_rnn(b: GraphBuilder, call: KerasCall) -> list[str]:
         kind=kind, hidden=int(cell.units), direction="reverse" if back else "forward",
         packed=pack_cell(kind, cell), activations=cell_slots(kind, cell), layer=call.name,
         source={"framework": "keras", "layer": call.name, "go_backwards": back,
-                "return_sequences": bool(layer.return_sequences)},
+                "return_sequences": bool(layer.return_sequences),
+                **({"stateful": True} if getattr(layer, "stateful", False) else {})},
     )
     h0, c0 = _initial_states(b, call, 1, kind)
     seqs, state = bool(layer.return_sequences), bool(layer.return_state)
@@ -134,7 +135,7 @@ def emit_keras_bidirectional(b: GraphBuilder, call: KerasCall) -> list[str]:
     fw, bw = layer.forward_layer, layer.backward_layer
     kind, fcell = _cell_of(fw, call.name)
     _, bcell = _cell_of(bw, call.name)
-    check_options(fw)
+    check_options(fw, bidirectional=True)
     _same_config(fw, bw)
     if fw.go_backwards or not bw.go_backwards:
         raise Refusal("Bidirectional around a layer with go_backwards=True",
