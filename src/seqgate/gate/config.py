@@ -97,6 +97,7 @@ class GateConfig:
     onnx: Path | None = None
     untrained: bool = False
     expect_other_source: str | None = None  # the reason the ONNX file may come from other files
+    lengths: str | Path = "full"  # [profile] lengths: "full", "uniform" or a recording (resolved)
 
     @property
     def base(self) -> Path:
@@ -179,6 +180,8 @@ def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any]
         compare_source=pr["compare_source"], budgets=tuple(pr["budget"]), profile_enabled=profile_enabled,
         onnx=files.path(model["onnx"], "[model] onnx") if "onnx" in model else None,
         untrained=_untrained(c, model), expect_other_source=_other_source(c, model),
+        lengths=files.path(str(pr["lengths"]), "[profile] lengths") if isinstance(pr["lengths"], Path)
+        else pr["lengths"],
     )
 
 

@@ -13,6 +13,8 @@ import html
 import io
 from typing import Any
 
+from seqgate.report.profile_report import padded_label
+
 _CSS = """
 body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:2rem auto;max-width:72rem;
 color:#1d232a;line-height:1.45;padding:0 1rem}
@@ -95,16 +97,18 @@ def latency_chart(profile: dict[str, Any], percentile: int) -> str | None:
     key = f"p{percentile}_ms"
     series: dict[tuple[Any, ...], list[tuple[int, float]]] = {}
     for p in points:
-        series.setdefault((p["runtime"], p["threads"], p["batch"]), []).append((p["seq_len"], p[key]))
+        at = (p["runtime"], p["threads"], p["batch"], p.get("lengths", "full"))
+        series.setdefault(at, []).append((p["seq_len"], p[key]))
     fig, ax = plt.subplots(figsize=(8.5, 3.8))
-    for (rt, th, bs), pts in sorted(series.items()):
+    for (rt, th, bs, lengths), pts in sorted(series.items()):
         pts.sort()
         ax.plot(
             [a for a, _ in pts],
             [b for _, b in pts],
-            marker="o",
+            marker="o" if lengths == "full" else "s",
+            ls="-" if lengths == "full" else ":",
             lw=1.4,
-            label=f"{rt}, {th} thread{'s' if th != 1 else ''}, batch {bs}",
+            label=f"{rt}, {th} thread{'s' if th != 1 else ''}, batch {bs}{padded_label(lengths)}",
         )
     for b in profile.get("budgets") or []:
         ax.scatter([b["seq_len"]], [b["budget_ms"]], marker="_", s=500, color="#8a1610", zorder=5)
@@ -279,6 +283,7 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
             _e(p["seq_len"]),
             _e(p["batch"]),
             _e(p["threads"]),
+            _e(padded_label(p.get("lengths", "full")).removeprefix(", ") or "full"),
             _fmt(p.get("p50_ms")),
             _fmt(p.get("p90_ms")),
             _fmt(p.get("p99_ms")),
@@ -289,9 +294,10 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
     ]
     parts.append(
         _table(
-            ["runtime", "seq len", "batch", "threads", "p50 ms", "p90 ms", "p99 ms", "runs", "speed-up"],
+            ["runtime", "seq len", "batch", "threads", "rows", "p50 ms", "p90 ms", "p99 ms", "runs",
+             "speed-up"],
             rows,
-            {1, 2, 3, 4, 5, 6, 7, 8},
+            {1, 2, 3, 5, 6, 7, 8, 9},
         )
     )
     return "".join(parts)
