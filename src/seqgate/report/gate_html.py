@@ -1,9 +1,11 @@
 """The gate's self-contained HTML report: inline CSS, charts as inline PNG data URIs, no network.
 
 Order, for a release reviewer: the verdict and the table of checks; the first divergence if
-verification failed; a chart of per-step error for each time-indexed probe; the latency-vs-
-sequence-length chart with budgets; the tensor and latency tables; provenance (hashes,
-versions, CPU). Input is the gate report dict (``schema: "seqgate.gate/1"``).
+verification failed; a chart of per-step error for each time-indexed probe; the tensor table;
+for a model taking lengths or a mask, the mask chart (``report.mask_chart``); the latency-vs-
+sequence-length chart with budgets (padded batches as dotted lines of their own) and the
+latency tables; provenance (hashes, versions, CPU). Input is the gate report dict
+(``schema: "seqgate.gate/1"``).
 """
 
 from __future__ import annotations
@@ -13,6 +15,7 @@ import html
 import io
 from typing import Any
 
+from seqgate.report.mask_chart import mask_section
 from seqgate.report.profile_report import padded_label
 
 _CSS = """
@@ -224,6 +227,7 @@ def _verify_section(verify: dict[str, Any] | None) -> str:
             {3, 4, 5, 6, 7, 8, 9},
         )
     )
+    parts.append(mask_section(verify))
     for w in verify.get("warnings", []):
         parts.append(f"<p class='note'>warning: {_e(w)}</p>")
     return "".join(parts)
