@@ -66,3 +66,14 @@ def test_length_outside_the_window_is_refused_naming_it(tmp_path: Path) -> None:
     rec = load_recording(path, PACKED_SPECS)
     with pytest.raises(BadInputError, match=r"window 1 has length 6, outside 0\.\.5"):
         add_padding_counts([rec], [LENGTHS])
+
+
+def test_mask_chart_lists_only_sets_with_counts() -> None:
+    from seqgate.report.mask_chart import mask_counts, mask_section
+
+    verify = {"recordings": [{"label": "rec.npz", "notes": {"padding_steps": 3, "steps": 10}},
+                             {"label": "synthetic:zeros", "notes": {"seed": 0}}]}
+    assert mask_counts(verify) == [("rec.npz", 7, 3)]  # hand-worked: 10 − 3 valid steps
+    section = mask_section(verify)
+    assert "<td class='num'>7</td><td class='num'>3</td><td class='num'>30.0%</td>" in section
+    assert mask_section({"recordings": [{"label": "synthetic:zeros"}]}) == ""  # no padded model: no chart

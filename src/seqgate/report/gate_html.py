@@ -1,8 +1,8 @@
 """The gate's self-contained HTML report: inline CSS, charts as inline PNG data URIs, no network.
 
 Order, for a release reviewer: the verdict and the table of checks; the first divergence if
-verification failed; a chart of per-step error for each time-indexed probe; the tensor table;
-for a model taking lengths or a mask, the mask chart (``report.mask_chart``); the latency-vs-
+verification failed; a chart of per-step error for each time-indexed probe; the tensor table
+and verify's warnings; for a model taking lengths or a mask, the mask chart (``report.mask_chart``); the latency-vs-
 sequence-length chart with budgets (padded batches as dotted lines of their own) and the
 latency tables; provenance (hashes, versions, CPU). Input is the gate report dict
 (``schema: "seqgate.gate/1"``).
@@ -227,7 +227,6 @@ def _verify_section(verify: dict[str, Any] | None) -> str:
             {3, 4, 5, 6, 7, 8, 9},
         )
     )
-    parts.append(mask_section(verify))
     for w in verify.get("warnings", []):
         parts.append(f"<p class='note'>warning: {_e(w)}</p>")
     return "".join(parts)
@@ -367,6 +366,7 @@ def render_gate_html(report: dict[str, Any]) -> str:
         _stopped(report.get("error")),
         _divergence(report.get("verify")),
         _verify_section(report.get("verify")),
+        mask_section(report.get("verify")),
         _profile_section(report.get("profile"), pct),
         _provenance(report),
         "<h2>What this report shows</h2><p class='note'>Passing shows that the exported ONNX graph computes "
