@@ -2,10 +2,10 @@
 
 Order, for a release reviewer: the verdict and the table of checks; the first divergence if
 verification failed; a chart of per-step error for each time-indexed probe; the tensor table
-and verify's warnings; for a model taking lengths or a mask, the mask chart (``report.mask_chart``); the latency-vs-
-sequence-length chart with budgets (padded batches as dotted lines of their own) and the
-latency tables; provenance (hashes, versions, CPU). Input is the gate report dict
-(``schema: "seqgate.gate/1"``).
+and verify's warnings; for a model taking lengths or a mask, the mask chart
+(``report.mask_chart``); the latency-vs-sequence-length chart with budgets (padded batches as
+dotted lines of their own) and the latency tables; provenance (hashes, versions, CPU). Input is
+the gate report dict (``schema: "seqgate.gate/1"``).
 """
 
 from __future__ import annotations
