@@ -1,10 +1,12 @@
-"""Make the demo fixtures: two small trained models on simulated data, recordings, gate configs.
+"""Make the demo fixtures: three small trained models on simulated data, and their recordings.
 
 The scenario is invented. The Millbrook Vale water cooperative (fictional) forecasts the
 pressure at a district metering node 15 minutes ahead from three sensors (inlet flow,
-reservoir level, booster pump speed) with a Keras LSTM, and watches its booster pumps with a
-PyTorch GRU that classifies 3-axis vibration windows as normal, imbalance or bearing wear.
-All data are simulated here; nothing comes from a real network or a real pump.
+reservoir level, booster pump speed) with a Keras LSTM, watches its booster pumps with a
+PyTorch GRU that classifies 3-axis vibration windows as normal, imbalance or bearing wear, and
+reads each asset's maintenance log (a variable-length sequence of event types, padded with 0)
+with a PyTorch packed bidirectional LSTM that flags routine, leak-risk and pump-risk assets.
+All data are simulated here; nothing comes from a real network, pump or log.
 
 Deterministic: every generator is seeded, TensorFlow runs with op determinism, PyTorch with
 deterministic algorithms, one thread each. Runs in a few minutes on a 2-core CPU.
@@ -175,18 +177,87 @@ def nn_nll(probs, labels):  # type: ignore[no-untyped-def]
     return -torch.log(probs.gather(1, labels[:, None]).clamp_min(1e-7)).mean()
 
 
+# ----- maintenance logs ------------------------------------------------------------------------
+MAX_EVENTS = 40  # a window holds an asset's last 40 log entries at most, padded with id 0
+# event-type ids (0 = padding): everyday work, then the signs of a leak, then of a failing pump
+ROUTINE_EVENTS = (1, 2, 3, 4, 13, 14)  # inspection ok, valve exercised, meter read, main flushed,
+#                                        hydrant tested, chlorine check
+LEAK_EVENTS = (5, 6, 7, 8)  # pressure alarm, minor leak repair, corrosion noted, low-pressure complaint
+PUMP_EVENTS = (9, 10, 11, 12, 15)  # vibration alert, bearing greased, pump trip, seal replaced, overheating
+RISKS = ("routine", "leak_risk", "pump_risk")
+
+
+def simulate_logs(n: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Right-padded event ids [n, MAX_EVENTS] (int64), lengths [n] in 3..MAX_EVENTS, labels [n].
+
+    An at-risk asset's log drifts from routine entries to its risk's signs: the chance that an
+    entry is a sign grows linearly along the log (up to 0.6), so the recent end decides.
+    """
+    labels = rng.integers(0, 3, n)
+    lengths = rng.integers(3, MAX_EVENTS + 1, n)
+    events = np.zeros((n, MAX_EVENTS), np.int64)
+    for i, (c, ln) in enumerate(zip(labels, lengths, strict=True)):
+        signs = (ROUTINE_EVENTS, LEAK_EVENTS, PUMP_EVENTS)[c]
+        p_sign = 0.05 + 0.55 * np.arange(ln) / MAX_EVENTS if c else np.full(ln, 0.0)
+        routine = rng.choice(ROUTINE_EVENTS, ln)
+        noise = rng.random(ln) < 0.04  # an odd alarm in any log
+        odd = rng.choice(LEAK_EVENTS + PUMP_EVENTS, ln)
+        events[i, :ln] = np.where(rng.random(ln) < p_sign, rng.choice(signs, ln), np.where(noise, odd, routine))
+    return events, lengths.astype(np.int64), labels.astype(np.int64)
+
+
+MAINTENANCE_MODULE = VIBRATION_MODULE.parents[1] / "maintenance/maintenance_model.py"
+
+
+def train_maintenance(out: Path, rng: np.random.Generator) -> None:
+    import importlib.util
+
+    import torch
+
+    torch.manual_seed(SEED + 4)
+    torch.set_num_threads(1)
+    torch.use_deterministic_algorithms(True)
+    if (out / "maintenance_model.py").resolve() != MAINTENANCE_MODULE:
+        shutil.copyfile(MAINTENANCE_MODULE, out / "maintenance_model.py")
+    spec = importlib.util.spec_from_file_location("maintenance_model", out / "maintenance_model.py")
+    assert spec and spec.loader
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    model = mod.build_model()
+    ev, ln, y = (torch.from_numpy(a) for a in simulate_logs(1500, rng))
+    opt = torch.optim.Adam(model.parameters(), lr=1e-2)
+    for _epoch in range(6):
+        perm = torch.from_numpy(rng.permutation(len(y)))
+        for k in range(0, len(y), 64):
+            idx = perm[k : k + 64]
+            opt.zero_grad()
+            loss = nn_nll(model(ev[idx], ln[idx]), y[idx])
+            loss.backward()
+            opt.step()
+    model.eval()
+    torch.save(model.state_dict(), out / "maintenance_model.pt")
+    fe, fl, fy = simulate_logs(96, np.random.default_rng(SEED + 5))
+    with torch.inference_mode():
+        acc = float((model(torch.from_numpy(fe), torch.from_numpy(fl)).argmax(-1).numpy() == fy).mean())
+    np.savez(out / "service_logs.npz", events=fe, lengths=fl, labels=fy)
+    print(f"maintenance classifier: field accuracy {acc:.3f} over {len(fy)} logs "
+          f"({int(fl.sum())} events, {int(fl.size * MAX_EVENTS - fl.sum())} padding steps)")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", default="fixtures/demo")
-    ap.add_argument("--only", choices=["pressure", "vibration"], default=None)
+    ap.add_argument("--only", choices=["pressure", "vibration", "maintenance"], default=None)
     args = ap.parse_args()
     root = Path(args.out)
-    for sub in ("pressure", "vibration"):
+    for sub in ("pressure", "vibration", "maintenance"):
         (root / sub).mkdir(parents=True, exist_ok=True)
     if args.only in (None, "pressure"):
         train_forecaster(root / "pressure", np.random.default_rng(SEED))
     if args.only in (None, "vibration"):
         train_classifier(root / "vibration", np.random.default_rng(SEED + 3))
+    if args.only in (None, "maintenance"):
+        train_maintenance(root / "maintenance", np.random.default_rng(SEED + 6))
 
 
 if __name__ == "__main__":

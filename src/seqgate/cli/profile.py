@@ -47,6 +47,10 @@ def profile_command(
         help="Time the source too: a Keras file, or FILE.py:FACTORY for PyTorch.")] = None,
     weights: Annotated[str | None, typer.Option(help="PyTorch state dict for a factory source.")] = None,
     seed: Annotated[int, typer.Option("--seed", help="Seed of the generated inputs.")] = d.SEED,
+    lengths: Annotated[str, typer.Option(
+        "--lengths", help="Rows of a timed batch: full (every row T steps), uniform (also padded "
+        "batches, lengths uniform in 1..T) or REC.npz (padded batches with that recording's lengths); "
+        "for models that take lengths or a mask.")] = d.LENGTHS,
     report: Annotated[Path | None, typer.Option("--report", help="Write the JSON report here.")] = None,
     csv: Annotated[Path | None, typer.Option("--csv", help="Write one CSV row per point here.")] = None,
     plot: Annotated[Path | None, typer.Option("--plot", help="Write a PNG plot of latency vs T here.")] = None,
@@ -64,7 +68,7 @@ def profile_command(
     from seqgate.report.profile_report import write_csv, write_json, write_plot
 
     opts = _parse_options(seq_lens, old_batch or batch_sizes, threads, warmup, min_runs, min_time,
-                          budget or [], percentile, seed, chunks, call_budget or [])
+                          budget or [], percentile, seed, chunks, call_budget or [], lengths)
     for path, option in ((report, "--report"), (csv, "--csv"), (plot, "--plot")):
         if path is not None:
             check_writable(path, force, option)
@@ -84,7 +88,7 @@ def profile_command(
 
 def _parse_options(seq_lens: str, batch_sizes: str, threads: str, warmup: int, min_runs: int, min_time: float,
                    budgets: list[str], percentile: int, seed: int, chunks: str = _csv(d.CHUNKS),
-                   call_budgets: list[str] | None = None) -> dict[str, Any]:
+                   call_budgets: list[str] | None = None, lengths: str = d.LENGTHS) -> dict[str, Any]:
     """Every option through its parser in ``seqgate.settings``; all problems in one error (exit 2)."""
     from seqgate.settings import CLI, Problems, parse_seed, parse_settings
 
@@ -92,14 +96,14 @@ def _parse_options(seq_lens: str, batch_sizes: str, threads: str, warmup: int, m
     opts = parse_settings("profile", {
         "seq_lens": seq_lens, "batch_sizes": batch_sizes, "threads": threads, "warmup": warmup,
         "min_runs": min_runs, "min_time": min_time, "budget": budgets, "percentile": percentile,
-        "chunks": chunks, "call_budget": call_budgets or [],
+        "chunks": chunks, "call_budget": call_budgets or [], "lengths": lengths,
     }, CLI, problems)
     checked_seed = problems.take(parse_seed, seed, "--seed")
     problems.raise_if_any()
     return {"seq_lens": opts["seq_lens"], "batch_sizes": opts["batch_sizes"], "threads": opts["threads"],
             "warmup": opts["warmup"], "min_runs": opts["min_runs"], "min_time": opts["min_time"],
             "budgets": opts["budget"], "percentile": opts["percentile"], "seed": checked_seed,
-            "chunks": opts["chunks"], "call_budgets": opts["call_budget"]}
+            "chunks": opts["chunks"], "call_budgets": opts["call_budget"], "lengths": opts["lengths"]}
 
 
 def _f(x: float | None, digits: int = 3) -> str:
@@ -114,6 +118,8 @@ def print_tables(data: dict[str, Any]) -> None:
     from rich.table import Table
     from rich.text import Text
 
+    from seqgate.report.profile_report import padded_label
+
     probe = Console()
     # piped output has no terminal width: rich would squeeze the table into 80 columns
     c = Console(highlight=False, width=None if probe.is_terminal else 150)
@@ -124,7 +130,7 @@ def print_tables(data: dict[str, Any]) -> None:
     for col in cols:
         t.add_column(col, justify="left" if col == "runtime" else "right")
     for p in data["points"]:
-        t.add_row(p["runtime"], str(p["threads"]), str(p["batch"]), str(p["seq_len"]), _f(p["p50_ms"]),
+        t.add_row(p["runtime"], str(p["threads"]), str(p["batch"]), _t_cell(p), _f(p["p50_ms"]),
                   _f(p["p90_ms"]), _f(p["p99_ms"]), _f(p["max_ms"]), _f(p["mean_ms"]), _f(p["std_ms"]),
                   str(p["runs"]), _f(p["sequences_per_s"], 0), _f(p["us_per_step"], 2), _f(p["gflops"], 2),
                   "—" if p["speedup"] is None else f"{p['speedup']:.2f}×")
@@ -136,8 +142,8 @@ def print_tables(data: dict[str, Any]) -> None:
         for f in data["fits"]:
             longest = ", ".join(f"{x['budget_ms']:g} ms → {longest_text(x)}" for x in f["longest_seq_len"])
             r2 = f"{f['r2']:.4f}" + (" (poor fit)" if f.get("quality") == "poor" else "")
-            ft.add_row(f["runtime"], str(f["threads"]), str(f["batch"]), _f(f["a_ms"], 4),
-                       _f(f["b_ms_per_step"] * 1e3, 3), r2, longest or "—")
+            ft.add_row(f["runtime"] + padded_label(f.get("lengths", "full")), str(f["threads"]),
+                       str(f["batch"]), _f(f["a_ms"], 4), _f(f["b_ms_per_step"] * 1e3, 3), r2, longest or "—")
         c.print(ft)
     if data["budgets"]:
         bt = Table(title=f"budgets (ONNX Runtime p{q})")
@@ -181,6 +187,14 @@ def _print_streaming(c: Any, st: dict[str, Any] | None) -> None:
         mark = Text("pass", "green") if b["passed"] else Text("fail", "bold red")
         c.print(Text.assemble(f"call budget: {b['chunk']} steps per call ≤ {b['budget_ms']:g} ms at p{q}: "
                               f"measured {b['measured_ms']:.4g} ms ", mark))
+
+
+def _t_cell(p: dict[str, Any]) -> str:
+    """T, marked when the point is a padded batch (its valid share of the steps beside it)."""
+    if not p.get("padded"):
+        return str(p["seq_len"])
+    share = p["valid_steps"] / (p["batch"] * p["seq_len"])
+    return f"{p['seq_len']} padded ({p['lengths']}, {share:.0%} valid)"
 
 
 def longest_text(x: dict[str, Any]) -> str:

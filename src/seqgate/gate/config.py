@@ -105,6 +105,7 @@ class GateConfig:
     chunk: int = d.CHUNK  # [verify] chunk
     chunks: tuple[int, ...] = d.CHUNKS  # [profile] chunks (streaming files)
     call_budgets: tuple[Budget, ...] = ()  # [[profile.call_budget]] (streaming files)
+    lengths: str | Path = "full"  # [profile] lengths: "full", "uniform" or a recording (resolved)
 
     @property
     def base(self) -> Path:
@@ -190,6 +191,8 @@ def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any]
         custom_code=files.path(model["custom_code"], "[model] custom_code") if "custom_code" in model else None,
         streaming=_streaming(c, export), chunk=v["chunk"], chunks=tuple(pr["chunks"]),
         call_budgets=tuple(pr["call_budget"]),
+        lengths=files.path(str(pr["lengths"]), "[profile] lengths") if isinstance(pr["lengths"], Path)
+        else pr["lengths"],
     )
 
 

@@ -337,7 +337,7 @@ def _measure(cfg: GateConfig, model_path: Path, weights: str | None, progress: P
         min_runs=cfg.min_runs, min_time=cfg.min_time, budgets=cfg.budgets, percentile=cfg.percentile,
         source=cfg.source if cfg.compare_source else None,
         weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=progress,
-        chunks=cfg.chunks, call_budgets=cfg.call_budgets,
+        chunks=cfg.chunks, call_budgets=cfg.call_budgets, lengths=cfg.lengths,
     )
 
 

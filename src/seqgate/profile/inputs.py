@@ -11,7 +11,18 @@ depend on the order of the sweep and are the same for every thread count and run
 - integer inputs that reach the index slot of a ``Gather`` on an initializer (an embedding
   table), possibly through Cast/Identity/Reshape/Squeeze/Unsqueeze/Transpose/Flatten: uniform
   token ids in ``[0, rows)``, ``rows`` being the smallest such table's size on the gathered axis;
-- other integer or boolean inputs are refused: there is no realistic value to invent for them.
+- other integer or boolean inputs are refused: there is no realistic value to invent for them,
+  except the lengths input of a padded model (below).
+
+Padded models (ONNX metadata ``seqgate.padding``, see ``verify.synthetic``): in a full-length
+batch a lengths input holds T for every row and a token input never holds its padding id (ids
+are uniform over the other ``rows − 1``). A padded batch (:func:`pad_batch`) takes the same
+arrays and, for row n of length ``L[n]``, sets steps ``t ≥ L[n]`` to the padding value (a
+``value`` entry) or to zeros with the lengths input = ``L`` (a ``lengths`` entry): right
+padding, the pattern lengths express. A Keras mask of any other pattern costs the same: its
+graph first gathers the valid steps of each row to the front (``export.core.masked_steps``),
+so the work depends on how many steps are valid, not where. The lengths come from
+:func:`draw_lengths`: uniform in ``1..T``, or drawn from a recording's valid-step counts.
 """
 
 from __future__ import annotations
@@ -24,6 +35,7 @@ import onnx
 
 from seqgate.errors import BadInputError
 from seqgate.onnxfile.costs import time_dim_names
+from seqgate.verify.synthetic import read_padding
 
 _PASS_THROUGH = {"Cast", "Identity", "Reshape", "Squeeze", "Unsqueeze", "Transpose", "Flatten"}
 
@@ -36,6 +48,8 @@ class InputPlan:
     dtype: str  # numpy dtype name
     dims: tuple[int | str, ...]
     vocab: int | None = None
+    role: str = ""  # "lengths": the lengths input of a padded model
+    pad_value: float | None = None  # a step holding only this value is padding
 
     def shape(self, batch: int, t: int) -> tuple[int, ...]:
         return tuple(batch if d == "batch" else t if d == "time" else int(d) for d in self.dims)
@@ -55,6 +69,9 @@ def plan_inputs(model: onnx.ModelProto) -> list[InputPlan]:
     inits = {i.name for i in model.graph.initializer}
     time_names = time_dim_names(model)
     vocab = _embedding_sizes(model)
+    padding = read_padding(model)
+    lengths_inputs = {e["lengths"] for e in padding if e.get("kind") == "lengths"}
+    pad_values = {e["input"]: float(e["value"]) for e in padding if e.get("kind") == "value"}
     plans: list[InputPlan] = []
     for vi in model.graph.input:
         if vi.name in inits:
@@ -77,13 +94,15 @@ def plan_inputs(model: onnx.ModelProto) -> list[InputPlan]:
                     f"'time'), so the profiler cannot choose a size for it. Export the model with "
                     f"that dim fixed."
                 )
-        if dtype.kind in "iub" and vocab.get(vi.name) is None:
+        role = "lengths" if vi.name in lengths_inputs else ""
+        if dtype.kind in "iub" and vocab.get(vi.name) is None and not role:
             raise BadInputError(
                 f"input {vi.name!r} is {dtype.name} but feeds no embedding table, so the profiler "
                 f"has no realistic value range for it. Profile a model whose integer inputs are "
                 f"token ids (they reach a Gather on an initializer), or whose inputs are float."
             )
-        plans.append(InputPlan(vi.name, dtype.name, tuple(dims), vocab.get(vi.name)))
+        plans.append(InputPlan(vi.name, dtype.name, tuple(dims), vocab.get(vi.name), role,
+                               pad_values.get(vi.name)))
     return plans
 
 
@@ -105,10 +124,55 @@ def make_inputs(plans: list[InputPlan], batch: int, t: int, seed: int) -> dict[s
     out: dict[str, np.ndarray[Any, Any]] = {}
     for p in plans:
         shape = p.shape(batch, t)
-        if p.vocab is not None:
+        if p.role == "lengths":
+            out[p.name] = np.full(shape, t, dtype=p.dtype)
+        elif p.vocab is not None and p.pad_value is not None and 0 <= p.pad_value < p.vocab and p.vocab > 1:
+            ids = rng.integers(0, p.vocab - 1, size=shape)  # every id but the padding id, uniformly
+            out[p.name] = (ids + (ids >= p.pad_value)).astype(p.dtype)
+        elif p.vocab is not None:
             out[p.name] = rng.integers(0, p.vocab, size=shape).astype(p.dtype)
         else:
             out[p.name] = rng.standard_normal(shape).astype(p.dtype)
+    return out
+
+
+def padded_model(plans: list[InputPlan]) -> bool:
+    """Whether the model takes lengths or a mask (its ``seqgate.padding`` record names an input)."""
+    return any(p.role == "lengths" or p.pad_value is not None for p in plans)
+
+
+def draw_lengths(recorded: np.ndarray[Any, Any] | None, batch: int, t: int, seed: int,
+                 min_length: int = 1) -> np.ndarray[Any, Any]:
+    """Row lengths of one padded batch, from ``default_rng([seed, T, batch, 1])``.
+
+    ``recorded`` ``None``: uniform in ``1..T`` (``integers(1, T + 1)``). Otherwise a recording's
+    valid-step counts, drawn with replacement (``choice``) and clipped to ``min_length..T``: a
+    recorded window longer than T is cut to the batch's length.
+    """
+    rng = np.random.default_rng([seed, t, batch, 1])
+    if recorded is None:
+        return rng.integers(1, t + 1, size=batch).astype(np.int64)
+    return np.clip(rng.choice(np.asarray(recorded, np.int64), size=batch), min(min_length, t), t)
+
+
+def pad_batch(plans: list[InputPlan], feeds: dict[str, np.ndarray[Any, Any]],
+              lengths: np.ndarray[Any, Any]) -> dict[str, np.ndarray[Any, Any]]:
+    """A full-length batch made padded: steps ``t ≥ lengths[n]`` of row n hold the padding (module doc)."""
+    has_lengths = any(p.role == "lengths" for p in plans)
+    out = dict(feeds)
+    for p in plans:
+        if p.role == "lengths":
+            out[p.name] = np.asarray(lengths).astype(p.dtype)
+            continue
+        time_axis = p.dims.index("time") if "time" in p.dims else None
+        if time_axis is None or (p.pad_value is None and not has_lengths):
+            continue
+        x = out[p.name]
+        steps = np.arange(x.shape[time_axis]).reshape([-1 if a == time_axis else 1 for a in range(x.ndim)])
+        batch_axis = p.dims.index("batch") if "batch" in p.dims else 0
+        rows = np.asarray(lengths).reshape([-1 if a == batch_axis else 1 for a in range(x.ndim)])
+        value = np.asarray(p.pad_value or 0, dtype=x.dtype)
+        out[p.name] = np.where(steps < rows, x, value).astype(x.dtype)
     return out
 
 

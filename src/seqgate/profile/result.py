@@ -11,6 +11,13 @@ Per point (seq len × batch × threads × runtime), from the timed runs:
 - ``speedup`` (ONNX Runtime points, and the source point beside it): source p50 / ONNX Runtime
   p50 at the same T, batch and threads — how many times faster the export runs.
 
+Padded points (``lengths`` not ``"full"``, ``padded`` true; ``seqgate profile --lengths``) are
+measured beside the full-length ones with the same T, batch and threads; ``valid_steps`` counts
+the valid steps of the batch (``batch · T`` for a full one) and ``macs_per_sequence`` is the
+cost model at the batch's mean valid length. They get their own lines and speed-ups but never a
+budget verdict: budgets judge full-length batches, every row T steps, the longest work a batch
+of that length can carry.
+
 Budgets are judged on ONNX Runtime, the runtime that ships: a budget holds when, at its length,
 the chosen percentile **measured** there is ≤ its milliseconds at **every** batch and thread count
 (``basis: "measured"``). A budget with no measured point at its length fails (``basis: "not
@@ -50,9 +57,15 @@ class Point:
     macs_per_sequence: int
     framework_threads: int | None = None
     speedup: float | None = None
+    lengths: str = "full"  # "full", or how the rows of a padded batch got their lengths
+    valid_steps: int | None = None  # valid steps in the whole batch (padded points)
 
-    def key(self) -> tuple[int, int, int]:
-        return (self.seq_len, self.batch, self.threads)
+    @property
+    def padded(self) -> bool:
+        return self.lengths != "full"
+
+    def key(self) -> tuple[int, int, int, str]:
+        return (self.seq_len, self.batch, self.threads, self.lengths)
 
     def to_dict(self) -> dict[str, Any]:
         s = self.stats
@@ -69,6 +82,8 @@ class Point:
             "gflops": 2 * self.macs_per_sequence * self.batch / p50_s / 1e9 if p50_s > 0 else None,
             "speedup": self.speedup,
             "framework_threads": self.framework_threads,
+            "lengths": self.lengths, "padded": self.padded,
+            "valid_steps": self.batch * self.seq_len if self.valid_steps is None else self.valid_steps,
         }
 
 
@@ -97,21 +112,23 @@ def _prediction(fit: LineFit, pts: list[Point], percentile: int, b: Budget) -> d
 def fits_for(points: list[Point], percentile: int, budgets: list[Budget],
              notes: list[str] | None = None) -> list[dict[str, Any]]:
     """One least-squares line per (batch, threads, runtime), on the chosen percentile (module docstring)."""
-    groups: dict[tuple[str, int, int], list[Point]] = {}
+    groups: dict[tuple[str, int, int, str], list[Point]] = {}
     for p in points:
-        groups.setdefault((p.runtime, p.batch, p.threads), []).append(p)
+        groups.setdefault((p.runtime, p.batch, p.threads, p.lengths), []).append(p)
     out: list[dict[str, Any]] = []
-    for (runtime, batch, threads), pts in groups.items():
+    for (runtime, batch, threads, lengths), pts in groups.items():
         fit = fit_line([p.seq_len for p in pts], [p.stats.at(percentile) for p in pts])
         if fit is None:
             if notes is not None:
                 n = len({p.seq_len for p in pts})
-                notes.append(f"no latency line for {runtime} batch {batch} threads {threads}: "
+                padded = "" if lengths == "full" else f" ({lengths} padded batches)"
+                notes.append(f"no latency line for {runtime} batch {batch} threads {threads}{padded}: "
                              f"{TOO_FEW_LENGTHS} ({n} measured; a line needs at least {MIN_FIT_LENGTHS}).")
             continue
         reasons = fit.poor_reasons()
         out.append({
-            "runtime": runtime, "batch": batch, "threads": threads, "percentile": percentile,
+            "runtime": runtime, "batch": batch, "threads": threads, "lengths": lengths,
+            "percentile": percentile,
             "a_ms": fit.a_ms, "b_ms_per_step": fit.b_ms_per_step, "r2": fit.r2, "points": fit.n,
             "a_stderr_ms": fit.a_stderr_ms, "measured_seq_lens": [int(fit.t_min), int(fit.t_max)],
             "quality": "poor" if reasons else "good", "poor_reasons": reasons,
@@ -123,7 +140,9 @@ def fits_for(points: list[Point], percentile: int, budgets: list[Budget],
 def budget_checks(points: list[Point], budgets: list[Budget], percentile: int,
                   fits: list[dict[str, Any]]) -> list[dict[str, Any]]:
     """One verdict per budget and ONNX Runtime (batch, threads) setting, from the measured point only."""
-    line = {(f["batch"], f["threads"]): f for f in fits if f["runtime"] == ONNXRUNTIME}
+    line = {(f["batch"], f["threads"]): f for f in fits
+            if f["runtime"] == ONNXRUNTIME and f.get("lengths", "full") == "full"}
+    points = [p for p in points if not p.padded]  # budgets judge full-length batches, the worst case
     out: list[dict[str, Any]] = []
     for b in budgets:
         found = [p for p in points if p.runtime == ONNXRUNTIME and p.seq_len == b.seq_len]

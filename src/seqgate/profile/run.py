@@ -17,6 +17,10 @@ Measurement hygiene (the contract of :func:`profile_model`):
 - a model that fixes its time dim is measured at that length only (noted); a budget at another
   length is then an error (exit 2);
 - budget lengths missing from ``seq_lens`` are added to the sweep;
+- ``lengths`` other than ``"full"`` (a model that takes lengths or a mask): at every point a
+  padded batch is measured beside the full-length one, from the same arrays with each row's
+  tail padded (``seqgate.profile.inputs``); such points are labelled ``padded`` and never judged
+  by a budget;
 - settings are parsed by ``seqgate.settings`` (defaults there too); a sweep whose inputs alone
   would not fit in memory is refused before anything is timed.
 """
@@ -35,7 +39,15 @@ import numpy as np
 
 from seqgate.errors import BadInputError
 from seqgate.export.streaming import is_streaming, ordinary_view
-from seqgate.profile.inputs import InputPlan, make_inputs, model_axes, plan_inputs
+from seqgate.profile.inputs import (
+    InputPlan,
+    draw_lengths,
+    make_inputs,
+    model_axes,
+    pad_batch,
+    padded_model,
+    plan_inputs,
+)
 from seqgate.profile.result import ONNXRUNTIME, Point, ProfileReport, attach_speedups, budget_checks, fits_for
 from seqgate.profile.stats import summarize_ns
 from seqgate.settings import PYTHON, Budget, Problems, check_input_memory, parse_seed, parse_settings
@@ -168,6 +180,7 @@ def profile_model(
     progress: Progress | None = None,
     chunks: str | Sequence[int] = d.CHUNKS,
     call_budgets: Sequence[str | Budget] = (),
+    lengths: str | os.PathLike[str] = d.LENGTHS,
 ) -> ProfileReport:
     """Measure ``model_path`` over the sweep and judge the budgets (module docstring). Bad arguments or
     files (parsed by ``seqgate.settings``) raise ``BadInputError`` (exit 2) before anything is timed."""
@@ -176,8 +189,8 @@ def profile_model(
     from seqgate.util.environment import environment
 
     opts = _options(locals())
-    warmup, min_runs, min_time = opts["warmup"], opts["min_runs"], opts["min_time"]
-    q, seed, budget_list = opts["percentile"], opts["seed"], list(opts["budget"])
+    counts, q, seed = (opts["warmup"], opts["min_runs"], opts["min_time"]), opts["percentile"], opts["seed"]
+    budget_list = list(opts["budget"])
     path = Path(model_path)
     stream_model = load_onnx(path)  # a streaming file: the sweep times its ordinary graph
     model = ordinary_view(stream_model) if is_streaming(stream_model) else stream_model
@@ -188,26 +201,24 @@ def profile_model(
     batch_list = _sweep_batches(axes, list(opts["batch_sizes"]), notes)
     thread_list = list(opts["threads"])
     _check_memory(plans, lengths, batch_list)
+    draws = _length_draws(opts["lengths"], model, plans, notes)
     src = _parse_source(source, weights)
     _note_oversubscription(thread_list, notes)
     cost = summary(model)  # one pass of the cost model (two shape inferences) for every length
-    macs = {t: cost["macs_per_sequence"] + cost["macs_per_step"] * t for t in lengths}
-    runner = _open_runner(src, model, thread_list)
-    sweep = _Sweep(model, plans, runner, seed, (warmup, min_runs, min_time), progress or SILENT)
-    points, sessions = sweep.run(thread_list, batch_list, lengths, macs)
+    sweep = _Sweep(model, plans, _open_runner(src, model, thread_list), seed, counts, progress or SILENT)
+    sweep.draws, sweep.cost = draws, cost
+    points, sessions = sweep.run(thread_list, batch_list, lengths)
     notes.extend(sweep.notes)
     attach_speedups(points)
-    if q == 99 and min(p.stats.runs for p in points) < 100:
-        notes.append("some points have fewer than 100 runs: their p99 is close to their max; raise "
-                     "--min-runs or --min-time for a steadier tail.")
+    _note_short_tails(points, q, notes)
     fits = fits_for(points, q, budget_list, notes)
     return ProfileReport(
-        streaming=_streaming(stream_model, plans, opts, batch_list, thread_list, (warmup, min_runs, min_time)),
+        streaming=_streaming(stream_model, plans, opts, batch_list, thread_list, counts),
         model=_model_record(path, cost, plans, axes),
         source=_source_record(src, sweep.agreement),
-        options={"seq_lens": lengths, "batch_sizes": batch_list, "threads": thread_list, "warmup": warmup,
-                 "min_runs": min_runs, "min_time": min_time, "percentile": q,
-                 "budgets": [b.to_json() for b in budget_list]},
+        options={"seq_lens": lengths, "batch_sizes": batch_list, "threads": thread_list, "warmup": counts[0],
+                 "min_runs": counts[1], "min_time": counts[2], "percentile": q,
+                 "budgets": [b.to_json() for b in budget_list], "lengths": str(opts["lengths"])},
         seed=seed, points=points, fits=fits, budgets=budget_checks(points, budget_list, q, fits),
         environment={**environment(), "session_options": sessions}, timer=timer_overhead(), notes=notes,
     )
@@ -226,6 +237,47 @@ def _streaming(model: Any, plans: list[InputPlan], opts: dict[str, Any], batch_l
                          thread_list, opts["seed"], counts, opts["percentile"], time_call)
 
 
+def _length_draws(how: Any, model: Any, plans: list[InputPlan],
+                  notes: list[str]) -> tuple[str, Any, int] | None:
+    """``None`` for full-length batches only; else (label, recorded valid-step counts or None, min length)."""
+    if how == "full":
+        return None
+    if not padded_model(plans):
+        raise BadInputError(
+            f"lengths {str(how)!r}: the model takes no lengths and no mask (its ONNX file has no "
+            f"seqgate.padding record naming an input), so every batch it sees is full-length. Drop the "
+            f"lengths setting, or export the model that pads (Masking, Embedding(mask_zero=True), "
+            f"pack_padded_sequence with a lengths input).")
+    from seqgate.verify.synthetic import read_padding
+
+    padding = read_padding(model)
+    min_length = max((int(e.get("min_length", 1)) for e in padding), default=1)
+    if how == "uniform":
+        notes.append("padded points: each row's length uniform in 1..T (right padding), beside the "
+                      "full-length points; budgets judge the full-length ones.")
+        return "uniform", None, min_length
+    recorded = _recorded_lengths(Path(how), model, padding)
+    notes.append(f"padded points: row lengths drawn from the {recorded.size} windows of {how} (mean "
+                 f"{recorded.mean():.1f} valid steps; longer than T: cut to T), beside the full-length "
+                 f"points; budgets judge the full-length ones.")
+    return "recording", recorded, min_length
+
+
+def _recorded_lengths(path: Path, model: Any, padding: list[dict[str, Any]]) -> Any:
+    """Valid steps per window of a recording, from its lengths array or its padding values."""
+    from seqgate.verify.padded_steps import window_lengths
+    from seqgate.verify.recordings import input_specs, load_recording
+
+    rec = load_recording(path, input_specs(model))
+    for entry in padding:
+        counts = window_lengths(rec.arrays, entry, rec.label)
+        if counts is not None:
+            return counts
+    raise BadInputError(f"recording {path} holds none of the arrays the model's padding is read from "
+                        f"({', '.join(sorted({e.get('lengths') or e.get('input', '') for e in padding}))}); "
+                        f"give a recording of the model's inputs.")
+
+
 def _model_record(path: Path, cost: dict[str, Any], plans: list[Any], axes: Any) -> dict[str, Any]:
     from seqgate.util.files import sha256_file
 
@@ -233,6 +285,12 @@ def _model_record(path: Path, cost: dict[str, Any], plans: list[Any], axes: Any)
             "inputs": [{"name": p.name, "dtype": p.dtype, "dims": list(p.dims), "vocab": p.vocab}
                        for p in plans],
             "fixed_time": axes.fixed_time, "fixed_batch": axes.fixed_batch}
+
+
+def _note_short_tails(points: list[Point], q: int, notes: list[str]) -> None:
+    if q == 99 and min(p.stats.runs for p in points) < 100:
+        notes.append("some points have fewer than 100 runs: their p99 is close to their max; raise "
+                     "--min-runs or --min-time for a steadier tail.")
 
 
 def _note_oversubscription(thread_list: list[int], notes: list[str]) -> None:
@@ -245,7 +303,7 @@ def _note_oversubscription(thread_list: list[int], notes: list[str]) -> None:
 def _options(args: dict[str, Any]) -> dict[str, Any]:
     """``profile_model``'s arguments through ``seqgate.settings``; every problem in one error (exit 2)."""
     problems = Problems()
-    keys = ("seq_lens", "batch_sizes", "threads", "warmup", "min_runs", "min_time", "percentile")
+    keys = ("seq_lens", "batch_sizes", "threads", "warmup", "min_runs", "min_time", "percentile", "lengths")
     raw = {**{k: args[k] for k in keys}, "budget": args["budgets"], "chunks": args["chunks"],
            "call_budget": args["call_budgets"]}
     opts = parse_settings("profile", raw, PYTHON, problems)
@@ -297,12 +355,15 @@ class _Sweep:
         self.progress = progress
         self.notes: list[str] = []
         self.agreement: tuple[bool, str] | None = None
+        self.draws: tuple[str, Any, int] | None = None  # (label, recorded lengths or None, min length)
+        self.cost: dict[str, Any] = {"macs_per_sequence": 0, "macs_per_step": 0}
 
-    def run(self, thread_list: list[int], batch_list: list[int], lengths: list[int],
-            macs: dict[int, int]) -> tuple[list[Point], list[dict[str, Any]]]:
+    def run(self, thread_list: list[int], batch_list: list[int],
+            lengths: list[int]) -> tuple[list[Point], list[dict[str, Any]]]:
         from seqgate.runtimes.onnx import OnnxRunner
 
-        total = len(thread_list) * len(batch_list) * len(lengths) * (2 if self.runner else 1)
+        per_point = (2 if self.runner else 1) * (2 if self.draws else 1)
+        total = len(thread_list) * len(batch_list) * len(lengths) * per_point
         self.progress.start(f"profiling {total} points", total)
         points: list[Point] = []
         sessions: list[dict[str, Any]] = []
@@ -312,17 +373,34 @@ class _Sweep:
             for b in batch_list:
                 for t in lengths:
                     feeds = make_inputs(self.plans, b, t, self.seed)
-                    with ort.timed_call(feeds) as call:
-                        self.progress.advance(0, f"{ONNXRUNTIME} T={t} batch={b} threads={th}")
-                        points.append(Point(t, b, th, ONNXRUNTIME,
-                                            summarize_ns(time_call(call, *self.counts)), macs[t]))
-                        self.progress.advance(1)
-                        if self.runner is not None:
-                            self.progress.advance(0, f"{self.runner.runtime} T={t} batch={b} threads={th}")
-                            points.append(self._source_point(call, feeds, t, b, th, macs[t]))
-                            self.progress.advance(1)
+                    points += self._measure(ort, feeds, (t, b, th), "full", b * t)
+                    if self.draws is not None:
+                        label, recorded, min_length = self.draws
+                        rows = draw_lengths(recorded, b, t, self.seed, min_length)
+                        points += self._measure(ort, pad_batch(self.plans, feeds, rows), (t, b, th), label,
+                                                int(rows.sum()))
         self.progress.finish()
         return points, sessions
+
+    def _measure(self, ort: Any, feeds: dict[str, Any], at: tuple[int, int, int], label: str,
+                 valid: int) -> list[Point]:
+        """ONNX Runtime's point at ``at = (T, batch, threads)``, then the source's beside it."""
+        t, b, th = at
+        macs = self.cost["macs_per_sequence"] + round(self.cost["macs_per_step"] * valid / b)
+        shown = "" if label == "full" else f" padded ({label})"
+        out: list[Point] = []
+        with ort.timed_call(feeds) as call:
+            self.progress.advance(0, f"{ONNXRUNTIME} T={t} batch={b} threads={th}{shown}")
+            out.append(Point(t, b, th, ONNXRUNTIME, summarize_ns(time_call(call, *self.counts)), macs,
+                             lengths=label, valid_steps=valid))
+            self.progress.advance(1)
+            if self.runner is not None:
+                self.progress.advance(0, f"{self.runner.runtime} T={t} batch={b} threads={th}{shown}")
+                src = self._source_point(call, feeds, t, b, th, macs)
+                src.lengths, src.valid_steps = label, valid
+                out.append(src)
+                self.progress.advance(1)
+        return out
 
     def _source_point(self, ort: Callable[[], Any], feeds: dict[str, Any], t: int, b: int, th: int,
                       macs: int) -> Point:

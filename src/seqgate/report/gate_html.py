@@ -1,9 +1,11 @@
 """The gate's self-contained HTML report: inline CSS, charts as inline PNG data URIs, no network.
 
 Order, for a release reviewer: the verdict and the table of checks; the first divergence if
-verification failed; a chart of per-step error for each time-indexed probe; the latency-vs-
-sequence-length chart with budgets; the tensor and latency tables; provenance (hashes,
-versions, CPU). Input is the gate report dict (``schema: "seqgate.gate/1"``).
+verification failed; a chart of per-step error for each time-indexed probe; the tensor table
+and verify's warnings; for a model taking lengths or a mask, the mask chart
+(``report.mask_chart``); the latency-vs-sequence-length chart with budgets (padded batches as
+dotted lines of their own) and the latency tables; provenance (hashes, versions, CPU). Input is
+the gate report dict (``schema: "seqgate.gate/1"``).
 """
 
 from __future__ import annotations
@@ -13,6 +15,8 @@ import html
 import io
 from typing import Any
 
+from seqgate.report.mask_chart import mask_section
+from seqgate.report.profile_report import padded_label
 from seqgate.report.streaming import streaming_html
 
 _CSS = """
@@ -97,16 +101,18 @@ def latency_chart(profile: dict[str, Any], percentile: int) -> str | None:
     key = f"p{percentile}_ms"
     series: dict[tuple[Any, ...], list[tuple[int, float]]] = {}
     for p in points:
-        series.setdefault((p["runtime"], p["threads"], p["batch"]), []).append((p["seq_len"], p[key]))
+        at = (p["runtime"], p["threads"], p["batch"], p.get("lengths", "full"))
+        series.setdefault(at, []).append((p["seq_len"], p[key]))
     fig, ax = plt.subplots(figsize=(8.5, 3.8))
-    for (rt, th, bs), pts in sorted(series.items()):
+    for (rt, th, bs, lengths), pts in sorted(series.items()):
         pts.sort()
         ax.plot(
             [a for a, _ in pts],
             [b for _, b in pts],
-            marker="o",
+            marker="o" if lengths == "full" else "s",
+            ls="-" if lengths == "full" else ":",
             lw=1.4,
-            label=f"{rt}, {th} thread{'s' if th != 1 else ''}, batch {bs}",
+            label=f"{rt}, {th} thread{'s' if th != 1 else ''}, batch {bs}{padded_label(lengths)}",
         )
     for b in profile.get("budgets") or []:
         ax.scatter([b["seq_len"]], [b["budget_ms"]], marker="_", s=500, color="#8a1610", zorder=5)
@@ -281,6 +287,7 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
             _e(p["seq_len"]),
             _e(p["batch"]),
             _e(p["threads"]),
+            _e(padded_label(p.get("lengths", "full")).removeprefix(", ") or "full"),
             _fmt(p.get("p50_ms")),
             _fmt(p.get("p90_ms")),
             _fmt(p.get("p99_ms")),
@@ -291,9 +298,10 @@ def _profile_section(profile: dict[str, Any] | None, percentile: int) -> str:
     ]
     parts.append(
         _table(
-            ["runtime", "seq len", "batch", "threads", "p50 ms", "p90 ms", "p99 ms", "runs", "speed-up"],
+            ["runtime", "seq len", "batch", "threads", "rows", "p50 ms", "p90 ms", "p99 ms", "runs",
+             "speed-up"],
             rows,
-            {1, 2, 3, 4, 5, 6, 7, 8},
+            {1, 2, 3, 5, 6, 7, 8, 9},
         )
     )
     return "".join(parts)
@@ -360,6 +368,7 @@ def render_gate_html(report: dict[str, Any]) -> str:
         _divergence(report.get("verify")),
         _verify_section(report.get("verify")),
         streaming_html((report.get("verify") or {}).get("streaming")),
+        mask_section(report.get("verify")),
         _profile_section(report.get("profile"), pct),
         _provenance(report),
         "<h2>What this report shows</h2><p class='note'>Passing shows that the exported ONNX graph computes "

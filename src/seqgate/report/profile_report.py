@@ -4,7 +4,8 @@ Every writer takes the report dict (``ProfileReport.to_dict()``), so other repor
 can reuse them on the profile section they embed. Files are written atomically.
 
 The plot: latency (the report's percentile, p50 dashed beside it) against sequence length on
-log–log axes, one line per runtime/threads/batch, each budget a red cross at (T, MS) with a
+log–log axes, one line per runtime/threads/batch (padded batches, ``--lengths``, a dotted line of
+their own labelled "padded batches"), each budget a red cross at (T, MS) with a
 short horizontal bar. matplotlib (Agg backend) is imported only here.
 """
 
@@ -50,14 +51,16 @@ def plot_png(report: dict[str, Any]) -> bytes:
     q = report["options"]["percentile"]
     fig = Figure(figsize=(7.5, 4.8), dpi=110)
     ax = fig.add_subplot(1, 1, 1)
-    series: dict[tuple[str, int, int], list[dict[str, Any]]] = {}
+    series: dict[tuple[str, int, int, str], list[dict[str, Any]]] = {}
     for p in report["points"]:
-        series.setdefault((p["runtime"], p["threads"], p["batch"]), []).append(p)
-    for (runtime, threads, batch), pts in sorted(series.items()):
+        series.setdefault((p["runtime"], p["threads"], p["batch"], p.get("lengths", "full")), []).append(p)
+    for (runtime, threads, batch, lengths), pts in sorted(series.items()):
         pts = sorted(pts, key=lambda p: p["seq_len"])
         ts = [p["seq_len"] for p in pts]
-        line = ax.plot(ts, [p[f"p{q}_ms"] for p in pts], marker="o",
-                       label=f"{runtime} threads={threads} batch={batch} (p{q})")[0]
+        padded = lengths != "full"
+        line = ax.plot(ts, [p[f"p{q}_ms"] for p in pts], marker="s" if padded else "o",
+                       linestyle=":" if padded else "-",
+                       label=f"{runtime} threads={threads} batch={batch}{padded_label(lengths)} (p{q})")[0]
         if q != 50:
             ax.plot(ts, [p["p50_ms"] for p in pts], linestyle="--", color=line.get_color(), alpha=0.6)
     seen: set[tuple[int, float]] = set()
@@ -82,6 +85,11 @@ def plot_png(report: dict[str, Any]) -> bytes:
     out = io.BytesIO()
     fig.savefig(out, format="png", metadata={"Software": "seqgate"})  # the mark util.ownership reads
     return out.getvalue()
+
+
+def padded_label(lengths: str) -> str:
+    """How a series of padded points is named in a legend ('' for full-length batches)."""
+    return "" if lengths == "full" else f", padded batches ({lengths} lengths)"
 
 
 def write_plot(report: dict[str, Any], path: str | os.PathLike[str]) -> None:

@@ -40,6 +40,10 @@ PERCENTILES = (50, 90, 99)  # the percentiles every profile report carries
 COMPARE_SOURCE = True
 # streaming files: steps per call timed by profile (one new sample, and a short chunk)
 CHUNKS = (1, 16)
+# lengths of the rows of a timed batch: "full" (every row T steps), "uniform" (also padded
+# batches, lengths uniform in 1..T), or a recording whose lengths/mask are drawn from
+LENGTHS = "full"
+LENGTH_DRAWS = ("full", "uniform")
 # bytes per input element in the memory estimate (float32, the dtype of every sequence input
 # the profiler generates except token ids)
 BYTES_PER_ELEMENT = 4

@@ -23,7 +23,7 @@ from pathlib import Path
 from typing import Any, TypeVar
 
 from seqgate.errors import BadInputError
-from seqgate.settings.defaults import PERCENTILES, TASKS
+from seqgate.settings.defaults import LENGTH_DRAWS, PERCENTILES, TASKS
 
 T = TypeVar("T")
 
@@ -172,6 +172,31 @@ def parse_task(value: Any, where: str) -> str:
         raise BadInputError(f"{where} {value!r}: choose 'auto' (softmax/sigmoid outputs are class scores), "
                             f"'classify' (every output holds class scores) or 'regress' (none does).")
     return str(value)
+
+
+def parse_lengths(value: Any, where: str) -> str | Path:
+    """The lengths of a profile's timed rows: ``"full"``, ``"uniform"`` or a recording file.
+
+    ``"full"``: every row T steps. ``"uniform"``: padded batches beside the full ones, lengths
+    uniform in 1..T. A ``.npz``/``.npy`` path (a :class:`Path` passes unchanged): padded
+    batches whose lengths are drawn from that recording's lengths or mask. Relative paths are
+    left as given; the gate config resolves them against its own folder.
+    """
+    if isinstance(value, Path):
+        return value
+    if not isinstance(value, str) or not value.strip():
+        raise BadInputError(f"{where} must be 'full', 'uniform' or a recording file (.npz/.npy), "
+                            f"got {value!r}.")
+    text = value.strip()
+    if text in LENGTH_DRAWS:
+        return text
+    if Path(text).suffix.lower() in (".npz", ".npy"):
+        return Path(text)
+    close = difflib.get_close_matches(text, LENGTH_DRAWS, n=1)
+    hint = f" (did you mean {close[0]!r}?)" if close else ""
+    raise BadInputError(f"{where} {value!r}{hint}: choose 'full' (every row of a batch T steps long), "
+                        f"'uniform' (padded batches too, lengths uniform in 1..T) or a recording file "
+                        f"(.npz/.npy) whose lengths or mask the padded batches copy.")
 
 
 def parse_int_list(value: Any, where: str, minimum: int = 1) -> tuple[int, ...]:

@@ -432,12 +432,15 @@ def _check_source(model: Any, src: Source, states: bool) -> tuple[Any, list[Prob
 def _window_sets(model: Any, specs: list[InputSpec], windows: list[str | Path], synthetic: bool,
                  batch_size: int, seed: int) -> list[Recording]:
     """The recordings as given, then the synthetic sets (scaled from the first recording's statistics)."""
+    from seqgate.verify.padded_steps import add_padding_counts
     from seqgate.verify.synthetic import read_padding, synthetic_sets
 
+    padding = read_padding(model)
     recs = [load_recording(w, specs) for w in windows]
+    add_padding_counts(recs, padding)
     if synthetic:
         stats = feature_stats(recs[0], batch_size) if recs else None
-        recs += synthetic_sets(specs, stats, seed, padding=read_padding(model))
+        recs += synthetic_sets(specs, stats, seed, padding=padding)
     return recs
 
 
