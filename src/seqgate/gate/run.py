@@ -323,9 +323,10 @@ def _profile(report: GateReport, model_path: Path, weights: str | None, progress
                   f"setting measured ({len(budgets)} verdicts)")
     calls = (report.profile.get("streaming") or {}).get("call_budgets") or []
     if calls:
-        detail += "; per call: " + "; ".join(
+        per_call = "per call: " + "; ".join(
             f"{c['chunk']} steps ≤ {c['budget_ms']:g} ms: {c['measured_ms']:.3g} ms "
             f"({'pass' if c['passed'] else 'fail'})" for c in calls)
+        detail = per_call if not budgets else f"{detail}; {per_call}"
     report.checks.append({"name": "latency", "passed": pr.passed, "detail": detail})
 
 
