@@ -21,7 +21,7 @@ from seqgate.cli.app import app
 from torch_models import FACTORY_FILE
 
 runner = CliRunner()
-DEMO = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
+DEMO = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
 
 
 def _invoke(*args: str) -> Any:

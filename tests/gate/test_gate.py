@@ -16,7 +16,7 @@ from typer.testing import CliRunner
 
 from seqgate.cli.app import app
 
-DEMO = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
+DEMO = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
 runner = CliRunner()
 
 FAST_PROFILE = """

@@ -15,7 +15,7 @@ from typer.testing import CliRunner
 from seqgate.cli.app import app
 from seqgate.util.ownership import written_by_seqgate
 
-DEMO = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
+DEMO = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
 runner = CliRunner()
 SOURCE = f"{DEMO / 'vibration' / 'vibration_model.py'}:build_model"
 WEIGHTS = str(DEMO / "vibration" / "vibration_model.pt")

@@ -28,7 +28,7 @@ from torch_models import FACTORY_FILE
 
 torch.set_num_threads(1)
 runner = CliRunner()
-DEMO = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
+DEMO = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
 
 
 def _invoke(*args: str) -> Any:

@@ -20,7 +20,7 @@ from pathlib import Path
 
 import pytest
 
-DEMO = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
+DEMO = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
 GATE_FILES = {"model.onnx", "report.json", "report.md", "junit.xml", "report.html"}
 
 

@@ -13,8 +13,8 @@ from typer.testing import CliRunner
 
 from seqgate.cli.app import app
 
-SRC = Path(__file__).resolve().parent.parent / "src" / "seqgate"
-DEMO = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
+SRC = Path(__file__).resolve().parents[2] / "src" / "seqgate"
+DEMO = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
 runner = CliRunner()
 
 

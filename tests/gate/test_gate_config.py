@@ -9,7 +9,7 @@ import pytest
 from seqgate.errors import EXIT_BAD_INPUT, BadInputError
 from seqgate.gate.config import load_gate_config
 
-FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
+FIXTURES = Path(__file__).resolve().parents[2] / "fixtures"
 
 
 def _write(tmp_path: Path, text: str) -> Path:

@@ -20,7 +20,7 @@ from pathlib import Path
 
 import pytest
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 README = REPO / "README.md"
 # lines of a bash block that are neither `seqgate` nor `scripts/` commands; the fixture does these
 SETUP_LINES = {"mkdir -p out", "source .venv/bin/activate"}

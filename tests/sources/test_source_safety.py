@@ -22,7 +22,7 @@ from seqgate.cli.app import app
 from torch_models import FACTORY_FILE
 
 runner = CliRunner()
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 
 EXTRA = """
 import functools

@@ -25,7 +25,7 @@ from typer.testing import CliRunner
 from seqgate.cli.app import app
 
 runner = CliRunner()
-DEMO = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
+DEMO = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
 KERAS_DEMO = DEMO / "pressure" / "pressure_forecaster.keras"
 
 TORCH_NET = """

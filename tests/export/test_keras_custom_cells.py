@@ -23,7 +23,7 @@ import keras_models as km
 from reference_equations import keras_to_onnx, onnx_gru, onnx_lstm, onnx_rnn
 
 pytestmark = pytest.mark.filterwarnings("ignore:__array__ implementation:DeprecationWarning")
-CELLS_FILE = Path(__file__).parent / "keras_custom_cells.py"
+CELLS_FILE = Path(__file__).resolve().parents[1] / "keras_custom_cells.py"
 NATIVE = ("LSTM", "GRU", "RNN")
 
 

@@ -17,7 +17,7 @@ from typer.testing import CliRunner
 import keras_models as km
 from seqgate.export.streaming import make_streaming
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 
 
 @pytest.fixture(scope="module")
