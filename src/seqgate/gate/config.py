@@ -43,6 +43,11 @@ default)::
     seq_len = 64
     ms = 5.0
 
+    [[variants]]                       # reduced-precision candidates: seqgate.settings.variants
+    kind = "int8_dynamic"              # int8_dynamic | int8_dynamic_scan | int8_static | float16
+    min_top1_agreement = 0.999         # and/or atol, rtol, max_label_flips, max_forecast_error_increase
+    required = false                   # true: a rejected variant fails the gate
+
 Validation happens before any heavy work and reports every problem in one message (exit 2):
 unknown keys (with a did-you-mean), wrong types, out-of-range or non-finite values, tolerance
 entries without ``match``, budgets without ``ms``, negative seeds, missing files, and a sweep
@@ -53,6 +58,7 @@ cannot take are checked right after export, before verification and profiling st
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -60,10 +66,12 @@ from typing import Any
 from seqgate.errors import BadInputError
 from seqgate.settings import CONFIG, SETTINGS, Budget, Problems, Tolerances, check_input_memory, parse_settings
 from seqgate.settings.values import parse_int, problems_message, read_toml, unknown_key
+from seqgate.settings.variants import VariantRule, parse_variants
 
 MODEL_KEYS = ("source", "weights", "inputs", "onnx", "untrained", "expect_other_source")
 EXPORT_KEYS = ("opset",)
 SECTIONS = ("model", "export", "verify", "profile")
+LISTS = ("variants",)  # top-level arrays of tables
 RENAMED = {("profile", "batch"): "batch_sizes"}  # old spellings, named in the error
 
 
@@ -97,6 +105,7 @@ class GateConfig:
     onnx: Path | None = None
     untrained: bool = False
     expect_other_source: str | None = None  # the reason the ONNX file may come from other files
+    variants: tuple[VariantRule, ...] = ()  # [[variants]]: reduced-precision candidates and their rules
 
     @property
     def base(self) -> Path:
@@ -137,10 +146,13 @@ def load_gate_config(path: str | Path) -> GateConfig:
     data = read_toml(p, "gate config")
     problems = Problems()
     for key in data:
-        if key not in SECTIONS:
-            problems.add(unknown_key(key, SECTIONS, "section "))
+        if key not in SECTIONS and key not in LISTS:
+            problems.add(unknown_key(key, SECTIONS + LISTS, "section "))
     model, export, verify, profile = (_table(data, s, problems) for s in SECTIONS)
     cfg = _assemble(problems, p, "profile" in data, model, export, verify, profile)
+    variants = problems.take(parse_variants, data.get("variants", []), "[[variants]]")
+    if variants:
+        cfg = dataclasses.replace(cfg, variants=variants)
     if problems.items:
         raise BadInputError(problems_message(f"gate config {p}", problems.items))
     return cfg

@@ -18,7 +18,11 @@ Measurement hygiene (the contract of :func:`profile_model`):
   length is then an error (exit 2);
 - budget lengths missing from ``seq_lens`` are added to the sweep;
 - settings are parsed by ``seqgate.settings`` (defaults there too); a sweep whose inputs alone
-  would not fit in memory is refused before anything is timed.
+  would not fit in memory is refused before anything is timed;
+- ``variants`` (label → ONNX ModelProto with the same inputs, e.g. INT8 variants): each is timed
+  at every point right after the float32 file, on the same inputs, as runtime
+  ``onnxruntime:<label>``; its ``speedup`` is float32 p50 / variant p50 (how many times faster
+  than the float32 file). Budgets are still judged on the float32 file only.
 """
 
 from __future__ import annotations
@@ -27,7 +31,7 @@ import gc
 import math
 import os
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -109,6 +113,16 @@ def _sweep_lengths(axes: Any, seq_lens: list[int], budgets: list[Budget], notes:
     return sorted(set(seq_lens) | set(extra))
 
 
+def variant_speedups(points: list[Point], variant_points: list[Point]) -> list[Point]:
+    """``variant_points`` with ``speedup`` = float32 ONNX Runtime p50 / variant p50 at the same point."""
+    base = {p.key(): p for p in points if p.runtime == ONNXRUNTIME}
+    for p in variant_points:
+        b = base.get(p.key())
+        if b is not None and p.stats.p50_ms > 0:
+            p.speedup = b.stats.p50_ms / p.stats.p50_ms
+    return variant_points
+
+
 def lengths_to_measure(model: Any, seq_lens: Sequence[int], budgets: Sequence[Budget],
                        batch_sizes: Sequence[int] = d.BATCH_SIZES) -> list[int]:
     """The lengths a profile of ``model`` would measure; ``BadInputError`` for budgets it cannot take
@@ -164,6 +178,7 @@ def profile_model(
     weights: str | None = None,
     seed: int = d.SEED,
     progress: Progress | None = None,
+    variants: Mapping[str, Any] | None = None,
 ) -> ProfileReport:
     """Measure ``model_path`` over the sweep and judge the budgets (see the module docstring).
 
@@ -193,9 +208,11 @@ def profile_model(
     macs = {t: cost["macs_per_sequence"] + cost["macs_per_step"] * t for t in lengths}
     runner = _open_runner(src, model, thread_list)
     sweep = _Sweep(model, plans, runner, seed, (warmup, min_runs, min_time), progress or SILENT)
+    sweep.variants = dict(variants or {})
     points, sessions = sweep.run(thread_list, batch_list, lengths, macs)
     notes.extend(sweep.notes)
     attach_speedups(points)
+    points += variant_speedups(points, sweep.variant_points)
     if q == 99 and min(p.stats.runs for p in points) < 100:
         notes.append("some points have fewer than 100 runs: their p99 is close to their max; raise "
                      "--min-runs or --min-time for a steadier tail.")
@@ -281,18 +298,21 @@ class _Sweep:
         self.progress = progress
         self.notes: list[str] = []
         self.agreement: tuple[bool, str] | None = None
+        self.variants: dict[str, Any] = {}
+        self.variant_points: list[Point] = []
 
     def run(self, thread_list: list[int], batch_list: list[int], lengths: list[int],
             macs: dict[int, int]) -> tuple[list[Point], list[dict[str, Any]]]:
         from seqgate.runtimes.onnx import OnnxRunner
 
-        total = len(thread_list) * len(batch_list) * len(lengths) * (2 if self.runner else 1)
+        total = len(thread_list) * len(batch_list) * len(lengths) * (1 + bool(self.runner) + len(self.variants))
         self.progress.start(f"profiling {total} points", total)
         points: list[Point] = []
         sessions: list[dict[str, Any]] = []
         for th in thread_list:
             ort = OnnxRunner(self.model, [], th, timing=True)
             sessions.append(ort.recorded)
+            others = {f"{ONNXRUNTIME}:{k}": OnnxRunner(m, [], th, timing=True) for k, m in self.variants.items()}
             for b in batch_list:
                 for t in lengths:
                     feeds = make_inputs(self.plans, b, t, self.seed)
@@ -301,12 +321,23 @@ class _Sweep:
                         points.append(Point(t, b, th, ONNXRUNTIME,
                                             summarize_ns(time_call(call, *self.counts)), macs[t]))
                         self.progress.advance(1)
+                        self._time_variants(others, feeds, (t, b, th), macs[t])
                         if self.runner is not None:
                             self.progress.advance(0, f"{self.runner.runtime} T={t} batch={b} threads={th}")
                             points.append(self._source_point(call, feeds, t, b, th, macs[t]))
                             self.progress.advance(1)
         self.progress.finish()
         return points, sessions
+
+    def _time_variants(self, others: dict[str, Any], feeds: dict[str, Any], point: tuple[int, int, int],
+                       macs: int) -> None:
+        """Each variant at this point, right after the float32 file (same inputs); see the docstring."""
+        t, b, th = point
+        for label, runner in others.items():
+            with runner.timed_call(feeds) as vcall:
+                self.progress.advance(0, f"{label} T={t} batch={b} threads={th}")
+                self.variant_points.append(Point(t, b, th, label, summarize_ns(time_call(vcall, *self.counts)), macs))
+                self.progress.advance(1)
 
     def _source_point(self, ort: Callable[[], Any], feeds: dict[str, Any], t: int, b: int, th: int,
                       macs: int) -> Point:

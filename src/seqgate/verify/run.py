@@ -197,6 +197,7 @@ class Comparer:
         self.batch_dims = {s.window_dims[0] for s in specs if s.dims and isinstance(s.window_dims[0], str)}
         self.batch_axis: dict[str, int] = {}
         self.where = ("the ONNX file", "the source")  # (model label, source text) for messages
+        self.observe: Any = None  # called (recording, first window, onnx outputs, source outputs) per batch
 
     def _find_batch_axis(self, name: str, shape: tuple[int, ...], n: int) -> int:
         """Outputs may hold the windows on another axis (PyTorch ``h_n`` is ``[L·D, N, H]``)."""
@@ -252,6 +253,8 @@ class Comparer:
                 check[0] = False
             if not stats:
                 stats = self.new_stats(feeds, s)
+            if self.observe is not None:
+                self.observe(rec, start, a, s)
             score = np.zeros(next(iter(feeds.values())).shape[0])
             for t in self.infos:
                 _check_shapes(t, a[t.name], s[t.name], self.where)
@@ -340,8 +343,12 @@ def verify_model(
     progress: Progress | None = None,
     task: str | None = d.TASK,
     seed: int = d.SEED,
+    observe: Any = None,
 ) -> VerifyReport:
     """Compare the ONNX file with its source on every window; see the module docstring.
+
+    ``observe(recording, first_window, onnx_outputs, source_outputs)``, when given, sees every
+    batch's outputs by tensor name (task-level figures of a variant are computed this way).
 
     Settings go through the parsers of ``seqgate.settings``; ``tolerances`` is a tolerance file
     (``atol``/``rtol`` on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored).
@@ -369,6 +376,7 @@ def verify_model(
     onnx_runner, src_runner = _runners(model, src, probes, states, recs, specs, str(path))
     comparer = Comparer(infos, tol, _classes(model, task), specs, output_dims(model))
     comparer.where = (str(path), src.text)
+    comparer.observe = observe
     results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress or SILENT)
     oracle_out = None
     if oracle:
