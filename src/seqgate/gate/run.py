@@ -243,7 +243,8 @@ def _run_checks(report: GateReport, progress: Progress) -> None:
         report.checks.append(conclude(report.variants, report.profile))
 
 
-def _make_variants(report: GateReport, model_path: Path, weights: str | None, progress: Progress) -> dict[str, Any]:
+def _make_variants(report: GateReport, model_path: Path, weights: str | None,
+                   progress: Progress) -> dict[str, Any]:
     from seqgate.variants.step import make_and_verify
 
     cfg = report.config

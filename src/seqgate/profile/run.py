@@ -190,25 +190,21 @@ def profile_model(
     from seqgate.util.environment import environment
 
     opts = _options(locals())
-    warmup, min_runs, min_time = opts["warmup"], opts["min_runs"], opts["min_time"]
-    q, seed = opts["percentile"], opts["seed"]
-    budget_list = list(opts["budget"])
-    path = Path(model_path)
+    warmup, min_runs, min_time, q, seed = (opts[k] for k in
+                                           ("warmup", "min_runs", "min_time", "percentile", "seed"))
+    budget_list, path, notes = list(opts["budget"]), Path(model_path), []
     model = load_onnx(path)
-    notes: list[str] = []
     plans = plan_inputs(model)
     axes = model_axes(model, plans)
     lengths = _sweep_lengths(axes, list(opts["seq_lens"]), budget_list, notes)
-    batch_list = _sweep_batches(axes, list(opts["batch_sizes"]), notes)
-    thread_list = list(opts["threads"])
+    batch_list, thread_list = _sweep_batches(axes, list(opts["batch_sizes"]), notes), list(opts["threads"])
     _check_memory(plans, lengths, batch_list)
     src = _parse_source(source, weights)
     _note_oversubscription(thread_list, notes)
     cost = summary(model)  # one pass of the cost model (two shape inferences) for every length
     macs = {t: cost["macs_per_sequence"] + cost["macs_per_step"] * t for t in lengths}
     runner = _open_runner(src, model, thread_list)
-    sweep = _Sweep(model, plans, runner, seed, (warmup, min_runs, min_time), progress or SILENT)
-    sweep.variants = dict(variants or {})
+    sweep = _Sweep(model, plans, runner, seed, (warmup, min_runs, min_time), progress or SILENT, variants)
     points, sessions = sweep.run(thread_list, batch_list, lengths, macs)
     notes.extend(sweep.notes)
     attach_speedups(points)
@@ -292,13 +288,14 @@ class _Sweep:
     """The nested loop threads → batch → T, ONNX Runtime then the source at each point."""
 
     def __init__(self, model: Any, plans: list[InputPlan], runner: Any, seed: int,
-                 counts: tuple[int, int, float], progress: Progress) -> None:
+                 counts: tuple[int, int, float], progress: Progress,
+                 variants: Mapping[str, Any] | None = None) -> None:
         self.model, self.plans, self.runner, self.seed = model, plans, runner, seed
         self.counts = counts
         self.progress = progress
         self.notes: list[str] = []
         self.agreement: tuple[bool, str] | None = None
-        self.variants: dict[str, Any] = {}
+        self.variants: dict[str, Any] = dict(variants or {})
         self.variant_points: list[Point] = []
 
     def run(self, thread_list: list[int], batch_list: list[int], lengths: list[int],
@@ -312,7 +309,8 @@ class _Sweep:
         for th in thread_list:
             ort = OnnxRunner(self.model, [], th, timing=True)
             sessions.append(ort.recorded)
-            others = {f"{ONNXRUNTIME}:{k}": OnnxRunner(m, [], th, timing=True) for k, m in self.variants.items()}
+            others = {f"{ONNXRUNTIME}:{k}": OnnxRunner(m, [], th, timing=True)
+                      for k, m in self.variants.items()}
             for b in batch_list:
                 for t in lengths:
                     feeds = make_inputs(self.plans, b, t, self.seed)
@@ -336,7 +334,8 @@ class _Sweep:
         for label, runner in others.items():
             with runner.timed_call(feeds) as vcall:
                 self.progress.advance(0, f"{label} T={t} batch={b} threads={th}")
-                self.variant_points.append(Point(t, b, th, label, summarize_ns(time_call(vcall, *self.counts)), macs))
+                stats = summarize_ns(time_call(vcall, *self.counts))
+                self.variant_points.append(Point(t, b, th, label, stats, macs))
                 self.progress.advance(1)
 
     def _source_point(self, ort: Callable[[], Any], feeds: dict[str, Any], t: int, b: int, th: int,

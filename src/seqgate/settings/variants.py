@@ -27,7 +27,14 @@ from dataclasses import dataclass
 from typing import Any
 
 from seqgate.errors import BadInputError
-from seqgate.settings.values import Problems, SettingProblems, parse_bool, parse_int, parse_tolerance, unknown_key
+from seqgate.settings.values import (
+    Problems,
+    SettingProblems,
+    parse_bool,
+    parse_int,
+    parse_tolerance,
+    unknown_key,
+)
 
 # int8_dynamic: onnxruntime.quantization.quantize_dynamic (INT8 weights, activations quantized per
 # call); int8_dynamic_scan: the same after GRU/RNN nodes are rewritten as Scan loops of MatMuls

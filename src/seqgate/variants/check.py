@@ -75,7 +75,7 @@ class ForecastError:
             fits = [o for o in outputs if np.asarray(out[o]).size == y.size]
             if not fits:
                 self._targets[key] = None
-                self.notes.append(f"{rec.label}: targets {list(t.shape)} fit no model output's size; not judged")
+                self.notes.append(f"{rec.label}: targets {list(t.shape)} fit no output's size; not judged")
                 return None
             self.output = fits[0]
         return y
@@ -84,10 +84,11 @@ class ForecastError:
         if not self.count:
             return None
         mae_s, mae_v = self.source_abs / self.count, self.variant_abs / self.count
+        rel = (mae_v - mae_s) / mae_s if mae_s > 0 else (0.0 if mae_v == 0 else math.inf)
         return {"output": self.output, "values": self.count, "source_mae": mae_s, "variant_mae": mae_v,
                 "source_rmse": math.sqrt(self.source_sq / self.count),
                 "variant_rmse": math.sqrt(self.variant_sq / self.count),
-                "relative_increase": (mae_v - mae_s) / mae_s if mae_s > 0 else (0.0 if mae_v == 0 else math.inf)}
+                "relative_increase": rel}
 
 
 def rule_tolerances(rule: VariantRule) -> Tolerances:
@@ -168,7 +169,8 @@ def judge(rule: VariantRule, within: bool, f: dict[str, Any]) -> list[dict[str, 
         fc = f["forecast"]
         ok = fc is not None and fc["relative_increase"] <= rule.max_forecast_error_increase
         detail = ("no recording with a targets array fits an output" if fc is None else
-                  f"MAE {fc['variant_mae']:.4g} vs source {fc['source_mae']:.4g}: {fc['relative_increase']:+.3%} "
+                  f"MAE {fc['variant_mae']:.4g} vs source {fc['source_mae']:.4g}: "
+                  f"{fc['relative_increase']:+.3%} "
                   f"(at most +{rule.max_forecast_error_increase:.3%})")
         checks.append({"name": "forecast_error", "passed": ok, "detail": detail})
     return checks

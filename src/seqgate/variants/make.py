@@ -97,7 +97,8 @@ def _dynamic(model: Any) -> Any:
         with tempfile.TemporaryDirectory(prefix="seqgate-variant-") as tmp:
             out = Path(tmp) / "variant.onnx"
             # a ModelProto handed to the quantizer is changed in place (weights moved out): give a file
-            quantize_dynamic(_saved(model, tmp), out, weight_type=QuantType.QInt8, extra_options={"EnableSubgraph": True})
+            quantize_dynamic(_saved(model, tmp), out, weight_type=QuantType.QInt8,
+                             extra_options={"EnableSubgraph": True})
             return onnx.load(out)
     finally:
         logging.getLogger().setLevel(level)
@@ -184,8 +185,9 @@ def _static(model: Any, recordings: list[Recording], specs: list[InputSpec], not
     try:
         with tempfile.TemporaryDirectory(prefix="seqgate-variant-") as tmp:
             out = Path(tmp) / "variant.onnx"
-            quantize_static(_saved(model, tmp), out, reader, quant_format=QuantFormat.QDQ, op_types_to_quantize=present,
-                            activation_type=QuantType.QUInt8, weight_type=QuantType.QInt8)
+            quantize_static(_saved(model, tmp), out, reader, quant_format=QuantFormat.QDQ,
+                            op_types_to_quantize=present, activation_type=QuantType.QUInt8,
+                            weight_type=QuantType.QInt8)
             notes.append(f"calibrated on up to {CALIBRATION_WINDOWS} recorded windows (min/max)")
             return onnx.load(out)
     finally:

@@ -103,10 +103,10 @@ def _rnn_body(h: int, act: str, r: np.ndarray[Any, Any], rb: np.ndarray[Any, Any
 
 
 def _graph(nodes: list[Any], inits: list[Any], h: int, width: int) -> Any:
-    f = TensorProto.FLOAT
-    return helper.make_graph(
-        nodes, "step", [helper.make_tensor_value_info("h", f, ["N", h]), helper.make_tensor_value_info("x", f, ["N", width])],
-        [helper.make_tensor_value_info("h_out", f, ["N", h]), helper.make_tensor_value_info("y", f, ["N", h])], inits)
+    def v(name: str, w: int) -> Any:
+        return helper.make_tensor_value_info(name, TensorProto.FLOAT, ["N", w])
+
+    return helper.make_graph(nodes, "step", [v("h", h), v("x", width)], [v("h_out", h), v("y", h)], inits)
 
 
 def _direction(g: Any, node: Any, a: dict[str, Any], d: int, p: str) -> tuple[list[Any], str, str]:
@@ -119,14 +119,18 @@ def _direction(g: Any, node: Any, a: dict[str, Any], d: int, p: str) -> tuple[li
     has_b = len(node.input) > 3 and node.input[3]
     b = numpy_helper.to_array(inits[node.input[3]])[d] if has_b else np.zeros(2 * gates * h, np.float32)
     x = node.input[0]
-    nodes = [mk("MatMul", [x, _const(g, f"{p}Wt", np.ascontiguousarray(w.T))], [f"{p}xw0"], name=f"{p}input_projection"),
-             mk("Add", [f"{p}xw0", _const(g, f"{p}Wb", b[: gates * h].copy())], [f"{p}xw"], name=f"{p}input_bias")]
+    wt = _const(g, f"{p}Wt", np.ascontiguousarray(w.T))
+    wb = _const(g, f"{p}Wb", b[: gates * h].copy())
+    nodes = [mk("MatMul", [x, wt], [f"{p}xw0"], name=f"{p}input_projection"),
+             mk("Add", [f"{p}xw0", wb], [f"{p}xw"], name=f"{p}input_bias")]
     if len(node.input) > 5 and node.input[5]:
-        nodes.append(mk("Gather", [node.input[5], _const(g, f"{p}d", np.array(d, np.int64))], [f"{p}h0"], axis=0))
+        index = _const(g, f"{p}d", np.array(d, np.int64))
+        nodes.append(mk("Gather", [node.input[5], index], [f"{p}h0"], axis=0))
     else:
+        zero = numpy_helper.from_array(np.zeros(1, np.float32))
         nodes += [mk("Shape", [x], [f"{p}n"], start=1, end=2),
                   mk("Concat", [f"{p}n", _const(g, f"{p}hsz", np.array([h], np.int64))], [f"{p}hs"], axis=0),
-                  mk("ConstantOfShape", [f"{p}hs"], [f"{p}h0"], value=numpy_helper.from_array(np.zeros(1, np.float32)))]
+                  mk("ConstantOfShape", [f"{p}hs"], [f"{p}h0"], value=zero)]
     rb = b[gates * h:].copy()
     if node.op_type == "GRU":
         body = _gru_body(h, int(a.get("linear_before_reset", 0)), r, rb)
@@ -134,8 +138,8 @@ def _direction(g: Any, node: Any, a: dict[str, Any], d: int, p: str) -> tuple[li
         acts = [s.decode() if isinstance(s, bytes) else s for s in a.get("activations", ["Tanh"])]
         body = _rnn_body(h, acts[0] if acts else "Tanh", r, rb)
     rev = int(a.get("direction", "forward") == "reverse" or d == 1)
-    nodes.append(mk("Scan", [f"{p}h0", f"{p}xw"], [f"{p}hT", f"{p}Y"], name=f"{p}scan", num_scan_inputs=1, body=body,
-                    scan_input_directions=[rev], scan_output_directions=[rev]))
+    nodes.append(mk("Scan", [f"{p}h0", f"{p}xw"], [f"{p}hT", f"{p}Y"], name=f"{p}scan", num_scan_inputs=1,
+                    body=body, scan_input_directions=[rev], scan_output_directions=[rev]))
     return nodes, f"{p}Y", f"{p}hT"
 
 

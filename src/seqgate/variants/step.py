@@ -69,10 +69,12 @@ def _make(model: Any, kind: str, recs: list[Any], specs: list[Any]) -> Any:
     except SeqgateError:
         raise
     except Exception as e:  # the quantizer's own failures: this kind is not made, the gate goes on
-        return Variant(kind, None, notes=[f"onnxruntime could not make it: {type(e).__name__}: {first_line(e)}"])
+        return Variant(kind, None, notes=[f"onnxruntime could not make it: {type(e).__name__}: "
+                                          f"{first_line(e)}"])
 
 
-def verify_variant_file(path: Path, rule: VariantRule, options: dict[str, Any], progress: Progress) -> dict[str, Any]:
+def verify_variant_file(path: Path, rule: VariantRule, options: dict[str, Any],
+                        progress: Progress) -> dict[str, Any]:
     from seqgate.variants.check import verify_variant
 
     return verify_variant(path, rule, {**options, "progress": progress})
@@ -96,8 +98,9 @@ def latency(kind: str, profile: dict[str, Any] | None) -> list[dict[str, Any]]:
     for p in (p for p in pts if p["runtime"] == label):
         k = tuple(p[x] for x in key)
         src = source.get(k)
-        out.append({"seq_len": p["seq_len"], "batch": p["batch"], "threads": p["threads"], "p50_ms": p["p50_ms"],
-                    "p99_ms": p["p99_ms"], "float32_p50_ms": base[k]["p50_ms"] if k in base else None,
+        out.append({"seq_len": p["seq_len"], "batch": p["batch"], "threads": p["threads"],
+                    "p50_ms": p["p50_ms"], "p99_ms": p["p99_ms"],
+                    "float32_p50_ms": base[k]["p50_ms"] if k in base else None,
                     "speedup_vs_float32": p["speedup"],
                     "speedup_vs_source": src["p50_ms"] / p["p50_ms"] if src and p["p50_ms"] > 0 else None})
     return out
@@ -118,9 +121,8 @@ def conclude(entries: list[dict[str, Any]], profile: dict[str, Any] | None) -> d
     if timed:
         max(timed, key=lambda e: e["speedup"])["chosen"] = True
     missing = [e["kind"] for e in entries if e["rule"]["required"] and not e["accepted"]]
-    parts = [_summary(e) for e in entries]
-    return {"name": "variants", "passed": not missing,
-            "detail": (f"required variant(s) rejected: {', '.join(missing)}; " if missing else "") + "; ".join(parts)}
+    head = f"required variant(s) rejected: {', '.join(missing)}; " if missing else ""
+    return {"name": "variants", "passed": not missing, "detail": head + "; ".join(_summary(e) for e in entries)}
 
 
 def _summary(e: dict[str, Any]) -> str:

@@ -27,6 +27,8 @@ Contract:
   against those the ONNX file records; the result is the report's ``provenance`` section, and a
   difference, or an untrained export, is also a warning. It does not change the verdict, which
   is about what the files compute; the gate makes provenance its own check.
+- ``observe(recording, first_window, onnx_outputs, source_outputs)``, when given, sees every
+  batch's outputs by tensor name (a variant's task-level figures are computed this way).
 - The ONNX file's inputs must be the source model's (names; ranks and fixed dims): a file whose
   inputs or outputs do not fit is bad input (exit 2) naming what differs.
 """
@@ -347,9 +349,6 @@ def verify_model(
 ) -> VerifyReport:
     """Compare the ONNX file with its source on every window; see the module docstring.
 
-    ``observe(recording, first_window, onnx_outputs, source_outputs)``, when given, sees every
-    batch's outputs by tensor name (task-level figures of a variant are computed this way).
-
     Settings go through the parsers of ``seqgate.settings``; ``tolerances`` is a tolerance file
     (``atol``/``rtol`` on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored).
     """
@@ -365,8 +364,7 @@ def verify_model(
                             "--synthetic.")
     if isinstance(tolerances, Tolerances):  # built by a caller (the gate config), not read from a file
         tolerances = None
-    path = Path(model_path)
-    model = load_onnx(path)
+    model = load_onnx(path := Path(model_path))
     src = source if isinstance(source, Source) else parse_source(source, weights)
     prov, probes, warnings = _check_source(model, src, states)
     specs = input_specs(model)
@@ -375,8 +373,7 @@ def verify_model(
     warnings += [f"tolerance pattern {p!r} matches no tensor" for p in tol.unmatched([t.name for t in infos])]
     onnx_runner, src_runner = _runners(model, src, probes, states, recs, specs, str(path))
     comparer = Comparer(infos, tol, _classes(model, task), specs, output_dims(model))
-    comparer.where = (str(path), src.text)
-    comparer.observe = observe
+    comparer.where, comparer.observe = (str(path), src.text), observe
     results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress or SILENT)
     oracle_out = None
     if oracle:
