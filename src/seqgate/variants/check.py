@@ -13,6 +13,11 @@ task-level figures of the **recorded** windows (synthetic sets are stress, not t
   source and of the variant against the targets on the output whose per-window size equals the
   targets', and ``relative_increase = (MAE_variant − MAE_source) / MAE_source``.
 
+Dynamic INT8 picks each activation's scale per call (the min/max of that call's batch), so a
+dynamic variant's outputs depend on which windows share a call: the figures hold for the verify
+batch size (``[verify] batch_size``), and a deployment that calls with another batch differs
+slightly.
+
 Each criterion of the rule is one check ``{name, passed, detail}``; the variant is accepted when
 every check passes. A task threshold the model cannot be judged on (no class-score output, no
 targets) fails its check, naming why.
