@@ -199,6 +199,9 @@ def _expected_config_defaults() -> dict[tuple[str, str], object]:
         expected[(st.section, st.key)] = list(st.default) if isinstance(st.default, tuple) else st.default
     expected.update({("verify.tolerance", k): None for k in ("match", "atol", "rtol")})
     expected.update({("profile.budget", k): None for k in ("seq_len", "ms")})
+    from seqgate.settings.variants import VARIANT_DEFAULTS
+
+    expected.update({("variants", k): v for k, v in VARIANT_DEFAULTS.items()})
     return expected
 
 
