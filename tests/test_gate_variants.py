@@ -13,6 +13,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import pytest
 from typer.testing import CliRunner
 
 from seqgate.cli.app import app
@@ -62,7 +63,8 @@ def test_gate_keeps_the_accepted_variant_and_reports_both(tmp_path: Path) -> Non
     report = json.loads((out / "report.json").read_text())
     by = {v["kind"]: v for v in report["variants"]}
     acc, rej = by["int8_dynamic"], by["float16"]
-    assert acc["accepted"] and acc["chosen"] and acc["file"] == str(out / "model.int8_dynamic.onnx")
+    assert acc["accepted"] and acc["file"] == str(out / "model.int8_dynamic.onnx")
+    assert acc["chosen"] == (acc["speedup"] > 1.0)  # chosen only when faster than float32
     assert not rej["accepted"] and not rej["chosen"] and rej["file"] is None
     assert [c["name"] for c in rej["checks"] if not c["passed"]] == ["tolerance"]
     assert acc["figures"]["forecast"]["output"] == "pressure_next"
@@ -75,7 +77,7 @@ def test_gate_keeps_the_accepted_variant_and_reports_both(tmp_path: Path) -> Non
     assert runtimes == {"onnxruntime", "onnxruntime:int8_dynamic", "onnxruntime:float16"}
     html = (out / "report.html").read_text()
     assert "Reduced-precision variants" in html and "per-step error of int8_dynamic" in html
-    assert "| int8_dynamic | accepted, chosen |" in (out / "report.md").read_text()
+    assert "| int8_dynamic | accepted" in (out / "report.md").read_text()
     # the folder holds only files the gate writes: the next run replaces it
     again = runner.invoke(app, ["gate", str(_config(tmp_path)), "--out-dir", str(out)])
     assert again.exit_code == 0, again.output
@@ -89,3 +91,28 @@ def test_a_required_variant_that_is_rejected_fails_the_gate(tmp_path: Path) -> N
     check = next(c for c in report["checks"] if c["name"] == "variants")
     assert not check["passed"] and check["detail"].startswith("required variant(s) rejected: float16")
     assert (out / "model.int8_dynamic.onnx").is_file()
+
+
+def _entry(kind: str, passed: bool, speedups: list[float], required: bool = False) -> dict:
+    pts = [{"runtime": f"onnxruntime:{kind}", "seq_len": 8 * (i + 1), "batch": 1, "threads": 1, "p50_ms": 1.0,
+            "p99_ms": 1.0, "speedup": s} for i, s in enumerate(speedups)]
+    return {"kind": kind, "made": True, "passed": passed, "file": None, "rule": {"required": required},
+            "checks": [{"name": "tolerance", "passed": passed, "detail": ""}], "points": pts}
+
+
+def test_the_fastest_accepted_variant_faster_than_float32_is_chosen() -> None:
+    from seqgate.variants.step import conclude
+
+    entries = [_entry("int8_dynamic", True, [1.5, 1.5]), _entry("int8_dynamic_scan", True, [1.0, 4.0]),
+               _entry("float16", False, [9.0, 9.0])]
+    profile = {"points": [p for e in entries for p in e.pop("points")]}
+    check = conclude(entries, profile)
+    # geometric means (hand-worked): sqrt(1.5·1.5) = 1.5, sqrt(1·4) = 2, sqrt(9·9) = 9 (rejected)
+    assert [e["speedup"] for e in entries] == pytest.approx([1.5, 2.0, 9.0], rel=1e-12)
+    assert [e["chosen"] for e in entries] == [False, True, False]
+    assert check["passed"] and "float16 rejected (tolerance)" in check["detail"]
+    slow = [_entry("int8_dynamic", True, [0.5, 0.8], required=True), _entry("float16", False, [2.0], True)]
+    profile = {"points": [p for e in slow for p in e.pop("points")]}
+    check = conclude(slow, profile)
+    assert not any(e["chosen"] for e in slow)  # slower than float32: nothing to choose
+    assert not check["passed"] and check["detail"].startswith("required variant(s) rejected: float16")

@@ -13,7 +13,8 @@ Contract (``seqgate gate`` with ``[[variants]]`` entries):
    the source framework, per point and as a geometric mean over the points), file size; a
    variant is **accepted** when it was made and every check of its rule passed. Rejected files
    are deleted; accepted ones stay in the gate's output folder. The accepted variant with the
-   largest mean speed-up over float32 is marked ``chosen`` (none without a profile).
+   largest mean speed-up over float32 is marked ``chosen``, if that speed-up is above 1 (a
+   variant slower than the float32 file is no reason to ship it; none without a profile).
 4. The gate's ``variants`` check fails only when a variant whose rule says ``required = true``
    is not accepted: otherwise a rejected variant is simply not shipped, and the check passes.
 """
@@ -117,7 +118,7 @@ def conclude(entries: list[dict[str, Any]], profile: dict[str, Any] | None) -> d
         if e["file"] and not e["accepted"]:
             Path(e["file"]).unlink(missing_ok=True)
             e["file"] = None
-    timed = [e for e in entries if e["accepted"] and e["speedup"] is not None]
+    timed = [e for e in entries if e["accepted"] and e["speedup"] is not None and e["speedup"] > 1.0]
     if timed:
         max(timed, key=lambda e: e["speedup"])["chosen"] = True
     missing = [e["kind"] for e in entries if e["rule"]["required"] and not e["accepted"]]
