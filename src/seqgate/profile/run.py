@@ -190,14 +190,15 @@ def profile_model(
     from seqgate.util.environment import environment
 
     opts = _options(locals())
-    warmup, min_runs, min_time, q, seed = (opts[k] for k in
-                                           ("warmup", "min_runs", "min_time", "percentile", "seed"))
+    warmup, min_runs, min_time = opts["warmup"], opts["min_runs"], opts["min_time"]
+    q, seed = opts["percentile"], opts["seed"]
     budget_list, path, notes = list(opts["budget"]), Path(model_path), []
     model = load_onnx(path)
     plans = plan_inputs(model)
     axes = model_axes(model, plans)
     lengths = _sweep_lengths(axes, list(opts["seq_lens"]), budget_list, notes)
-    batch_list, thread_list = _sweep_batches(axes, list(opts["batch_sizes"]), notes), list(opts["threads"])
+    batch_list = _sweep_batches(axes, list(opts["batch_sizes"]), notes)
+    thread_list = list(opts["threads"])
     _check_memory(plans, lengths, batch_list)
     src = _parse_source(source, weights)
     _note_oversubscription(thread_list, notes)
