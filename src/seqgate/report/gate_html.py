@@ -357,6 +357,14 @@ def _variant_row(v: dict[str, Any]) -> list[str]:
             "" if size is None else f"{size / 1024:.1f} KiB ({size / v['float32_size_bytes']:.0%})"]
 
 
+def _precisions(v: dict[str, Any]) -> list[str]:
+    """``int8: node, node`` / ``float32: node`` lines: what the quantizer changed and what it left."""
+    by: dict[str, list[str]] = {}
+    for n in v.get("nodes", []):
+        by.setdefault(n["precision"], []).append(f"{n['node']} ({n['op']})")
+    return [f"{p}: {', '.join(names)}" for p, names in sorted(by.items())]
+
+
 def _variants_section(variants: list[dict[str, Any]] | None) -> str:
     """The variant table, then each variant's checks, notes and per-step error curves."""
     if not variants:
@@ -368,9 +376,10 @@ def _variants_section(variants: list[dict[str, Any]] | None) -> str:
              "p50, geometric mean over the profile points. Accepted files are in the output folder.</p>",
              _table(head, [_variant_row(v) for v in variants], {3, 5, 6, 7, 8})]
     for v in variants:
+        notes = [*v.get("notes", []), *_precisions(v)]
         parts.append(f"<h3>{_e(v['kind'])}</h3><ul>" + "".join(
             f"<li>{_mark(c['passed'])} {_e(c['name'])}: {_e(c['detail'])}</li>" for c in v.get("checks", []))
-            + "".join(f"<li class='note'>{_e(n)}</li>" for n in v.get("notes", [])) + "</ul>")
+            + "".join(f"<li class='note'>{_e(n)}</li>" for n in notes) + "</ul>")
         tensors = [{"name": k, "per_step_max_abs": c, "atol": v["rule"].get("atol") or 0}
                    for k, c in ((v.get("figures") or {}).get("drift") or {}).items()]
         img = drift_chart(tensors, f"{v['kind']}: per-step max |variant − source|") if tensors else None
