@@ -201,6 +201,9 @@ def _expected_config_defaults() -> dict[tuple[str, str], object]:
     expected.update({("verify.tolerance", k): None for k in ("match", "atol", "rtol")})
     expected.update({("profile.budget", k): None for k in ("seq_len", "ms")})
     expected.update({("profile.call_budget", k): None for k in ("seq_len", "ms")})
+    from seqgate.settings.variants import VARIANT_DEFAULTS
+
+    expected.update({("variants", k): v for k, v in VARIANT_DEFAULTS.items()})
     return expected
 
 

@@ -10,10 +10,10 @@ import tomllib
 from pathlib import Path
 
 import numpy as np
+from test_gate import DEMO, FAST_PROFILE, _assert_self_contained, _parse_html, runner
 
 from seqgate.cli.app import app
 from seqgate.gate.config import load_gate_config
-from test_gate import DEMO, FAST_PROFILE, _assert_self_contained, _parse_html, runner
 
 MAINT = DEMO / "maintenance"
 

@@ -5,10 +5,10 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
+from test_profile_core import lstm_model, save
 from typer.testing import CliRunner
 
 from seqgate.cli.app import app
-from test_profile_core import lstm_model, save
 
 runner = CliRunner()
 FAST = ["--warmup", "0", "--min-runs", "2", "--min-time", "0"]

@@ -53,6 +53,7 @@ def _print_summary(report: object) -> None:
     verdict = Text("PASSED", "bold green") if r.passed else Text("FAILED", "bold red")  # type: ignore[attr-defined]
     names = [n for n in ("report.html", "report.json", "report.md", "junit.xml", "model.onnx")
              if (r.out_dir / n).is_file()]  # type: ignore[attr-defined]
+    names += [v["file"].rsplit("/", 1)[-1] for v in r.variants or [] if v.get("file")]  # type: ignore[attr-defined]
     c.print(Text.assemble(verdict, f"  reports in {r.out_dir}: {' '.join(names)}"))  # type: ignore[attr-defined]
 
 

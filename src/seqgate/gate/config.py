@@ -45,6 +45,11 @@ default)::
     seq_len = 64
     ms = 5.0
 
+    [[variants]]                       # reduced-precision candidates: seqgate.settings.variants
+    kind = "int8_dynamic"              # int8_dynamic | int8_dynamic_scan | int8_static | float16
+    min_top1_agreement = 0.999         # and/or atol, rtol, max_label_flips, max_forecast_error_increase
+    required = false                   # true: a rejected variant fails the gate
+
 Validation happens before any heavy work and reports every problem in one message (exit 2):
 unknown keys (with a did-you-mean), wrong types, out-of-range or non-finite values, tolerance
 entries without ``match``, budgets without ``ms``, negative seeds, missing files, and a sweep
@@ -55,6 +60,7 @@ cannot take are checked right after export, before verification and profiling st
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -63,10 +69,12 @@ from seqgate.errors import BadInputError
 from seqgate.settings import CONFIG, SETTINGS, Budget, Problems, Tolerances, check_input_memory, parse_settings
 from seqgate.settings import defaults as d
 from seqgate.settings.values import parse_int, problems_message, read_toml, unknown_key
+from seqgate.settings.variants import VariantRule, parse_variants
 
 MODEL_KEYS = ("source", "weights", "inputs", "onnx", "untrained", "expect_other_source", "custom_code")
 EXPORT_KEYS = ("opset", "streaming")
 SECTIONS = ("model", "export", "verify", "profile")
+LISTS = ("variants",)  # top-level arrays of tables
 RENAMED = {("profile", "batch"): "batch_sizes"}  # old spellings, named in the error
 
 
@@ -106,6 +114,7 @@ class GateConfig:
     chunks: tuple[int, ...] = d.CHUNKS  # [profile] chunks (streaming files)
     call_budgets: tuple[Budget, ...] = ()  # [[profile.call_budget]] (streaming files)
     lengths: str | Path = "full"  # [profile] lengths: "full", "uniform" or a recording (resolved)
+    variants: tuple[VariantRule, ...] = ()  # [[variants]]: reduced-precision candidates and their rules
 
     @property
     def base(self) -> Path:
@@ -146,10 +155,13 @@ def load_gate_config(path: str | Path) -> GateConfig:
     data = read_toml(p, "gate config")
     problems = Problems()
     for key in data:
-        if key not in SECTIONS:
-            problems.add(unknown_key(key, SECTIONS, "section "))
+        if key not in SECTIONS and key not in LISTS:
+            problems.add(unknown_key(key, SECTIONS + LISTS, "section "))
     model, export, verify, profile = (_table(data, s, problems) for s in SECTIONS)
     cfg = _assemble(problems, p, "profile" in data, model, export, verify, profile)
+    variants = problems.take(parse_variants, data.get("variants", []), "[[variants]]")
+    if variants:
+        cfg = dataclasses.replace(cfg, variants=variants)
     if problems.items:
         raise BadInputError(problems_message(f"gate config {p}", problems.items))
     return cfg

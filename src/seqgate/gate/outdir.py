@@ -30,8 +30,10 @@ from collections.abc import Iterator
 from pathlib import Path
 
 from seqgate.errors import BadInputError
+from seqgate.settings.variants import VARIANT_KINDS, variant_file_name
 
-GATE_FILES = frozenset({"model.onnx", "report.json", "report.md", "junit.xml", "report.html"})
+GATE_FILES = frozenset({"model.onnx", "report.json", "report.md", "junit.xml", "report.html",
+                        *(variant_file_name(k) for k in VARIANT_KINDS)})  # + accepted variants
 _RENAME_EXCHANGE = 2  # linux/fs.h
 
 

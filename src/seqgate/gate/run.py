@@ -19,6 +19,10 @@ Contract:
   the reason), ``verify`` (every output and hidden state within tolerance on every recording) and,
   when the config has a ``[profile]`` table, ``latency`` (every budget holds).
   The gate passes only when every check that ran passed (exit 0); otherwise exit 1.
+- Variants (``[[variants]]``, ``seqgate.variants.step``): after ``verify``, each listed
+  reduced-precision kind is made and verified under its own rule, timed in the same profile
+  sweep, and written as ``model.<kind>.onnx`` when accepted; the fastest accepted one is marked.
+  The ``variants`` check fails only for a rejected variant the config marks ``required``.
 - Outputs, each written atomically: ``model.onnx``, ``report.json`` (``seqgate.gate/1``, embedding
   the verify and profile reports), ``report.md``, ``junit.xml``, ``report.html`` (self-contained).
 """
@@ -62,6 +66,7 @@ class GateReport:
     files: dict[str, str] = field(default_factory=dict)
     model_name: str = ""
     build_dir: Path | None = None  # where the run writes; becomes out_dir at the end
+    variants: list[dict[str, Any]] | None = None  # one entry per [[variants]] rule (seqgate.variants.step)
     stage: str = "export"  # the step running now; names the failed check when a step raises
 
     @property
@@ -101,6 +106,7 @@ class GateReport:
             "error": self.error,
             "verify": self.verify,
             "profile": self.profile,
+            "variants": self.variants,
             "provenance": {"files": self.files,
                            "model_sha256": self.files.get(str(self.work_dir / "model.onnx"))},
             "untrained": any(c.get("untrained") for c in self.checks),
@@ -228,9 +234,29 @@ def _run_checks(report: GateReport, progress: Progress) -> None:
     _check_lengths(cfg, model)
     report.stage = "verify"
     _verify(report, model_path, weights, progress)
+    made: dict[str, Any] = {}
+    if cfg.variants:
+        report.stage = "variants"
+        made = _make_variants(report, model_path, weights, progress)
     if cfg.profile_enabled:
         report.stage = "latency"
-        _profile(report, model_path, weights, progress)
+        _profile(report, model_path, weights, progress, made)
+    if cfg.variants and report.variants is not None:
+        from seqgate.variants.step import conclude
+
+        report.checks.append(conclude(report.variants, report.profile))
+
+
+def _make_variants(report: GateReport, model_path: Path, weights: str | None,
+                   progress: Progress) -> dict[str, Any]:
+    from seqgate.variants.step import make_and_verify
+
+    cfg = report.config
+    options = {"source": cfg.source, "weights": weights, "recordings": [str(p) for p in cfg.recordings],
+               "synthetic": cfg.synthetic, "batch_size": cfg.batch_size, "states": cfg.states,
+               "task": cfg.task, "seed": cfg.seed}
+    report.variants, made = make_and_verify(cfg.variants, model_path, options, progress)
+    return made
 
 
 def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
@@ -306,9 +332,10 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
         report.checks.append(streaming_check_entry(vr.streaming))
 
 
-def _profile(report: GateReport, model_path: Path, weights: str | None, progress: Progress) -> None:
+def _profile(report: GateReport, model_path: Path, weights: str | None, progress: Progress,
+             variants: dict[str, Any] | None = None) -> None:
     cfg = report.config
-    pr = _measure(cfg, model_path, weights, progress)
+    pr = _measure(cfg, model_path, weights, progress, variants)
     report.profile = pr.to_dict()
     budgets = report.profile.get("budgets") or []
     missed = [b for b in budgets if not b["passed"]]
@@ -330,14 +357,15 @@ def _profile(report: GateReport, model_path: Path, weights: str | None, progress
     report.checks.append({"name": "latency", "passed": pr.passed, "detail": detail})
 
 
-def _measure(cfg: GateConfig, model_path: Path, weights: str | None, progress: Progress) -> Any:
+def _measure(cfg: GateConfig, model_path: Path, weights: str | None, progress: Progress,
+             variants: dict[str, Any] | None = None) -> Any:
     from seqgate.profile.run import profile_model
 
     return profile_model(
         model_path, seq_lens=cfg.seq_lens, batch_sizes=cfg.batch_sizes, threads=cfg.threads, warmup=cfg.warmup,
         min_runs=cfg.min_runs, min_time=cfg.min_time, budgets=cfg.budgets, percentile=cfg.percentile,
         source=cfg.source if cfg.compare_source else None,
-        weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=progress,
+        weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=progress, variants=variants,
         chunks=cfg.chunks, call_budgets=cfg.call_budgets, lengths=cfg.lengths,
     )
 

@@ -22,7 +22,11 @@ Measurement hygiene (the contract of :func:`profile_model`):
   tail padded (``seqgate.profile.inputs``); such points are labelled ``padded`` and never judged
   by a budget;
 - settings are parsed by ``seqgate.settings`` (defaults there too); a sweep whose inputs alone
-  would not fit in memory is refused before anything is timed.
+  would not fit in memory is refused before anything is timed;
+- ``variants`` (label → ONNX ModelProto with the same inputs, e.g. INT8 variants): each is timed
+  at every point right after the float32 file, on the same inputs, as runtime
+  ``onnxruntime:<label>``; its ``speedup`` is float32 p50 / variant p50 (how many times faster
+  than the float32 file). Budgets are still judged on the float32 file only.
 """
 
 from __future__ import annotations
@@ -31,7 +35,7 @@ import gc
 import math
 import os
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -122,6 +126,16 @@ def _sweep_lengths(axes: Any, seq_lens: list[int], budgets: list[Budget], notes:
     return sorted(set(seq_lens) | set(extra))
 
 
+def variant_speedups(points: list[Point], variant_points: list[Point]) -> list[Point]:
+    """``variant_points`` with ``speedup`` = float32 ONNX Runtime p50 / variant p50 at the same point."""
+    base = {p.key(): p for p in points if p.runtime == ONNXRUNTIME}
+    for p in variant_points:
+        b = base.get(p.key())
+        if b is not None and p.stats.p50_ms > 0:
+            p.speedup = b.stats.p50_ms / p.stats.p50_ms
+    return variant_points
+
+
 def lengths_to_measure(model: Any, seq_lens: Sequence[int], budgets: Sequence[Budget],
                        batch_sizes: Sequence[int] = d.BATCH_SIZES) -> list[int]:
     """The lengths a profile of ``model`` would measure; ``BadInputError`` for budgets it cannot take
@@ -181,6 +195,7 @@ def profile_model(
     chunks: str | Sequence[int] = d.CHUNKS,
     call_budgets: Sequence[str | Budget] = (),
     lengths: str | os.PathLike[str] = d.LENGTHS,
+    variants: Mapping[str, Any] | None = None,
 ) -> ProfileReport:
     """Measure ``model_path`` over the sweep and judge the budgets (module docstring). Bad arguments or
     files (parsed by ``seqgate.settings``) raise ``BadInputError`` (exit 2) before anything is timed."""
@@ -195,21 +210,18 @@ def profile_model(
     stream_model = load_onnx(path)  # a streaming file: the sweep times its ordinary graph
     model = ordinary_view(stream_model) if is_streaming(stream_model) else stream_model
     notes: list[str] = []
-    plans = plan_inputs(model)
-    axes = model_axes(model, plans)
-    lengths = _sweep_lengths(axes, list(opts["seq_lens"]), budget_list, notes)
-    batch_list = _sweep_batches(axes, list(opts["batch_sizes"]), notes)
-    thread_list = list(opts["threads"])
-    _check_memory(plans, lengths, batch_list)
+    plans, axes, lengths, batch_list, thread_list = _plan_sweep(model, opts, budget_list, notes)
     draws = _length_draws(opts["lengths"], model, plans, notes)
     src = _parse_source(source, weights)
     _note_oversubscription(thread_list, notes)
     cost = summary(model)  # one pass of the cost model (two shape inferences) for every length
-    sweep = _Sweep(model, plans, _open_runner(src, model, thread_list), seed, counts, progress or SILENT)
+    sweep = _Sweep(model, plans, _open_runner(src, model, thread_list), seed, counts, progress or SILENT,
+                   variants)
     sweep.draws, sweep.cost = draws, cost
     points, sessions = sweep.run(thread_list, batch_list, lengths)
     notes.extend(sweep.notes)
     attach_speedups(points)
+    points += variant_speedups(points, sweep.variant_points)
     _note_short_tails(points, q, notes)
     fits = fits_for(points, q, budget_list, notes)
     return ProfileReport(
@@ -287,6 +299,18 @@ def _model_record(path: Path, cost: dict[str, Any], plans: list[Any], axes: Any)
             "fixed_time": axes.fixed_time, "fixed_batch": axes.fixed_batch}
 
 
+def _plan_sweep(model: Any, opts: dict[str, Any], budget_list: list[Budget],
+                notes: list[str]) -> tuple[Any, ...]:
+    """Input plans, axes, and the lengths, batch sizes and thread counts to measure (memory checked)."""
+    plans = plan_inputs(model)
+    axes = model_axes(model, plans)
+    lengths = _sweep_lengths(axes, list(opts["seq_lens"]), budget_list, notes)
+    batch_list = _sweep_batches(axes, list(opts["batch_sizes"]), notes)
+    thread_list = list(opts["threads"])
+    _check_memory(plans, lengths, batch_list)
+    return plans, axes, lengths, batch_list, thread_list
+
+
 def _note_short_tails(points: list[Point], q: int, notes: list[str]) -> None:
     if q == 99 and min(p.stats.runs for p in points) < 100:
         notes.append("some points have fewer than 100 runs: their p99 is close to their max; raise "
@@ -349,7 +373,8 @@ class _Sweep:
     """The nested loop threads → batch → T, ONNX Runtime then the source at each point."""
 
     def __init__(self, model: Any, plans: list[InputPlan], runner: Any, seed: int,
-                 counts: tuple[int, int, float], progress: Progress) -> None:
+                 counts: tuple[int, int, float], progress: Progress,
+                 variants: Mapping[str, Any] | None = None) -> None:
         self.model, self.plans, self.runner, self.seed = model, plans, runner, seed
         self.counts = counts
         self.progress = progress
@@ -357,12 +382,14 @@ class _Sweep:
         self.agreement: tuple[bool, str] | None = None
         self.draws: tuple[str, Any, int] | None = None  # (label, recorded lengths or None, min length)
         self.cost: dict[str, Any] = {"macs_per_sequence": 0, "macs_per_step": 0}
+        self.variants: dict[str, Any] = dict(variants or {})
+        self.variant_points: list[Point] = []
 
     def run(self, thread_list: list[int], batch_list: list[int],
             lengths: list[int]) -> tuple[list[Point], list[dict[str, Any]]]:
         from seqgate.runtimes.onnx import OnnxRunner
 
-        per_point = (2 if self.runner else 1) * (2 if self.draws else 1)
+        per_point = (2 if self.runner else 1) * (2 if self.draws else 1) + len(self.variants)
         total = len(thread_list) * len(batch_list) * len(lengths) * per_point
         self.progress.start(f"profiling {total} points", total)
         points: list[Point] = []
@@ -370,10 +397,12 @@ class _Sweep:
         for th in thread_list:
             ort = OnnxRunner(self.model, [], th, timing=True)
             sessions.append(ort.recorded)
+            others = {f"{ONNXRUNTIME}:{k}": OnnxRunner(m, [], th, timing=True)
+                      for k, m in self.variants.items()}
             for b in batch_list:
                 for t in lengths:
                     feeds = make_inputs(self.plans, b, t, self.seed)
-                    points += self._measure(ort, feeds, (t, b, th), "full", b * t)
+                    points += self._measure(ort, feeds, (t, b, th), "full", b * t, others)
                     if self.draws is not None:
                         label, recorded, min_length = self.draws
                         rows = draw_lengths(recorded, b, t, self.seed, min_length)
@@ -383,8 +412,8 @@ class _Sweep:
         return points, sessions
 
     def _measure(self, ort: Any, feeds: dict[str, Any], at: tuple[int, int, int], label: str,
-                 valid: int) -> list[Point]:
-        """ONNX Runtime's point at ``at = (T, batch, threads)``, then the source's beside it."""
+                 valid: int, others: dict[str, Any] | None = None) -> list[Point]:
+        """ONNX Runtime's point at ``at = (T, batch, threads)``, the variants' (``others``), the source's."""
         t, b, th = at
         macs = self.cost["macs_per_sequence"] + round(self.cost["macs_per_step"] * valid / b)
         shown = "" if label == "full" else f" padded ({label})"
@@ -394,6 +423,7 @@ class _Sweep:
             out.append(Point(t, b, th, ONNXRUNTIME, summarize_ns(time_call(call, *self.counts)), macs,
                              lengths=label, valid_steps=valid))
             self.progress.advance(1)
+            self._time_variants(others or {}, feeds, at, macs)
             if self.runner is not None:
                 self.progress.advance(0, f"{self.runner.runtime} T={t} batch={b} threads={th}{shown}")
                 src = self._source_point(call, feeds, t, b, th, macs)
@@ -401,6 +431,17 @@ class _Sweep:
                 out.append(src)
                 self.progress.advance(1)
         return out
+
+    def _time_variants(self, others: dict[str, Any], feeds: dict[str, Any], point: tuple[int, int, int],
+                       macs: int) -> None:
+        """Each variant at this point, right after the float32 file (same inputs); see the docstring."""
+        t, b, th = point
+        for label, runner in others.items():
+            with runner.timed_call(feeds) as vcall:
+                self.progress.advance(0, f"{label} T={t} batch={b} threads={th}")
+                stats = summarize_ns(time_call(vcall, *self.counts))
+                self.variant_points.append(Point(t, b, th, label, stats, macs))
+                self.progress.advance(1)
 
     def _source_point(self, ort: Callable[[], Any], feeds: dict[str, Any], t: int, b: int, th: int,
                       macs: int) -> Point:

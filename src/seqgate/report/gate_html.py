@@ -4,7 +4,9 @@ Order, for a release reviewer: the verdict and the table of checks; the first di
 verification failed; a chart of per-step error for each time-indexed probe; the tensor table
 and verify's warnings; for a model taking lengths or a mask, the mask chart
 (``report.mask_chart``); the latency-vs-sequence-length chart with budgets (padded batches as
-dotted lines of their own) and the latency tables; provenance (hashes, versions, CPU). Input is
+dotted lines of their own) and the latency tables; the reduced-precision variants (table of
+accuracy cost, speed-up, size and verdict, then each variant's checks and per-step error
+curves); provenance (hashes, versions, CPU). Input is
 the gate report dict (``schema: "seqgate.gate/1"``).
 """
 
@@ -350,6 +352,52 @@ def _provenance(report: dict[str, Any]) -> str:
     return "".join(parts)
 
 
+def _variant_row(v: dict[str, Any]) -> list[str]:
+    f = v.get("figures") or {}
+    fc = f.get("forecast") or {}
+    int8 = sum(n["precision"] == "int8" for n in v.get("nodes", []))
+    size = v.get("size_bytes")
+    verdict = ("not made" if not v.get("made") else "<b>accepted, chosen</b>" if v.get("chosen")
+               else _mark(bool(v.get("accepted"))).replace("pass", "accepted").replace("fail", "rejected"))
+    return [_e(v["kind"]), verdict, f"{int8} of {len(v.get('nodes', []))}", _fmt(f.get("max_abs")),
+            "" if f.get("top1_agreement") is None else f"{f['top1_agreement']:.4%}",
+            _fmt(f.get("label_flips", "")),
+            "" if not fc else f"{fc['relative_increase']:+.3%}", _fmt(v.get("speedup")),
+            _fmt(v.get("speedup_vs_source")),
+            "" if size is None else f"{size / 1024:.1f} KiB ({size / v['float32_size_bytes']:.0%})"]
+
+
+def _precisions(v: dict[str, Any]) -> list[str]:
+    """``int8: node, node`` / ``float32: node`` lines: what the quantizer changed and what it left."""
+    by: dict[str, list[str]] = {}
+    for n in v.get("nodes", []):
+        by.setdefault(n["precision"], []).append(f"{n['node']} ({n['op']})")
+    return [f"{p}: {', '.join(names)}" for p, names in sorted(by.items())]
+
+
+def _variants_section(variants: list[dict[str, Any]] | None) -> str:
+    """The variant table, then each variant's checks, notes and per-step error curves."""
+    if not variants:
+        return ""
+    head = ["variant", "verdict", "int8 nodes", "max |Δ|", "top-1 agreement", "label flips",
+            "forecast MAE change", "speed-up vs float32", "vs source", "size (of float32)"]
+    parts = ["<h2>Reduced-precision variants</h2><p class='note'>Accuracy cost against the source "
+             "framework on the recorded windows; speed-up = float32 ONNX Runtime (or source) p50 / variant "
+             "p50, geometric mean over the profile points. Accepted files are in the output folder.</p>",
+             _table(head, [_variant_row(v) for v in variants], {3, 5, 6, 7, 8})]
+    for v in variants:
+        notes = [*v.get("notes", []), *_precisions(v)]
+        parts.append(f"<h3>{_e(v['kind'])}</h3><ul>" + "".join(
+            f"<li>{_mark(c['passed'])} {_e(c['name'])}: {_e(c['detail'])}</li>" for c in v.get("checks", []))
+            + "".join(f"<li class='note'>{_e(n)}</li>" for n in notes) + "</ul>")
+        tensors = [{"name": k, "per_step_max_abs": c, "atol": v["rule"].get("atol") or 0}
+                   for k, c in ((v.get("figures") or {}).get("drift") or {}).items()]
+        img = drift_chart(tensors, f"{v['kind']}: per-step max |variant − source|") if tensors else None
+        if img:
+            parts.append(f"<img alt='per-step error of {_e(v['kind'])}' src='{img}'>")
+    return "".join(parts)
+
+
 def render_gate_html(report: dict[str, Any]) -> str:
     """The whole HTML document for a gate report dict."""
     passed = bool(report.get("passed"))
@@ -370,6 +418,7 @@ def render_gate_html(report: dict[str, Any]) -> str:
         streaming_html((report.get("verify") or {}).get("streaming")),
         mask_section(report.get("verify")),
         _profile_section(report.get("profile"), pct),
+        _variants_section(report.get("variants")),
         _provenance(report),
         "<h2>What this report shows</h2><p class='note'>Passing shows that the exported ONNX graph computes "
         "what the trained model computes within the stated tolerances on the windows checked, and that it "

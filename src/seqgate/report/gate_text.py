@@ -65,6 +65,8 @@ def gate_markdown(d: dict[str, Any]) -> str:
         lines += _verify_lines(d["verify"])
     if d.get("profile"):
         lines += _latency_lines(d["profile"])
+    if d.get("variants"):
+        lines += variant_lines(d["variants"])
     lines += ["", "## Provenance", ""]
     if prov:
         lines += _provenance_lines(prov)
@@ -78,6 +80,24 @@ def gate_markdown(d: dict[str, Any]) -> str:
         "fit for a safety-relevant use.",
     ]
     return "\n".join(lines) + "\n"
+
+
+def variant_lines(variants: list[dict[str, Any]]) -> list[str]:
+    """The variant table: accuracy cost on recorded windows, speed-up (geometric mean), size, verdict."""
+    lines = ["", "## Reduced-precision variants", "",
+             "| variant | verdict | max \\|Δ\\| | top-1 agreement | label flips | forecast MAE change | "
+             "speed-up vs float32 | vs source | size (bytes) |", "|---|---|---|---|---|---|---|---|---|"]
+    for v in variants:
+        f = v.get("figures") or {}
+        fc = f.get("forecast")
+        verdict = ("not made" if not v.get("made") else "accepted, chosen" if v.get("chosen")
+                   else "accepted" if v.get("accepted") else "rejected")
+        top1 = f.get("top1_agreement")
+        lines.append(f"| {v['kind']} | {verdict} | {_g(f.get('max_abs'))} | "
+                     f"{'—' if top1 is None else f'{top1:.4%}'} | {_g(f.get('label_flips'))} | "
+                     f"{'—' if not fc else format(fc['relative_increase'], '+.3%')} | {_g(v.get('speedup'))} | "
+                     f"{_g(v.get('speedup_vs_source'))} | {_g(v.get('size_bytes'))} |")
+    return lines
 
 
 def _verify_lines(v: dict[str, Any]) -> list[str]:

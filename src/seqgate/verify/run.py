@@ -27,6 +27,8 @@ Contract:
   against those the ONNX file records; the result is the report's ``provenance`` section, and a
   difference, or an untrained export, is also a warning. It does not change the verdict, which
   is about what the files compute; the gate makes provenance its own check.
+- ``observe(recording, first_window, onnx_outputs, source_outputs)``, when given, sees every
+  batch's outputs by tensor name (a variant's task-level figures are computed this way).
 - The ONNX file's inputs must be the source model's (names; ranks and fixed dims): a file whose
   inputs or outputs do not fit is bad input (exit 2) naming what differs.
 """
@@ -201,6 +203,7 @@ class Comparer:
         self.batch_dims = {s.window_dims[0] for s in specs if s.dims and isinstance(s.window_dims[0], str)}
         self.batch_axis: dict[str, int] = {}
         self.where = ("the ONNX file", "the source")  # (model label, source text) for messages
+        self.observe: Any = None  # called (recording, first window, onnx outputs, source outputs) per batch
 
     def _find_batch_axis(self, name: str, shape: tuple[int, ...], n: int) -> int:
         """Outputs may hold the windows on another axis (PyTorch ``h_n`` is ``[L·D, N, H]``)."""
@@ -256,6 +259,8 @@ class Comparer:
                 check[0] = False
             if not stats:
                 stats = self.new_stats(feeds, s)
+            if self.observe is not None:
+                self.observe(rec, start, a, s)
             score = np.zeros(next(iter(feeds.values())).shape[0])
             for t in self.infos:
                 _check_shapes(t, a[t.name], s[t.name], self.where)
@@ -345,6 +350,7 @@ def verify_model(
     task: str | None = d.TASK,
     seed: int = d.SEED,
     chunk: int = d.CHUNK,
+    observe: Any = None,
 ) -> VerifyReport:
     """Compare the ONNX file with its source on every window; see the module docstring.
 
@@ -371,13 +377,9 @@ def verify_model(
     warnings += [f"tolerance pattern {p!r} matches no tensor" for p in tol.unmatched([t.name for t in infos])]
     onnx_runner, src_runner = _runners(model, src, probes, states, recs, specs, str(path))
     comparer = Comparer(infos, tol, _classes(model, task), specs, output_dims(model))
-    comparer.where = (str(path), src.text)
+    comparer.where, comparer.observe = (str(path), src.text), observe
     results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress or SILENT)
-    oracle_out = None
-    if oracle:
-        from seqgate.verify.oracle import run_oracle
-
-        oracle_out = run_oracle(model, probes, infos, results, onnx_runner, src_runner, tol)
+    oracle_out = _oracle(model, probes, infos, results, onnx_runner, src_runner, tol) if oracle else None
     first = _first_divergence(infos, results)
     streaming = _streaming(stream_model, recs, specs, src_runner, tol, opts["chunk"])
     return VerifyReport(
@@ -389,6 +391,14 @@ def verify_model(
                   "atol": tol.atol, "rtol": tol.rtol, "tolerances_file": tolerances,
                   "tolerance": [o.to_json() for o in tol.overrides]},
         environment=environment(), oracle=oracle_out, warnings=warnings, provenance=prov)
+
+
+def _oracle(model: Any, probes: list[Probe], infos: list[Any], results: Any, onnx_runner: Any,
+            src_runner: Any, tol: Tolerances) -> Any:
+    """The ``onnx.reference`` third opinion on the worst windows (``seqgate.verify.oracle``)."""
+    from seqgate.verify.oracle import run_oracle
+
+    return run_oracle(model, probes, infos, results, onnx_runner, src_runner, tol)
 
 
 def _split_streaming(model: Any) -> tuple[Any, Any]:
