@@ -42,6 +42,7 @@ from seqgate.export.torch.inputs import (
     parse_input_options,
     record_runs,
 )
+from seqgate.export.torch.structured import refuse_annotated, refuse_read_as_structure
 from seqgate.export.torch.untraceable import untraceable
 from seqgate.export.torch.values import TV, UNKNOWN, TorchCall, source_line
 from seqgate.sources.spec import Source
@@ -77,8 +78,10 @@ def export_torch_module(
     label = label or type(module).__name__
     user = parse_input_options(inputs)
     plan = forward_params(module, user, label)
+    refuse_annotated(module, user, label)
     gm = _loop_capture(module, plan, user, label, []) if _has_cells(module) else _trace_or_loops(
         module, plan, user, label)
+    refuse_read_as_structure(module, gm, plan.params, plan.concrete, label)
     infer_inputs(gm, plan, user, label)
     metas, sa, sb = record_runs(gm, plan, label)
     b = GraphBuilder(opset, graph_name=type(module).__name__, framework="torch")
