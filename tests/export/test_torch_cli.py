@@ -214,7 +214,9 @@ def build():
     r = _invoke("export", "--untrained", f"{py}:build", "--input", "x:batch,time,4",
                 "-o", str(tmp_path / "o.onnx"))
     assert r.exit_code == 3, r.output
-    assert "torch.fx cannot trace" in r.output and "untr.py:" in r.output
+    # a branch on tensor data or a loop over time is named by seqgate's own check (test_torch_branches.py)
+    assert "torch.fx cannot trace" in r.output or case in ("control_flow", "python_loop")
+    assert "untr.py:" in r.output
     for n in needles:
         assert n in r.output, (n, r.output)
 

@@ -201,9 +201,14 @@ def test_tutorial_pattern_with_zero_states(rng: np.random.Generator) -> None:
     assert [i.name for i in model.graph.input] == ["x"]
 
 
-def test_zeros_with_traced_leading_size_says_use_a_tuple() -> None:
-    with pytest.raises(UnsupportedModelError, match=r"pass the sizes as one tuple"):
-        export(Fn(lambda y: torch.zeros(y.size(0), 6) + y), inputs=["x:batch,6"])
+def test_zeros_with_traced_leading_size_exports_with_a_dynamic_batch(rng: np.random.Generator) -> None:
+    # fx alone refuses torch.zeros(size, 6); the value-carrying capture records it with the size
+    # kept dynamic (proved by tracing at two batch sizes), so it exports
+    m = Fn(lambda y: torch.zeros(y.size(0), 6) + y)
+    model = export(m, inputs=["x:batch,6"])
+    for n in (1, 5):
+        feeds = {"x": rand(rng, n, 6)}
+        worst(torch_outputs(m, feeds), run_onnx(model, feeds))
 
 
 class HiddenPair(tnn.Module):

@@ -443,7 +443,7 @@ def _window_sets(model: Any, specs: list[InputSpec], windows: list[str | Path], 
                  batch_size: int, seed: int) -> list[Recording]:
     """The recordings as given, then the synthetic sets (scaled from the first recording's statistics)."""
     from seqgate.verify.padded_steps import add_padding_counts
-    from seqgate.verify.synthetic import read_padding, synthetic_sets
+    from seqgate.verify.synthetic import read_padding, require_steps, synthetic_sets
 
     padding = read_padding(model)
     recs = [load_recording(w, specs) for w in windows]
@@ -451,6 +451,7 @@ def _window_sets(model: Any, specs: list[InputSpec], windows: list[str | Path], 
     if synthetic:
         stats = feature_stats(recs[0], batch_size) if recs else None
         recs += synthetic_sets(specs, stats, seed, padding=padding)
+    require_steps(specs, recs)  # a verification of one step would pass without testing recurrence
     return recs
 
 

@@ -11,6 +11,10 @@ feature is constant; ``μ = 0, σ = 1`` when there is no recording):
 - ``synthetic:long``     — ``N(μ, σ²)`` with 4× the recorded steps, only when the model's time
   axis is dynamic (inputs sharing that symbolic dim all get 4×).
 
+The time axis of an input is the dim whose symbolic name contains ``time`` wherever it sits
+(channels-first ``[batch, features, time]`` models, e.g. ones starting with a Conv1d), else
+axis 1 of a sequence input; without a recording it gets ``DEFAULT_STEPS`` steps.
+
 Padded models (ONNX metadata ``seqgate.padding``, written at export): a lengths input gets the
 full window length in the sets above, and padded sets are added (their notes count the padded
 steps): ``synthetic:padded_random_lengths`` (right padding, lengths uniform in 1..T),
@@ -38,8 +42,24 @@ DEFAULT_STEPS = 16  # window length when there is no recording and the time axis
 KINDS = ("scaled", "zeros", "constants", "extremes", "long")
 
 
+def time_axis(spec: InputSpec) -> int | None:
+    """The time axis of ``spec``'s window layout: the dim whose symbolic name contains ``time``
+    (channels-first ``[batch, features, time]`` has it at axis 2), else axis 1 of a sequence
+    input, else None."""
+    for i, d in enumerate(spec.window_dims):
+        if i and isinstance(d, str) and "time" in d:
+            return i
+    return 1 if spec.is_sequence else None
+
+
+def _time_dynamic(spec: InputSpec) -> bool:
+    t = time_axis(spec)
+    return t is not None and not isinstance(spec.window_dims[t], int)
+
+
 def _default_stats(spec: InputSpec) -> FeatureStats:
-    shape = tuple(d if isinstance(d, int) else (DEFAULT_STEPS if i == 1 and spec.is_sequence else 1)
+    t = time_axis(spec)
+    shape = tuple(d if isinstance(d, int) else (DEFAULT_STEPS if i == t else 1)
                   for i, d in enumerate(spec.window_dims))[1:]
     f = shape[-1] if shape else 1
     return FeatureStats(np.zeros(f), np.ones(f), np.zeros(f), np.ones(f), shape)
@@ -49,6 +69,8 @@ def _draw(kind: str, spec: InputSpec, st: FeatureStats, shape: tuple[int, ...],
           rng: np.random.Generator) -> np.ndarray[Any, Any]:
     n = shape[0]
     mu, sigma = st.mean, np.where(st.std > 0, st.std, 1.0)
+    if mu.shape[-1:] != shape[-1:]:  # channels-first: the last axis is time, stats are per step
+        mu, sigma = np.mean(mu), np.mean(sigma)
     if spec.dtype.kind in "iu":
         # one id range for the whole input: token ids are not per-feature quantities
         lo, hi = int(np.floor(np.min(st.low))), int(np.ceil(np.max(st.high)))
@@ -83,7 +105,7 @@ def synthetic_sets(specs: list[InputSpec], stats: dict[str, FeatureStats] | None
     """One :class:`Recording` per synthetic kind (``long`` only for a dynamic time axis), then
     the padded sets of ``padding`` (module docstring)."""
     per = {s.name: (stats or {}).get(s.name) or _default_stats(s) for s in specs}
-    long_dims = {s.window_dims[1] for s in specs if s.time_dynamic}
+    long_dims = {s.window_dims[time_axis(s) or 1] for s in specs if _time_dynamic(s)}
     out = []
     for k, kind in enumerate(KINDS):
         if kind == "long" and not long_dims:
@@ -92,8 +114,9 @@ def synthetic_sets(specs: list[InputSpec], stats: dict[str, FeatureStats] | None
         arrays = {}
         for s in specs:
             shape = (windows, *per[s.name].shape)
-            if kind == "long" and s.time_dynamic and s.window_dims[1] in long_dims:
-                shape = (windows, 4 * shape[1], *shape[2:])
+            t = time_axis(s)
+            if kind == "long" and t is not None and _time_dynamic(s) and s.window_dims[t] in long_dims:
+                shape = (*shape[:t], 4 * shape[t], *shape[t + 1:])
             x = _draw(kind, s, per[s.name], shape, rng)
             arrays[s.name] = MappedArray(x, f"synthetic:{kind} {s.name!r}")
         _full_lengths(arrays, padding or [], f"synthetic:{kind}")
@@ -102,6 +125,37 @@ def synthetic_sets(specs: list[InputSpec], stats: dict[str, FeatureStats] | None
     if padding:
         out += padded_sets(specs, per, padding, seed, windows, stats is not None)
     return out
+
+
+def steps_exercised(specs: list[InputSpec], recs: list[Recording]) -> int | None:
+    """The longest time axis any set feeds to any input that has one (None: no input has one)."""
+    longest: int | None = None
+    for s in specs:
+        t = time_axis(s)
+        if t is None:
+            continue
+        for r in recs:
+            a = r.arrays.get(s.name)
+            if a is not None and len(a.shape) > t:
+                longest = max(longest or 0, int(a.shape[t]))
+    return longest
+
+
+def require_steps(specs: list[InputSpec], recs: list[Recording]) -> None:
+    """Exit 2 when every set feeds fewer than 2 time steps: recurrence would go untested."""
+    from seqgate.errors import BadInputError
+
+    steps = steps_exercised(specs, recs)
+    if steps is None or steps >= 2:
+        return
+    named = ", ".join(f"{s.name} [{', '.join(str(d) for d in s.window_dims)}] time axis {time_axis(s)}"
+                      for s in specs if time_axis(s) is not None)
+    raise BadInputError(
+        f"this verification would run only {steps} time step (inputs: {named}), so the recurrent "
+        f"state is never carried from one step to the next and a pass would prove nothing. Give "
+        f"recorded windows of at least 2 steps, or export the model with a time axis named time "
+        f"(e.g. --input x:batch,8,time for a channels-first model) so --synthetic can make "
+        f"windows of real length.")
 
 
 def _full_lengths(arrays: dict[str, MappedArray], padding: list[dict[str, Any]], label: str) -> None:

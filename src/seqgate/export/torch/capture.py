@@ -42,6 +42,7 @@ from seqgate.export.torch.inputs import (
     parse_input_options,
     record_runs,
 )
+from seqgate.export.torch.structured import refuse_annotated, refuse_read_as_structure
 from seqgate.export.torch.untraceable import untraceable
 from seqgate.export.torch.values import TV, UNKNOWN, TorchCall, source_line
 from seqgate.sources.spec import Source
@@ -77,8 +78,10 @@ def export_torch_module(
     label = label or type(module).__name__
     user = parse_input_options(inputs)
     plan = forward_params(module, user, label)
+    refuse_annotated(module, user, label)
     gm = _loop_capture(module, plan, user, label, []) if _has_cells(module) else _trace_or_loops(
         module, plan, user, label)
+    refuse_read_as_structure(module, gm, plan.params, plan.concrete, label)
     infer_inputs(gm, plan, user, label)
     metas, sa, sb = record_runs(gm, plan, label)
     b = GraphBuilder(opset, graph_name=type(module).__name__, framework="torch")
@@ -125,7 +128,20 @@ def tracer_class() -> type:
         def is_leaf_module(self, m: Any, qualname: str) -> bool:
             return super().is_leaf_module(m, qualname) or module_mapping(m) is not None
 
+        def call_module(self, m: Any, forward: Any, args: Any, kwargs: Any) -> Any:
+            # nn.Softmax(dim=-1)(scores): a parameter-free module built inside forward is inlined
+            if built_in_forward(self.root, m):
+                return forward(*args, **kwargs)
+            return super().call_module(m, forward, args, kwargs)
+
     return Tracer
+
+
+def built_in_forward(root: Any, m: Any) -> bool:
+    """Is ``m`` a module without parameters or buffers that ``root`` does not hold (made per call)?"""
+    if any(x is m for x in root.modules()):
+        return False
+    return next(m.parameters(), None) is None and next(m.buffers(), None) is None
 
 
 def _has_cells(module: Any) -> bool:
@@ -135,16 +151,27 @@ def _has_cells(module: Any) -> bool:
 
 
 def _trace_or_loops(module: Any, plan: Plan, user: dict[str, Any], label: str) -> Any:
-    """fx's own trace; when it fails and user-written cells exist, the loop capture."""
+    """fx's own trace; when it fails, the loop capture (user-written cells, or Python branches on
+    sizes fixed for the export: ``branches``). Without cells, fx's refusal stands unless the
+    loop capture names a branch or size that cannot be fixed."""
+    from seqgate.export.torch.branches import BranchError
     from seqgate.export.torch.loops import user_cell_candidates
 
     try:
         return trace(module, plan.concrete, label)
-    except UnsupportedModelError:
+    except UnsupportedModelError as original:
         cells = user_cell_candidates(module)
-        if not cells:
+        if cells:
+            return _loop_capture(module, plan, user, label, cells)
+        mine = dict(user)
+        try:
+            gm = _loop_capture(module, plan, mine, label, [])
+        except BranchError:
             raise
-        return _loop_capture(module, plan, user, label, cells)
+        except SeqgateError:
+            raise original from None
+        user.update(mine)
+        return gm
 
 
 def _loop_capture(module: Any, plan: Plan, user: dict[str, Any], label: str, cells: list[Any]) -> Any:

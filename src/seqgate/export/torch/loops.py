@@ -62,10 +62,13 @@ def _proxy_class() -> type:
     import torch.fx
     from torch.fx.proxy import TraceError
 
+    from seqgate.export.torch.branches import record_number
+
     class ValueProxy(torch.fx.Proxy):
         def __index__(self) -> int:
             v = self.tracer.value_of(self)  # type: ignore[attr-defined]
             if isinstance(v, int) and not isinstance(v, bool):
+                record_number(self.tracer.decisions, v)  # type: ignore[attr-defined]
                 return v
             raise TraceError(f"{self.node.name} is a tensor, not an integer")
 
@@ -73,7 +76,9 @@ def _proxy_class() -> type:
             return self.__index__()
 
         def __len__(self) -> int:
-            return len(self.tracer.value_of(self))  # type: ignore[attr-defined]
+            n = len(self.tracer.value_of(self))  # type: ignore[attr-defined]
+            record_number(self.tracer.decisions, n)  # type: ignore[attr-defined]
+            return n
 
         def __iter__(self) -> Any:
             return iter([self[i] for i in range(len(self.tracer.value_of(self)))])  # type: ignore[attr-defined]
@@ -142,6 +147,8 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
     ``computing`` is set while a sample value is evaluated, so module calls inside that
     evaluation run eagerly instead of being recorded.
     """
+    from seqgate.export.torch.branches import Decisions, decide
+
     proxy_class = _proxy_class()
 
     class ValueTracer(_SampleValues, base):  # type: ignore[misc, valid-type]
@@ -150,6 +157,10 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
             self.inputs = inputs
             self.values: dict[Any, Any] = {}
             self.computing = False
+            self.decisions = Decisions()
+
+        def to_bool(self, obj: Any) -> bool:
+            return decide(self, obj, self.decisions)
 
         def proxy(self, node: Any) -> Any:
             return proxy_class(node, self)
@@ -195,7 +206,8 @@ def sample_inputs(module: Any, params: list[str], concrete: dict[str, Any],
         dims[missing[0]] = ("batch", "time", guess)
     elif missing:
         raise BadInputError(
-            f"{label} runs a recurrent cell in a Python loop; seqgate traces it on sample inputs and "
+            f"{label} runs a recurrent cell in a Python loop or branches on sizes; seqgate traces it on "
+            f"sample inputs and "
             f"cannot infer the shape of forward() input(s) {', '.join(missing)}. Pass --input "
             f"NAME:DIM,DIM,... for each, e.g. --input {missing[0]}:batch,time,8.")
     return dims
@@ -208,6 +220,7 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     ``user_cells`` are traced as leaves; one that is not part of a folded loop is traced again
     inlined (a shared block called twice stays an ordinary part of the graph).
     """
+    from seqgate.export.torch.branches import compare
     from seqgate.export.torch.inputs import InputSpec, Plan, sample_args, symbol_values
     from seqgate.export.torch.loopfold import canonical, cell_loop_class, fold_loops
 
@@ -215,10 +228,13 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     plan = Plan(params=params, concrete=concrete, inputs=specs)
     leaves = frozenset(id(m) for m in user_cells)
     graphs: list[Any] = []
-    for sizes, seed in zip(symbol_values(specs), (0, 1), strict=True):
+    decided: list[Any] = []
+    sizes_ab = symbol_values(specs)
+    for sizes, seed in zip(sizes_ab, (0, 1), strict=True):
         args = dict(zip(params, sample_args(plan, sizes, seed), strict=True))
         for _ in range(2):
-            gm, values = _trace_once(module, make_value_tracer(base_tracer, args, leaves), concrete, label)
+            gm, values, decisions = _trace_once(
+                module, make_value_tracer(base_tracer, args, leaves), concrete, label)
             fold_loops(gm, values, lambda m, ls=leaves: isinstance(m, cell_classes()) or id(m) in ls, label)
             left = {id(gm.get_submodule(n.target)) for n in gm.graph.nodes
                     if n.op == "call_module" and id(gm.get_submodule(n.target)) in leaves
@@ -227,6 +243,10 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
                 break
             leaves = leaves - left
         graphs.append(gm)
+        decided.append(decisions)
+    # without a cell loop to fold, a size read as a Python number must be the same at both sizes
+    numbers = not user_cells and not has_cells(module)
+    compare(decided[0], decided[1], *sizes_ab, dims, numbers, label)
     a, b = canonical(graphs[0]), canonical(graphs[1])
     if a != b:
         raise UnsupportedModelError(label, [_difference(graphs[0], graphs[1], a, b)])
@@ -234,9 +254,10 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
 
 
 def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
-                label: str) -> tuple[Any, dict[Any, Any]]:
+                label: str) -> tuple[Any, dict[Any, Any], Any]:
     import torch.fx
 
+    from seqgate.export.torch.branches import BranchError, DataDependent
     from seqgate.export.torch.untraceable import untraceable
 
     tracer = tracer_cls()
@@ -244,9 +265,11 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
     try:
         with _factories_recorded(tracer):
             graph = tracer.trace(module, concrete_args=dict(concrete) or None)
+    except DataDependent as e:
+        raise BranchError(label, [e.unsupported]) from None
     except Exception as e:
         raise UnsupportedModelError(label, [untraceable(module, e)]) from None
-    return torch.fx.GraphModule(tracer.root, graph, type(module).__name__), tracer.values
+    return torch.fx.GraphModule(tracer.root, graph, type(module).__name__), tracer.values, tracer.decisions
 
 
 @contextmanager
