@@ -34,7 +34,7 @@ Contract:
 from __future__ import annotations
 
 import heapq
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -241,15 +241,23 @@ class Comparer:
 
     def run_set(self, rec: Recording, onnx_runner: Any, src_runner: Any, batch: int,
                 progress: Progress, check: list[bool]) -> _SetResult:
+        return self.run_batches(rec, rec.batches(batch), onnx_runner, src_runner, progress, check)
+
+    def run_batches(self, rec: Recording, batches: Iterable[tuple[int, dict[str, np.ndarray[Any, Any]]]],
+                    onnx_runner: Any, src_runner: Any, progress: Progress, check: list[bool]) -> _SetResult:
+        """Compare ``batches`` of ``rec`` (any run of its windows); batch k+1's inference overlaps
+        batch k's comparison (``seqgate.verify.pipeline``)."""
+        from seqgate.verify.pipeline import inferred_batches
+
         stats: dict[str, TensorStats] = {}
         worst: list[tuple[float, int, dict[str, np.ndarray[Any, Any]]]] = []
-        for start, feeds in rec.batches(batch):  # window-first arrays
-            model_feeds = to_model_layout(feeds, self.specs)
-            a = onnx_runner.run(model_feeds)
-            s = src_runner.run(model_feeds)
-            if check[0]:
-                _self_check(src_runner, model_feeds, s)
-                check[0] = False
+
+        def first(model_feeds: dict[str, np.ndarray[Any, Any]], got: dict[str, Any]) -> None:
+            check[0] = False
+            _self_check(src_runner, model_feeds, got)
+
+        pipeline = inferred_batches(batches, onnx_runner, src_runner, self.specs, first if check[0] else None)
+        for start, feeds, model_feeds, a, s in pipeline:
             if not stats:
                 stats = self.new_stats(feeds, s)
             score = np.zeros(next(iter(feeds.values())).shape[0])
@@ -425,12 +433,17 @@ def _runners(model: Any, src: Source, probes: list[Probe], states: bool, recs: l
     """ONNX Runtime's runner and the source framework's, after checking the file fits the source."""
     from seqgate.runtimes.factory import load_source_model, open_source_runner
     from seqgate.runtimes.onnx import OnnxRunner
+    from seqgate.verify.pipeline import thread_plan
 
-    onnx_runner = OnnxRunner(model, probes)
-    loaded = load_source_model(src)
+    plan = thread_plan()  # the two runtimes run side by side (seqgate.verify.pipeline)
+    onnx_runner = OnnxRunner(model, probes, threads=plan.onnx)
+    loaded = load_source_model(src, plan.source)
     _check_interface(model, src, loaded, recs, specs, onnx_runner, label)
     output_names = [o.name for o in model.graph.output]
-    return onnx_runner, open_source_runner(src, probes, output_names, states, loaded=loaded)
+    src_runner = open_source_runner(src, probes, output_names, states, loaded=loaded)
+    if src.framework == "torch":
+        src_runner.run_threads = plan.source
+    return onnx_runner, src_runner
 
 
 def _classes(model: Any, task: str | None) -> set[str]:
