@@ -26,6 +26,8 @@ STATES = True
 TASK = "auto"
 TASKS = ("auto", "classify", "regress")
 ORACLE = False
+WORKERS = 0  # 0: verify in this process; N: N Ray workers (an embedded local Ray unless CLUSTER)
+CLUSTER = ""  # "": no cluster; else the address of a running Ray cluster (HOST:PORT)
 # profile
 SEQ_LENS = (16, 64, 256)
 BATCH_SIZES = (1,)

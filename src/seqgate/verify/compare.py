@@ -357,6 +357,19 @@ def merge_stats(parts: list[TensorStats]) -> TensorStats:
     return out
 
 
+def merge_shards(parts: list[TensorStats]) -> TensorStats:
+    """Combine the stats of one tensor over consecutive window ranges of ONE recording, given in
+    recording order: the result is what one pass over all the windows gives — counts, maxima,
+    the worst element (ties: the earliest window), the histogram (so ``p99_abs``) and the
+    per-step curves exactly; the first ``MAX_FLIPS_LISTED`` flipped windows; ``mean_abs`` and
+    ``rms`` up to the order of floating-point summation (~1e-7 relative)."""
+    out = merge_stats(parts)
+    for p in parts:
+        room = MAX_FLIPS_LISTED - len(out.flip_windows)
+        out.flip_windows.extend(p.flip_windows[:max(room, 0)])
+    return out
+
+
 def _num(x: float | None) -> float | None:
     """A plain float; NaN becomes None (errors are never NaN: NaN differences count as +Inf)."""
     if x is None or math.isnan(x):
