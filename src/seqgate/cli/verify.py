@@ -54,6 +54,10 @@ def verify(
         "--task", help="auto: detect softmax/sigmoid outputs; classify: every output holds class scores; "
         "regress: none does.")] = d.TASK,
     seed: Annotated[int, typer.Option("--seed", help="Seed of the synthetic windows.")] = d.SEED,
+    workers: Annotated[int, typer.Option("--workers", help="Check the windows on N Ray workers (a local Ray "
+                                         "unless --cluster; 0: in this process).")] = d.WORKERS,
+    cluster: Annotated[str, typer.Option("--cluster", help="Address HOST:PORT of a running Ray cluster.")] = (
+        d.CLUSTER),
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display and no table.")] = False,
 ) -> None:
     """Replay windows through the source framework and ONNX Runtime; compare outputs and every hidden state."""
@@ -63,7 +67,7 @@ def verify(
 
     problems = Problems()
     raw = {"synthetic": synthetic, "seed": seed, "batch_size": batch_size, "states": states, "task": task,
-           "oracle": oracle}
+           "oracle": oracle, "workers": workers, "cluster": cluster}
     opts = parse_settings("verify", raw, CLI, problems)
     read_tolerances(tolerances, atol, rtol, problems)  # --atol/--rtol with the file they override
     problems.raise_if_any()
@@ -76,7 +80,7 @@ def verify(
             synthetic=opts["synthetic"], atol=atol, rtol=rtol,
             tolerances=str(tolerances) if tolerances else None,
             batch_size=opts["batch_size"], states=opts["states"], oracle=opts["oracle"], progress=progress,
-            task=opts["task"], seed=opts["seed"])
+            task=opts["task"], seed=opts["seed"], workers=opts["workers"], cluster=opts["cluster"])
     _write_reports(rep, report, junit, summary)
     if not quiet:
         _print_table(rep)

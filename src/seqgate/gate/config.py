@@ -24,6 +24,8 @@ default)::
     atol = 1e-4
     rtol = 1e-4
     oracle = false
+    workers = 0                        # Ray workers (0: in-process)
+    cluster = ""                       # running Ray cluster HOST:PORT ("" : local Ray when workers > 0)
 
     [[verify.tolerance]]               # per-tensor override; later matches win per field
     match = "head*"
@@ -97,6 +99,8 @@ class GateConfig:
     onnx: Path | None = None
     untrained: bool = False
     expect_other_source: str | None = None  # the reason the ONNX file may come from other files
+    workers: int = 0  # [verify] workers: Ray workers, 0 = in-process
+    cluster: str = ""  # [verify] cluster: a running Ray cluster's address
 
     @property
     def base(self) -> Path:
@@ -179,6 +183,7 @@ def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any]
         compare_source=pr["compare_source"], budgets=tuple(pr["budget"]), profile_enabled=profile_enabled,
         onnx=files.path(model["onnx"], "[model] onnx") if "onnx" in model else None,
         untrained=_untrained(c, model), expect_other_source=_other_source(c, model),
+        workers=v["workers"], cluster=v["cluster"],
     )
 
 

@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import importlib
 import math
 import os
 import time
@@ -136,6 +137,13 @@ def loopback_environment() -> dict[str, str]:
             "no_proxy": "", "NO_PROXY": ""}
 
 
+def confine_to_loopback(ray: Any) -> None:
+    """Ray reads ``RAY_ENABLE_WINDOWS_OR_OSX_CLUSTER`` once, when it is first imported: when this
+    process imported it earlier, the same switch is set on Ray's constants module (read at call
+    time by its node-address lookup), so the loopback address is not replaced by the interface's."""
+    importlib.import_module("ray._private.ray_constants").ENABLE_RAY_CLUSTER = False
+
+
 @contextlib.contextmanager
 def _environment(values: dict[str, str]) -> Iterator[None]:
     saved = {k: os.environ.get(k) for k in values}
@@ -163,6 +171,8 @@ def ray_session(workers: int, cluster: str) -> Iterator[Any]:
         if ray.is_initialized():
             yield ray
             return
+        if local:
+            confine_to_loopback(ray)
         _init(ray, workers, cluster, local)
         try:
             yield ray
