@@ -71,6 +71,7 @@ class Comparer:
         self.batch_dims = {s.window_dims[0] for s in specs if s.dims and isinstance(s.window_dims[0], str)}
         self.batch_axis: dict[str, int] = {}
         self.where = ("the ONNX file", "the source")  # (model label, source text) for messages
+        self.side_by_side = True  # both runtimes at once (seqgate.verify.pipeline); False on one core
 
     def _find_batch_axis(self, name: str, shape: tuple[int, ...], n: int) -> int:
         """Outputs may hold the windows on another axis (PyTorch ``h_n`` is ``[L·D, N, H]``)."""
@@ -128,7 +129,8 @@ class Comparer:
             check[0] = False
             _self_check(src_runner, model_feeds, got)
 
-        pipeline = inferred_batches(batches, onnx_runner, src_runner, self.specs, first if check[0] else None)
+        pipeline = inferred_batches(batches, onnx_runner, src_runner, self.specs, first if check[0] else None,
+                                    self.side_by_side)
         for start, feeds, model_feeds, a, s in pipeline:
             if not stats:
                 stats = self.new_stats(feeds, s)

@@ -221,6 +221,7 @@ class RangeChecker:
         self.comparer = Comparer(tensor_infos(model, probes), job.tol, set(job.class_names), specs,
                                  output_dims(model))
         self.comparer.where = job.where
+        self.comparer.side_by_side = False  # one CPU per worker: the runtimes take turns
         self.job, self.specs = job, specs
         self._sets: dict[int, Recording] = {}
         self._check = [True]

@@ -65,12 +65,14 @@ def thread_plan(cores: int | None = None) -> ThreadPlan:
 
 def inferred_batches(batches: Iterable[tuple[int, Arrays]], onnx_runner: Any, src_runner: Any,
                      specs: list[InputSpec], first_batch: Callable[[Arrays, Arrays], None] | None = None,
-                     ) -> Iterator[Batch]:
-    """See the module docstring."""
+                     side_by_side: bool = True) -> Iterator[Batch]:
+    """See the module docstring; ``side_by_side=False`` runs the two runtimes one after the other
+    in the producer (one core: running them at once gains nothing)."""
     out: queue.Queue[Any] = queue.Queue(maxsize=1)
     stop = threading.Event()
     producer = threading.Thread(target=_produce, name="seqgate-infer", daemon=True,
-                                args=(batches, onnx_runner, src_runner, specs, first_batch, out, stop))
+                                args=(batches, onnx_runner, src_runner, specs, first_batch, out, stop,
+                                      side_by_side))
     producer.start()
     try:
         while True:
@@ -92,14 +94,15 @@ def inferred_batches(batches: Iterable[tuple[int, Arrays]], onnx_runner: Any, sr
 
 def _produce(batches: Iterable[tuple[int, Arrays]], onnx_runner: Any, src_runner: Any,
              specs: list[InputSpec], first_batch: Callable[[Arrays, Arrays], None] | None,
-             out: queue.Queue[Any], stop: threading.Event) -> None:
+             out: queue.Queue[Any], stop: threading.Event, side_by_side: bool) -> None:
     try:
         with ThreadPoolExecutor(1, thread_name_prefix="seqgate-onnx") as pool:
             for start, feeds in batches:
                 if stop.is_set():
                     return
                 model_feeds = to_model_layout(feeds, specs)
-                onnx_future = pool.submit(onnx_runner.run, model_feeds)
+                run_onnx = pool.submit if side_by_side else _now
+                onnx_future = run_onnx(onnx_runner.run, model_feeds)
                 failed: BaseException | None = None
                 try:
                     s = src_runner.run(model_feeds)
@@ -115,6 +118,20 @@ def _produce(batches: Iterable[tuple[int, Arrays]], onnx_runner: Any, src_runner
         _put(out, stop, _DONE)
     except BaseException as e:  # handed to the consumer, raised there
         _put(out, stop, e)
+
+
+class _Done:
+    """A finished call with a future's ``result()``."""
+
+    def __init__(self, value: Any) -> None:
+        self.value = value
+
+    def result(self) -> Any:
+        return self.value
+
+
+def _now(fn: Callable[[Arrays], Arrays], feeds: Arrays) -> _Done:
+    return _Done(fn(feeds))
 
 
 def _put(out: queue.Queue[Any], stop: threading.Event, item: Any) -> None:

@@ -205,14 +205,12 @@ def verify_model(
 ) -> VerifyReport:
     """Compare the ONNX file with its source on every window; see the module docstring.
 
-    ``workers``/``cluster``: check the windows on Ray workers (``seqgate.verify.cluster``); the
-    report is the one a single process gives, plus a ``workers`` record.
+    ``workers``/``cluster``: on Ray workers (``seqgate.verify.cluster``), same report + ``workers``.
 
     Settings go through the parsers of ``seqgate.settings``; ``tolerances`` is a tolerance file
     (``atol``/``rtol`` on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored).
     """
     from seqgate.onnxfile.load import load_onnx
-    from seqgate.util.environment import environment
 
     opts, tol = _settings(locals())
     synthetic, batch_size, states, oracle, task, seed = (
@@ -234,16 +232,23 @@ def verify_model(
     onnx_runner, src_runner = _runners(model, src, probes, states, recs, specs, str(path))
     comparer = Comparer(infos, tol, _classes(model, task), specs, output_dims(model))
     comparer.where = (str(path), src.text)
-    ray_record = None
-    if opts["workers"] or opts["cluster"]:
-        results, ray_record = _run_on_ray(comparer, recs, path, src, opts, tol, progress or SILENT)
-    else:
-        results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress or SILENT)
+    results, ray_record = _compare_all(comparer, recs, onnx_runner, src_runner, path, src, opts, tol,
+                                       progress or SILENT)
     oracle_out = None
     if oracle:
         from seqgate.verify.oracle import run_oracle
 
         oracle_out = run_oracle(model, probes, infos, results, onnx_runner, src_runner, tol)
+    return _report(infos, results, comparer, path, specs, src, seed, opts, tol, tolerances, oracle_out,
+                   warnings, prov, ray_record)
+
+
+def _report(infos: list[TensorInfo], results: list[SetResult], comparer: Comparer, path: Path,
+            specs: list[InputSpec], src: Source, seed: int, opts: dict[str, Any], tol: Tolerances,
+            tolerances: str | None, oracle_out: Any, warnings: list[str], prov: Any,
+            ray_record: dict[str, Any] | None) -> VerifyReport:
+    from seqgate.util.environment import environment
+
     first = _first_divergence(infos, results)
     return VerifyReport(
         passed=first is None,
@@ -338,6 +343,15 @@ def _run_all(comparer: Comparer, recs: list[Recording], onnx_runner: Any, src_ru
     results = [comparer.run_set(r, onnx_runner, src_runner, batch, progress, check) for r in recs]
     progress.finish()
     return results
+
+
+def _compare_all(comparer: Comparer, recs: list[Recording], onnx_runner: Any, src_runner: Any, path: Path,
+                 src: Source, opts: dict[str, Any], tol: Tolerances,
+                 progress: Progress) -> tuple[list[SetResult], dict[str, Any] | None]:
+    """Every window set compared, in this process or on Ray workers (then also their record)."""
+    if opts["workers"] or opts["cluster"]:
+        return _run_on_ray(comparer, recs, path, src, opts, tol, progress)
+    return _run_all(comparer, recs, onnx_runner, src_runner, opts["batch_size"], progress), None
 
 
 def _run_on_ray(comparer: Comparer, recs: list[Recording], path: Path, src: Source, opts: dict[str, Any],
