@@ -4,8 +4,9 @@
    H=128, T=100, 512 windows, batch 64):
    - bare  = for each batch, the source model's plain forward + onnxruntime (default session
      options) on the deployable file (outputs only), both warmed up;
-   - verify loop = the same batches through verify's loop (runners with every probe,
-     streaming comparison of every tensor), runners warmed up;
+   - verify loop = the same batches through verify's loop (runners with every probe and
+     verify's thread plan, both runtimes side by side overlapped with the streaming comparison
+     of every tensor), runners warmed up;
    - verify total = ``verify_model`` end to end (loading, tracing, hashing included), shown
      for information next to bare + model loading.
 2. Peak memory (target: flat): ``verify_model`` in a fresh subprocess on a recording of one
@@ -93,8 +94,10 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
     from seqgate.settings import Tolerances
     from seqgate.sources.spec import parse_source
     from seqgate.util.progress import SILENT
+    from seqgate.verify.checker import Comparer, output_dims, tensor_infos
+    from seqgate.verify.pipeline import thread_plan
     from seqgate.verify.recordings import input_specs, load_recording
-    from seqgate.verify.run import Comparer, output_dims, tensor_infos, verify_model
+    from seqgate.verify.run import verify_model
 
     model = onnx.load(str(onnx_path))
     probes = read_probe_map(model)
@@ -110,8 +113,11 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
             return plain.run(None, feeds)
 
     bare_ort = _BareOrt()
+    plan = thread_plan()  # as verify_model sets the runners up (seqgate.verify.pipeline)
     full_src = open_source_runner(src, probes, names, states=True)
-    full_ort = OnnxRunner(model, probes)
+    if src.framework == "torch":
+        full_src.run_threads = plan.source
+    full_ort = OnnxRunner(model, probes, threads=plan.onnx)
     for r in (bare_src, bare_ort, full_src, full_ort):  # warm up (tracing, first-run allocations)
         r.run({"x": x[:BATCH]})
         r.run({"x": x[:BATCH]})
@@ -130,7 +136,7 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
     assert rep.passed, rep.headline()
     print(f"{label}: bare inference {best_bare:.3f} s, verify loop {best_loop:.3f} s "
           f"(ratio {best_loop / best_bare:.3f}, target <= 1.15); verify_model end to end {total:.2f} s "
-          f"for {N} windows x {T} steps, {len(probes)} probes")
+          f"for {N} windows x {T} steps, {len(probes)} probes; load average {os.getloadavg()[0]:.1f}")
 
 
 CHILD = r'''

@@ -255,7 +255,13 @@ def _batched(model: Any, x: np.ndarray, batch: int = 64) -> np.ndarray:
     so a variant's outputs depend on which windows share a call (the verify batch size)."""
     import onnxruntime as ort
 
-    sess = ort.InferenceSession(model.SerializeToString())
+    from seqgate.verify.pipeline import thread_plan
+
+    # Measured here: the dynamic-INT8 kernels give results that depend on the intra-op thread
+    # count, so the session runs with the threads verify gives onnxruntime.
+    so = ort.SessionOptions()
+    so.intra_op_num_threads = thread_plan().onnx
+    sess = ort.InferenceSession(model.SerializeToString(), so, providers=["CPUExecutionProvider"])
     parts = [sess.run(None, {"x": x[i:i + batch]})[0] for i in range(0, len(x), batch)]
     return np.concatenate(parts).astype(np.float64)
 

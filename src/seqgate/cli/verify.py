@@ -56,6 +56,9 @@ def verify(
     seed: Annotated[int, typer.Option("--seed", help="Seed of the synthetic windows.")] = d.SEED,
     chunk: Annotated[int, typer.Option("--chunk", help="Streaming files: the chunk size streamed besides "
                                        "1 and 7.")] = d.CHUNK,
+    workers: Annotated[int, typer.Option("--workers", help="Check the windows on N Ray workers (a local Ray "
+                                         "unless --cluster; 0: in this process).")] = d.WORKERS,
+    cluster: Annotated[str, typer.Option("--cluster", help="A running Ray cluster, HOST:PORT.")] = d.CLUSTER,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress display and no table.")] = False,
     force: Annotated[bool, typer.Option(
         "--force", help="Replace report files that seqgate did not write.")] = False,
@@ -66,8 +69,8 @@ def verify(
     """Replay windows through the source framework and ONNX Runtime; compare outputs and every hidden state."""
     from seqgate.verify.run import verify_model
 
-    opts = _parse_options(custom_code, synthetic, seed, batch_size, states, task, oracle, chunk, tolerances,
-                          atol, rtol)
+    opts = _parse_options(custom_code, synthetic, seed, batch_size, states, task, oracle, chunk, workers,
+                          cluster, tolerances, atol, rtol)
     for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
         if p is not None:
             check_writable(p, force, option)
@@ -77,7 +80,8 @@ def verify(
             synthetic=opts["synthetic"], atol=atol, rtol=rtol,
             tolerances=str(tolerances) if tolerances else None,
             batch_size=opts["batch_size"], states=opts["states"], oracle=opts["oracle"], progress=progress,
-            task=opts["task"], seed=opts["seed"], chunk=opts["chunk"])
+            task=opts["task"], seed=opts["seed"], chunk=opts["chunk"], workers=opts["workers"],
+            cluster=opts["cluster"])
     _write_reports(rep, report, junit, summary)
     if not quiet:
         _print_table(rep)
@@ -86,8 +90,8 @@ def verify(
 
 
 def _parse_options(custom_code: Path | None, synthetic: bool, seed: int, batch_size: int, states: bool,
-                   task: str, oracle: bool, chunk: int, tolerances: Path | None, atol: float | None,
-                   rtol: float | None) -> dict[str, Any]:
+                   task: str, oracle: bool, chunk: int, workers: int, cluster: str, tolerances: Path | None,
+                   atol: float | None, rtol: float | None) -> dict[str, Any]:
     """Every option through ``seqgate.settings``, all problems in one error (exit 2); custom code loaded."""
     if custom_code is not None:
         from seqgate.sources.keras import load_custom_code
@@ -98,7 +102,7 @@ def _parse_options(custom_code: Path | None, synthetic: bool, seed: int, batch_s
 
     problems = Problems()
     raw = {"synthetic": synthetic, "seed": seed, "batch_size": batch_size, "states": states, "task": task,
-           "oracle": oracle, "chunk": chunk}
+           "oracle": oracle, "chunk": chunk, "workers": workers, "cluster": cluster}
     opts = parse_settings("verify", raw, CLI, problems)
     read_tolerances(tolerances, atol, rtol, problems)  # --atol/--rtol with the file they override
     problems.raise_if_any()

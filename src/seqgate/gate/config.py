@@ -26,6 +26,8 @@ default)::
     atol = 1e-4
     rtol = 1e-4
     oracle = false
+    workers = 0                        # Ray workers (0: in-process)
+    cluster = ""                       # running Ray cluster HOST:PORT ("" : local Ray when workers > 0)
 
     [[verify.tolerance]]               # per-tensor override; later matches win per field
     match = "head*"
@@ -115,6 +117,8 @@ class GateConfig:
     call_budgets: tuple[Budget, ...] = ()  # [[profile.call_budget]] (streaming files)
     lengths: str | Path = "full"  # [profile] lengths: "full", "uniform" or a recording (resolved)
     variants: tuple[VariantRule, ...] = ()  # [[variants]]: reduced-precision candidates and their rules
+    workers: int = 0  # [verify] workers: Ray workers, 0 = in-process
+    cluster: str = ""  # [verify] cluster: a running Ray cluster's address
 
     @property
     def base(self) -> Path:
@@ -205,6 +209,7 @@ def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any]
         call_budgets=tuple(pr["call_budget"]),
         lengths=files.path(str(pr["lengths"]), "[profile] lengths") if isinstance(pr["lengths"], Path)
         else pr["lengths"],
+        workers=v["workers"], cluster=v["cluster"],
     )
 
 

@@ -320,6 +320,7 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
         model_path, cfg.source, weights=weights, recordings=[str(p) for p in cfg.recordings],
         synthetic=cfg.synthetic, tolerances=cfg.tolerances, batch_size=cfg.batch_size, states=cfg.states,
         oracle=cfg.oracle, progress=progress, task=cfg.task, seed=cfg.seed, chunk=cfg.chunk,
+        workers=cfg.workers, cluster=cfg.cluster,
     )
     report.verify = vr.to_json()
     for r in report.verify["recordings"]:  # hashed once, by verify

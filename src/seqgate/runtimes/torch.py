@@ -71,6 +71,7 @@ class TorchRunner:
         self._seqs: dict[str, list[list[Any]]] = {}
         self._recording = False  # hooks and the stacked decomposition act inside run() only
         self._threads = 0
+        self.run_threads: int | None = None  # intra-op threads of run() (None: PyTorch's own)
         self._stacked = sorted(w for w in wanted if int(getattr(self._mods[w], "num_layers", 1)) > 1)
         for name in wanted:
             self._mods[name].register_forward_hook(self._hook(name), with_kwargs=True)
@@ -162,15 +163,22 @@ class TorchRunner:
 
     # ----- public --------------------------------------------------------------------------------------
     def run(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
+        """Outputs and probes; with :attr:`run_threads` set, that many intra-op threads in this
+        call's thread (PyTorch's count is per calling thread; restored afterwards)."""
         torch = self.torch
         self._calls, self._seqs = {}, {}
         self._recording = True
+        previous = torch.get_num_threads()
+        if self.run_threads:
+            torch.set_num_threads(self.run_threads)
         try:
             with torch.inference_mode():
                 args, kwargs = self._arguments(feeds)
                 return self._collect(self.module(*args, **kwargs))
         finally:
             self._recording = False
+            if self.run_threads:
+                torch.set_num_threads(previous)
 
     def _arguments(self, feeds: dict[str, np.ndarray[Any, Any]]) -> tuple[list[Any], dict[str, Any]]:
         """``forward``'s arguments: by name when it takes these names, else by position."""

@@ -28,6 +28,8 @@ TASKS = ("auto", "classify", "regress")
 ORACLE = False
 # streaming files: chunk size streamed besides 1 and 7 (seqgate.verify.streaming)
 CHUNK = 16
+WORKERS = 0  # 0: verify in this process; N: N Ray workers (an embedded local Ray unless CLUSTER)
+CLUSTER = ""  # "": no cluster; else the address of a running Ray cluster (HOST:PORT)
 # profile
 SEQ_LENS = (16, 64, 256)
 BATCH_SIZES = (1,)

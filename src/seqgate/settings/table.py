@@ -19,6 +19,7 @@ from seqgate.settings.values import (
     Problems,
     parse_bool,
     parse_budgets,
+    parse_cluster,
     parse_count,
     parse_int_list,
     parse_lengths,
@@ -28,6 +29,7 @@ from seqgate.settings.values import (
     parse_task,
     parse_tolerance,
     parse_warmup,
+    parse_workers,
 )
 
 CLI, CONFIG, PYTHON = "cli", "config", "python"
@@ -77,6 +79,10 @@ SETTINGS: tuple[Setting, ...] = (
             "re-run the worst windows under onnx.reference"),
     Setting("verify", "chunk", "--chunk", "streaming.chunk_sizes", d.CHUNK, parse_count,
             "streaming files: the chunk size streamed besides 1 and 7"),
+    Setting("verify", "workers", "--workers", "settings.workers", d.WORKERS, parse_workers,
+            "Ray workers that share the windows (0: verify in this process)"),
+    Setting("verify", "cluster", "--cluster", "settings.cluster", d.CLUSTER, parse_cluster,
+            "address of a running Ray cluster HOST:PORT (\"\": start a local one when workers > 0)"),
     Setting("verify", "tolerance", None, "settings.tolerance", (), parse_overrides,
             "per-tensor overrides: match, atol, rtol ([[tolerance]] in a --tolerances file)", table=True),
     Setting("profile", "seq_lens", "--seq-lens", "options.seq_lens", d.SEQ_LENS, parse_int_list,

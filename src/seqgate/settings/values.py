@@ -124,6 +124,26 @@ def parse_count(value: Any, where: str) -> int:
     return parse_int(value, where, 1)
 
 
+def parse_workers(value: Any, where: str) -> int:
+    """Ray workers for verify: 0 (in this process) or a count up to 1024."""
+    return parse_int(value, where, 0, 1024)
+
+
+def parse_cluster(value: Any, where: str) -> str:
+    """The address of a running Ray cluster, ``HOST:PORT`` (``ray://HOST:PORT`` for a Ray client
+    server), or ``""`` for none."""
+    if not isinstance(value, str):
+        raise BadInputError(f"{where} must be a cluster address HOST:PORT (a string), got {value!r}.")
+    text = value.strip()
+    if not text:
+        return ""
+    host, _, port = text.removeprefix("ray://").rpartition(":")
+    if not host or not port.isdigit() or not 0 < int(port) < 65536:
+        raise BadInputError(f"{where} {value!r}: expected a Ray cluster address HOST:PORT, e.g. "
+                            f"127.0.0.1:6379 (the address `ray start --head` prints).")
+    return text
+
+
 def parse_warmup(value: Any, where: str) -> int:
     """Untimed runs per point: 0 or more."""
     return parse_int(value, where, 0)

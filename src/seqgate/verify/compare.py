@@ -160,13 +160,25 @@ class TensorStats:
         # float32 pairwise sum / BLAS dot: ~1e-6 relative, enough for a mean and an RMS
         self.sum_abs += float(flat.sum())
         self.sum_sq += float(np.dot(flat, flat))
-        self._update_worst(d, a, b, first_window, exact=True)
+        self._update_worst_fast(d, a, b, first_window)
         np.maximum(absb, np.float32(REL_FLOOR), out=absb)
         self.max_rel = max(self.max_rel, float(np.divide(d, absb, out=absb).max()))
         self._update_hist(d)
         if self.time_indexed and d.ndim >= 2:
             self._update_steps(d, None)
         return True
+
+    def _update_worst_fast(self, d: np.ndarray[Any, Any], a: np.ndarray[Any, Any], b: np.ndarray[Any, Any],
+                           first_window: int) -> None:
+        """The largest |Δ| of a float32 batch, recomputed in float64 (same result as
+        :meth:`_update_worst` with ``exact=True``, searching only the windows that can hold it)."""
+        n = d.shape[0]
+        per_window = d.reshape(n, -1).max(axis=1)
+        top = per_window.max()
+        if self.worst is not None and float(top) * (1.0 + 2.0**-20) <= self.max_abs:
+            return  # nothing in this batch can beat the maximum so far (float32 rounding margin)
+        rows = np.flatnonzero(per_window >= top * np.float32(1.0 - 2.0**-20))
+        self._update_worst(d[rows], a[rows], b[rows], first_window, exact=True, rows=rows)
 
     def _exact(self, a: np.ndarray[Any, Any], b: np.ndarray[Any, Any], first_window: int) -> None:
         d = abs_error(a, b)
@@ -192,8 +204,9 @@ class TensorStats:
             self._update_steps(d, bad)
 
     def _update_worst(self, d: np.ndarray[Any, Any], a: np.ndarray[Any, Any], b: np.ndarray[Any, Any],
-                      first_window: int, exact: bool = False) -> None:
-        """Track the largest |Δ|; ``exact``: recompute it in float64 at the float32 argmax."""
+                      first_window: int, exact: bool = False, rows: np.ndarray[Any, Any] | None = None) -> None:
+        """Track the largest |Δ|; ``exact``: recompute it in float64 at the float32 argmax.
+        ``rows``: the arrays are these windows of the batch (row i is window ``rows[i]``)."""
         flat = int(np.argmax(d))
         if exact:
             # float32 |Δ| can tie or round across elements whose float64 |Δ| differ: recompute every
@@ -211,13 +224,18 @@ class TensorStats:
             idx = np.unravel_index(flat, d.shape)
             step = int(idx[1]) if self.time_indexed and d.ndim >= 2 else None
             rest = tuple(int(i) for i in (idx[2:] if step is not None else idx[1:]))
-            self.worst = (first_window + int(idx[0]), step, rest)
+            window = int(idx[0]) if rows is None else int(rows[idx[0]])
+            self.worst = (first_window + window, step, rest)
             self.worst_source = float(np.asarray(b).flat[flat])
             self.worst_onnx = float(np.asarray(a).flat[flat])
 
     def _update_hist(self, d32: np.ndarray[Any, Any]) -> None:
         """Bin float32 ``|Δ| ≥ 0`` by its bit pattern (monotonic for non-negative floats)."""
-        idx = np.right_shift(np.ascontiguousarray(d32).reshape(-1).view(np.int32), HIST_SHIFT)
+        bits = np.ascontiguousarray(d32).reshape(-1).view(np.int32)
+        idx = self._scratch.get("hist_idx")
+        if idx is None or idx.shape != bits.shape:
+            idx = self._scratch["hist_idx"] = np.empty(bits.shape, np.intp)
+        np.right_shift(bits, HIST_SHIFT, out=idx)  # already bincount's index type: no copy inside
         self.hist += np.bincount(idx, minlength=HIST_BINS)
 
     def _update_steps(self, d: np.ndarray[Any, Any], bad: np.ndarray[Any, Any] | None) -> None:
@@ -336,6 +354,19 @@ def merge_stats(parts: list[TensorStats]) -> TensorStats:
         out.top1_agree += p.top1_agree
         out.top1_total += p.top1_total
         out.flips += p.flips
+    return out
+
+
+def merge_shards(parts: list[TensorStats]) -> TensorStats:
+    """Combine the stats of one tensor over consecutive window ranges of ONE recording, given in
+    recording order: the result is what one pass over all the windows gives — counts, maxima,
+    the worst element (ties: the earliest window), the histogram (so ``p99_abs``) and the
+    per-step curves exactly; the first ``MAX_FLIPS_LISTED`` flipped windows; ``mean_abs`` and
+    ``rms`` up to the order of floating-point summation (~1e-7 relative)."""
+    out = merge_stats(parts)
+    for p in parts:
+        room = MAX_FLIPS_LISTED - len(out.flip_windows)
+        out.flip_windows.extend(p.flip_windows[:max(room, 0)])
     return out
 
 

@@ -347,13 +347,14 @@ def open_arrays(path: Path) -> dict[str, LazyArray]:
                         f"Build one from a CSV with `seqgate windows`.")
 
 
-def load_recording(path: str | Path, specs: list[InputSpec]) -> Recording:
-    """Open ``path`` and match its arrays to ``specs``; every mismatch is a clear error."""
+def load_recording(path: str | Path, specs: list[InputSpec], hashed: bool = True) -> Recording:
+    """Open ``path`` and match its arrays to ``specs``; every mismatch is a clear error.
+    ``hashed=False`` skips the sha256 (a cluster worker reading a file the driver hashed)."""
     p = Path(path)
     arrays = open_arrays(p)
     chosen = _match_keys(p, arrays, specs)
     n = _check_arrays(p, chosen, specs)
-    return Recording(str(p), "recorded", chosen, n, path=p, sha256=sha256_file(p))
+    return Recording(str(p), "recorded", chosen, n, path=p, sha256=sha256_file(p) if hashed else None)
 
 
 def _match_keys(path: Path, arrays: dict[str, LazyArray], specs: list[InputSpec]) -> dict[str, LazyArray]:

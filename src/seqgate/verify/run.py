@@ -35,22 +35,20 @@ Contract:
 
 from __future__ import annotations
 
-import heapq
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-
-from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
+from seqgate.errors import BadInputError
 from seqgate.onnxfile.probes import Probe, read_metadata, read_probe_map
 from seqgate.settings import PYTHON, Problems, Tolerances, parse_settings
 from seqgate.settings import defaults as d
 from seqgate.sources.spec import Source, parse_source
 from seqgate.util.files import sha256_file
 from seqgate.util.progress import SILENT, Progress
-from seqgate.verify.compare import TensorStats, merge_stats
+from seqgate.verify.checker import Comparer, SetResult, TensorInfo, output_dims, tensor_infos
+from seqgate.verify.compare import merge_stats
 from seqgate.verify.recordings import (
     InputSpec,
     Recording,
@@ -62,16 +60,7 @@ from seqgate.verify.recordings import (
 from seqgate.verify.tolerances import read_tolerances
 
 SCHEMA = "seqgate.verify/1"
-WORST_KEPT = 3  # windows per set kept for the oracle
 CLASS_OPS = ("Softmax", "LogSoftmax", "Sigmoid")
-
-
-@dataclass(frozen=True)
-class TensorInfo:
-    name: str
-    kind: str  # output | hidden_sequence | hidden_final | cell_final
-    layer: str | None = None
-    direction: str | None = None
 
 
 @dataclass
@@ -91,6 +80,7 @@ class VerifyReport:
     warnings: list[str] = field(default_factory=list)
     provenance: dict[str, Any] | None = None
     streaming: dict[str, Any] | None = None  # seqgate.verify.streaming, for a streaming file
+    workers: dict[str, Any] | None = None  # Ray workers' record (seqgate.verify.cluster), else None
 
     @property
     def exit_code(self) -> int:
@@ -118,7 +108,7 @@ class VerifyReport:
             "recordings": self.recordings, "model": self.model, "source": self.source,
             "provenance": self.provenance, "streaming": self.streaming,
             "seed": self.seed, "settings": self.settings, "oracle": self.oracle,
-            "warnings": self.warnings, "environment": self.environment,
+            "warnings": self.warnings, "environment": self.environment, "workers": self.workers,
             "seqgate_version": self.environment.get("seqgate"),
         }
 
@@ -171,141 +161,8 @@ def _provenance(model: Any, src: Source, warnings: list[str]) -> dict[str, Any]:
     return prov
 
 
-def output_dims(model: Any) -> dict[str, list[Any]]:
-    from seqgate.onnxfile.load import value_dims
-
-    return {o.name: value_dims(o) for o in model.graph.output}
-
-
-def tensor_infos(model: Any, probes: list[Probe]) -> list[TensorInfo]:
-    infos = [TensorInfo(p.name, p.kind, p.layer, p.direction) for p in probes]
-    return infos + [TensorInfo(o.name, "output") for o in model.graph.output]
-
-
-# ----- the run -------------------------------------------------------------------------------
-@dataclass
-class _SetResult:
-    recording: Recording
-    stats: dict[str, TensorStats]
-    worst: list[tuple[float, int, dict[str, np.ndarray[Any, Any]]]]
-
-
-class Comparer:
-    """Runs one window set through both runners and keeps per-tensor stats (module docstring)."""
-
-    def __init__(self, infos: list[TensorInfo], tol: Tolerances, class_names: set[str], specs: list[InputSpec],
-                 out_dims: dict[str, list[Any]]):
-        self.infos, self.tol, self.class_names, self.out_dims = infos, tol, class_names, out_dims
-        self.specs = specs
-        self.seq_input = next((s.name for s in specs if s.is_sequence), None)
-        self.time_dims = {s.window_dims[1] for s in specs
-                          if s.is_sequence and isinstance(s.window_dims[1], str)}
-        self.batch_dims = {s.window_dims[0] for s in specs if s.dims and isinstance(s.window_dims[0], str)}
-        self.batch_axis: dict[str, int] = {}
-        self.where = ("the ONNX file", "the source")  # (model label, source text) for messages
-        self.observe: Any = None  # called (recording, first window, onnx outputs, source outputs) per batch
-
-    def _find_batch_axis(self, name: str, shape: tuple[int, ...], n: int) -> int:
-        """Outputs may hold the windows on another axis (PyTorch ``h_n`` is ``[L·D, N, H]``)."""
-        dims = self.out_dims.get(name, [])
-        named = [i for i, d in enumerate(dims) if d in self.batch_dims]
-        if named:
-            return named[0]
-        sized = [i for i, d in enumerate(shape) if d == n]
-        return 0 if not sized or sized[0] == 0 else sized[0]
-
-    def to_batch_major(self, name: str, x: np.ndarray[Any, Any]) -> np.ndarray[Any, Any]:
-        ax = self.batch_axis.get(name, 0)
-        return x if ax == 0 else np.moveaxis(x, ax, 0)
-
-    def _timed_output(self, name: str, shape: tuple[int, ...], steps: int | None) -> bool:
-        """Axis 1 is time: the ONNX dim names the input's time dim, else (unknown dim) its length matches."""
-        if len(shape) < 3:
-            return False
-        dims = list(self.out_dims.get(name, []))
-        ax = self.batch_axis.get(name, 0)
-        if ax and len(dims) > ax:
-            dims.insert(0, dims.pop(ax))
-        d1 = dims[1] if len(dims) > 1 else None
-        if isinstance(d1, str) and d1:
-            return d1 in self.time_dims
-        return d1 is None and shape[1] == steps
-
-    def new_stats(self, feeds: dict[str, np.ndarray[Any, Any]], first: dict[str, np.ndarray[Any, Any]]
-                  ) -> dict[str, TensorStats]:
-        steps = feeds[self.seq_input].shape[1] if self.seq_input else None
-        n = next(iter(feeds.values())).shape[0]
-        out = {}
-        for t in self.infos:
-            a, r = self.tol.for_tensor(t.name)
-            if t.kind == "output":
-                self.batch_axis[t.name] = self._find_batch_axis(t.name, first[t.name].shape, n)
-            shape = self.to_batch_major(t.name, first[t.name]).shape
-            timed = t.kind == "hidden_sequence" or (
-                t.kind == "output" and self._timed_output(t.name, shape, steps))
-            out[t.name] = TensorStats(a, r, timed, t.name in self.class_names)
-        return out
-
-    def run_set(self, rec: Recording, onnx_runner: Any, src_runner: Any, batch: int,
-                progress: Progress, check: list[bool]) -> _SetResult:
-        stats: dict[str, TensorStats] = {}
-        worst: list[tuple[float, int, dict[str, np.ndarray[Any, Any]]]] = []
-        for start, feeds in rec.batches(batch):  # window-first arrays
-            model_feeds = to_model_layout(feeds, self.specs)
-            a = onnx_runner.run(model_feeds)
-            s = src_runner.run(model_feeds)
-            if check[0]:
-                _self_check(src_runner, model_feeds, s)
-                check[0] = False
-            if not stats:
-                stats = self.new_stats(feeds, s)
-            if self.observe is not None:
-                self.observe(rec, start, a, s)
-            score = np.zeros(next(iter(feeds.values())).shape[0])
-            for t in self.infos:
-                _check_shapes(t, a[t.name], s[t.name], self.where)
-                st = stats[t.name]
-                st.update(self.to_batch_major(t.name, a[t.name]), self.to_batch_major(t.name, s[t.name]), start)
-                if st.window_max is not None:
-                    score = np.maximum(score, st.window_max)
-            _keep_worst(worst, score, start, model_feeds)
-            progress.advance(len(score), rec.label)
-        for st in stats.values():
-            st.release()
-        return _SetResult(rec, stats, worst)
-
-
-def _self_check(runner: Any, feeds: dict[str, np.ndarray[Any, Any]], got: dict[str, Any]) -> None:
-    check = getattr(runner, "self_check", None)
-    if check is None:
-        return
-    d = check(feeds, got)
-    if d > runner.self_check_atol:
-        raise UnsupportedModelError("the source model", [Unsupported(
-            "state capture", f"re-executing the model to read its states changes its outputs (max |Δ| {d:.3g})",
-            "run with --no-states to compare outputs only, and report this model to the seqgate developers")])
-
-
-def _check_shapes(t: TensorInfo, a: np.ndarray[Any, Any], s: np.ndarray[Any, Any],
-                  where: tuple[str, str]) -> None:
-    """A tensor shaped differently on the two sides: the file does not fit the source (exit 2)."""
-    if a.shape != s.shape:
-        from seqgate.verify.interface import shape_error
-
-        raise shape_error(t.name, a.shape, s.shape, *where)
-
-
-def _keep_worst(worst: list[Any], score: np.ndarray[Any, Any], start: int, feeds: dict[str, Any]) -> None:
-    for i in np.argsort(-score)[:WORST_KEPT]:
-        item = (float(score[i]), -(start + int(i)), {k: v[i:i + 1].copy() for k, v in feeds.items()})
-        if len(worst) < WORST_KEPT:
-            heapq.heappush(worst, item)  # type: ignore[misc]
-        elif item[0] > worst[0][0]:
-            heapq.heapreplace(worst, item)  # type: ignore[misc]
-
-
 # ----- report --------------------------------------------------------------------------------
-def _tensor_entry(t: TensorInfo, results: list[_SetResult], batch_axis: int) -> dict[str, Any]:
+def _tensor_entry(t: TensorInfo, results: list[SetResult], batch_axis: int) -> dict[str, Any]:
     parts = [r.stats[t.name] for r in results if t.name in r.stats]
     merged = merge_stats(parts)
     by = {}
@@ -320,7 +177,7 @@ def _tensor_entry(t: TensorInfo, results: list[_SetResult], batch_axis: int) -> 
             "batch_axis": batch_axis}
 
 
-def _first_divergence(infos: list[TensorInfo], results: list[_SetResult]) -> dict[str, Any] | None:
+def _first_divergence(infos: list[TensorInfo], results: list[SetResult]) -> dict[str, Any] | None:
     for t in infos:
         for r in results:
             st = r.stats.get(t.name)
@@ -351,13 +208,15 @@ def verify_model(
     seed: int = d.SEED,
     chunk: int = d.CHUNK,
     observe: Any = None,
+    workers: int = d.WORKERS,
+    cluster: str = d.CLUSTER,
 ) -> VerifyReport:
     """Compare the ONNX file with its source on every window; see the module docstring.
 
+    ``workers``/``cluster``: on Ray workers (``seqgate.verify.cluster``), same report + ``workers``.
     Settings go through ``seqgate.settings``; ``tolerances`` is a tolerance file (``atol``/``rtol``
     on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored)."""
     from seqgate.onnxfile.load import load_onnx
-    from seqgate.util.environment import environment
 
     opts, tol = _settings(locals())
     synthetic, batch_size, states, oracle, task, seed = (opts[k] for k in (
@@ -378,19 +237,31 @@ def verify_model(
     onnx_runner, src_runner = _runners(model, src, probes, states, recs, specs, str(path))
     comparer = Comparer(infos, tol, _classes(model, task), specs, output_dims(model))
     comparer.where, comparer.observe = (str(path), src.text), observe
-    results = _run_all(comparer, recs, onnx_runner, src_runner, batch_size, progress or SILENT)
+    results, ray_record = _compare_all(comparer, recs, onnx_runner, src_runner, path, src, opts, tol,
+                                       progress or SILENT)
     oracle_out = _oracle(model, probes, infos, results, onnx_runner, src_runner, tol) if oracle else None
-    first = _first_divergence(infos, results)
     streaming = _streaming(stream_model, recs, specs, src_runner, tol, opts["chunk"])
+    return _report(infos, results, comparer, path, specs, src, seed, opts, tol, tolerances, oracle_out,
+                   warnings, prov, ray_record, streaming)
+
+
+def _report(infos: list[TensorInfo], results: list[SetResult], comparer: Comparer, path: Path,
+            specs: list[InputSpec], src: Source, seed: int, opts: dict[str, Any], tol: Tolerances,
+            tolerances: str | None, oracle_out: Any, warnings: list[str], prov: Any,
+            ray_record: dict[str, Any] | None, streaming: dict[str, Any] | None) -> VerifyReport:
+    from seqgate.util.environment import environment
+
+    first = _first_divergence(infos, results)
     return VerifyReport(
         passed=first is None and (streaming is None or streaming["passed"]), streaming=streaming,
         tensors=[_tensor_entry(t, results, comparer.batch_axis.get(t.name, 0)) for t in infos],
         first_divergence=first, recordings=[r.recording.to_json() for r in results],
         model=_model_record(path, specs), source=_source_record(src), seed=seed,
-        settings={**{k: opts[k] for k in ("batch_size", "states", "synthetic", "task", "oracle")},
+        settings={**{k: opts[k] for k in ("batch_size", "states", "synthetic", "task", "oracle", "workers",
+                                          "cluster")},
                   "atol": tol.atol, "rtol": tol.rtol, "tolerances_file": tolerances,
                   "tolerance": [o.to_json() for o in tol.overrides]},
-        environment=environment(), oracle=oracle_out, warnings=warnings, provenance=prov)
+        environment=environment(), oracle=oracle_out, warnings=warnings, provenance=prov, workers=ray_record)
 
 
 def _oracle(model: Any, probes: list[Probe], infos: list[Any], results: Any, onnx_runner: Any,
@@ -460,12 +331,17 @@ def _runners(model: Any, src: Source, probes: list[Probe], states: bool, recs: l
     """ONNX Runtime's runner and the source framework's, after checking the file fits the source."""
     from seqgate.runtimes.factory import load_source_model, open_source_runner
     from seqgate.runtimes.onnx import OnnxRunner
+    from seqgate.verify.pipeline import thread_plan
 
-    onnx_runner = OnnxRunner(model, probes)
-    loaded = load_source_model(src)
+    plan = thread_plan()  # the two runtimes run side by side (seqgate.verify.pipeline)
+    onnx_runner = OnnxRunner(model, probes, threads=plan.onnx)
+    loaded = load_source_model(src, plan.source)
     _check_interface(model, src, loaded, recs, specs, onnx_runner, label)
     output_names = [o.name for o in model.graph.output]
-    return onnx_runner, open_source_runner(src, probes, output_names, states, loaded=loaded)
+    src_runner = open_source_runner(src, probes, output_names, states, loaded=loaded)
+    if src.framework == "torch":
+        src_runner.run_threads = plan.source
+    return onnx_runner, src_runner
 
 
 def _classes(model: Any, task: str | None) -> set[str]:
@@ -480,7 +356,8 @@ def _classes(model: Any, task: str | None) -> set[str]:
 def _settings(args: dict[str, Any]) -> tuple[dict[str, Any], Tolerances]:
     """``verify_model``'s arguments through ``seqgate.settings``; every problem in one error (exit 2)."""
     problems = Problems()
-    raw = {k: args[k] for k in ("synthetic", "seed", "batch_size", "states", "task", "oracle", "chunk")}
+    raw = {k: args[k] for k in ("synthetic", "seed", "batch_size", "states", "task", "oracle", "chunk",
+                                 "workers", "cluster")}
     opts = parse_settings("verify", {**raw, "task": raw["task"] or d.TASK}, PYTHON, problems)
     tol = args["tolerances"]
     if not isinstance(tol, Tolerances):
@@ -490,10 +367,31 @@ def _settings(args: dict[str, Any]) -> tuple[dict[str, Any], Tolerances]:
 
 
 def _run_all(comparer: Comparer, recs: list[Recording], onnx_runner: Any, src_runner: Any, batch: int,
-             progress: Progress) -> list[_SetResult]:
+             progress: Progress) -> list[SetResult]:
     check = [True]
     progress.start(f"verifying {len(recs)} window set{'s' if len(recs) != 1 else ''}",
                    sum(r.windows for r in recs))
     results = [comparer.run_set(r, onnx_runner, src_runner, batch, progress, check) for r in recs]
     progress.finish()
     return results
+
+
+def _compare_all(comparer: Comparer, recs: list[Recording], onnx_runner: Any, src_runner: Any, path: Path,
+                 src: Source, opts: dict[str, Any], tol: Tolerances,
+                 progress: Progress) -> tuple[list[SetResult], dict[str, Any] | None]:
+    """Every window set compared, in this process or on Ray workers (then also their record)."""
+    if opts["workers"] or opts["cluster"]:
+        return _run_on_ray(comparer, recs, path, src, opts, tol, progress)
+    return _run_all(comparer, recs, onnx_runner, src_runner, opts["batch_size"], progress), None
+
+
+def _run_on_ray(comparer: Comparer, recs: list[Recording], path: Path, src: Source, opts: dict[str, Any],
+                tol: Tolerances, progress: Progress) -> tuple[list[SetResult], dict[str, Any]]:
+    """The windows checked by Ray workers; the comparer learns the batch axes they found."""
+    from seqgate.verify.cluster import WorkerJob, absolute_source, run_sharded
+
+    job = WorkerJob(str(path.resolve()), absolute_source(src), opts["states"], tol,
+                    frozenset(comparer.class_names), opts["batch_size"], (), comparer.where)
+    results, batch_axis, record = run_sharded(job, recs, opts["workers"], opts["cluster"], progress)
+    comparer.batch_axis.update(batch_axis)
+    return results, record
