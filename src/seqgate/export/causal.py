@@ -253,24 +253,29 @@ def _reduce(node: onnx.NodeProto, ins: list[Kind], g: _Graph) -> list[Kind]:
     return [Step(k.axis + sum(1 for a in axes if _neg(a, r) > k.axis))]
 
 
-def _squeeze(node: onnx.NodeProto, ins: list[Kind], g: _Graph) -> list[Kind]:
+def _step_axes(node: onnx.NodeProto, ins: list[Kind], g: _Graph) -> tuple[Kind, int | None, list[int] | None]:
+    """(input kind, input rank, ``axes``) of a Squeeze/Unsqueeze; axes and rank must be known for a Step."""
     k, r = ins[0], g.rank(node.input[0])
     if not isinstance(k, Step):
-        return [k]
+        return k, r, None
     axes = g.ints(node, 1, "axes")
     if axes is None or r is None:
         raise _Bad("with axes or rank unknown")
+    return k, r, axes
+
+
+def _squeeze(node: onnx.NodeProto, ins: list[Kind], g: _Graph) -> list[Kind]:
+    k, r, axes = _step_axes(node, ins, g)
+    if axes is None or r is None or not isinstance(k, Step):
+        return [k]
     _check_axis(k, axes, r, "squeeze")
     return [Step(k.axis + sum(1 for a in axes if _neg(a, r) > k.axis))]
 
 
 def _unsqueeze(node: onnx.NodeProto, ins: list[Kind], g: _Graph) -> list[Kind]:
-    k, r = ins[0], g.rank(node.input[0])
-    if not isinstance(k, Step):
+    k, r, axes = _step_axes(node, ins, g)
+    if axes is None or r is None or not isinstance(k, Step):
         return [k]
-    axes = g.ints(node, 1, "axes")
-    if axes is None or r is None:
-        raise _Bad("with axes or rank unknown")
     out_r = r + len(axes)
     inserted = {a % out_r for a in axes}
     kept = [p for p in range(out_r) if p not in inserted]
