@@ -31,6 +31,7 @@ from pathlib import Path
 
 from seqgate.errors import BadInputError
 from seqgate.settings.variants import VARIANT_KINDS, variant_file_name
+from seqgate.util.files import current_umask
 
 GATE_FILES = frozenset({"model.onnx", "report.json", "report.md", "junit.xml", "report.html",
                         *(variant_file_name(k) for k in VARIANT_KINDS)})  # + accepted variants
@@ -140,7 +141,6 @@ def clear_stale(out_dir: Path) -> None:
 def make_build_dir(out_dir: Path) -> Path:
     """A private, empty sibling of ``out_dir`` that the run writes into."""
     try:
-        out_dir.parent.mkdir(parents=True, exist_ok=True)
         return Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.build-", dir=out_dir.parent))
     except OSError as e:
         raise BadInputError(f"cannot create a folder beside {out_dir} ({e.strerror}); "
@@ -149,7 +149,7 @@ def make_build_dir(out_dir: Path) -> Path:
 
 def commit(build_dir: Path, out_dir: Path) -> None:
     """Make ``build_dir`` the new ``out_dir`` in one step; the previous set is removed after."""
-    build_dir.chmod(0o777 & ~_umask())  # mkdtemp makes 0700; the folder is for the user's readers too
+    build_dir.chmod(0o777 & ~current_umask())  # mkdtemp makes 0700; the folder is for the user's readers too
     if not out_dir.exists():
         os.rename(build_dir, out_dir)
         return
@@ -176,9 +176,3 @@ def _exchange(a: Path, b: Path) -> bool:
     at_fdcwd = -100
     rc = fn(at_fdcwd, os.fsencode(a), at_fdcwd, os.fsencode(b), _RENAME_EXCHANGE)
     return rc == 0
-
-
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask

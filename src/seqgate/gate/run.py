@@ -141,8 +141,6 @@ def run_gate(config: str | Path, out: str | Path | None = None, progress: Progre
     progress = progress or SILENT
     cfg = load_gate_config(config)
     out_dir = Path(out) if out is not None else cfg.base / f"{cfg.path.stem}-report"
-    if out_dir.exists() and not out_dir.is_dir():
-        raise BadInputError(f"gate output {out_dir} is a file, not a folder; choose a folder with --out-dir.")
     check_output_dir(out_dir.parent, "folder of the gate output")  # the run builds beside out_dir
     with outdir.folder_lock(out_dir, cfg.path), _InterruptWatch() as watch:
         outdir.check_replaceable(out_dir)

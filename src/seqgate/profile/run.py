@@ -239,8 +239,6 @@ def profile_model(
 def _streaming(model: Any, plans: list[InputPlan], opts: dict[str, Any], batch_list: list[int],
                thread_list: list[int], counts: tuple[int, int, float]) -> dict[str, Any] | None:
     """Per-call latency of a streaming file (``seqgate.profile.streaming``) at the smallest batch."""
-    from seqgate.export.streaming import is_streaming
-
     if not is_streaming(model):
         return None
     from seqgate.profile.streaming import profile_calls

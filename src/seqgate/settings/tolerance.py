@@ -12,14 +12,13 @@ config; both are read by :func:`parse_overrides`.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
 from dataclasses import dataclass, field
 from fnmatch import fnmatchcase
 from typing import Any
 
 from seqgate.errors import BadInputError
 from seqgate.settings.defaults import ATOL, RTOL
-from seqgate.settings.values import Problems, SettingProblems, parse_tolerance, unknown_key
+from seqgate.settings.values import Problems, SettingProblems, parse_tolerance, table_keys
 
 OVERRIDE_KEYS = ("match", "atol", "rtol")
 
@@ -59,12 +58,9 @@ class Tolerances:
 
 def parse_override(entry: Any, where: str) -> ToleranceOverride:
     """One override table: a non-empty string ``match`` and ``atol`` and/or ``rtol`` (finite, ≥ 0)."""
-    if not isinstance(entry, Mapping):
-        raise BadInputError(f"{where} must be a table with match and atol and/or rtol, got {entry!r}.")
     problems = Problems()
-    for k in entry:
-        if k not in OVERRIDE_KEYS:
-            problems.add(unknown_key(k, OVERRIDE_KEYS, f"in {where}: "))
+    for problem in table_keys(entry, OVERRIDE_KEYS, where, "match and atol and/or rtol"):
+        problems.add(problem)
     match = entry.get("match")
     if match is None:
         problems.add(f"{where}: match is required (an fnmatch pattern on tensor names such as \"encoder/*\")")

@@ -78,6 +78,14 @@ def unknown_key(key: str, known: Iterable[str], where: str) -> str:
     return f"unknown key {where}{key!r}{hint}; known keys: {', '.join(known)}"
 
 
+def table_keys(entry: Any, known: Iterable[str], where: str, holds: str) -> list[str]:
+    """One ``[[...]]`` entry must be a table (else exit 2 saying what it ``holds``); its unknown keys."""
+    if not isinstance(entry, Mapping):
+        raise BadInputError(f"{where} must be a table with {holds}, got {entry!r}.")
+    known = list(known)
+    return [unknown_key(k, known, f"in {where}: ") for k in entry if k not in known]
+
+
 def read_toml(path: str | Path, what: str, hint: str = "") -> dict[str, Any]:
     """Read a TOML file; every way it can be unreadable is a ``BadInputError`` naming ``what``."""
     p = Path(path)
@@ -296,9 +304,7 @@ def _budget_text(text: str, where: str) -> Budget:
 
 
 def _budget_table(row: Any, where: str) -> Budget:
-    if not isinstance(row, Mapping):
-        raise BadInputError(f"{where} must be a table with seq_len and ms, got {row!r}.")
-    problems = [unknown_key(k, ("seq_len", "ms"), f"in {where}: ") for k in row if k not in ("seq_len", "ms")]
+    problems = table_keys(row, ("seq_len", "ms"), where, "seq_len and ms")
     problems += [f"{where}: {k} is required" for k in ("seq_len", "ms") if k not in row]
     if problems:
         raise SettingProblems(problems)

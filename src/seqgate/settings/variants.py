@@ -22,7 +22,6 @@ class-score output, no targets) fails the variant, naming why.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -33,7 +32,7 @@ from seqgate.settings.values import (
     parse_bool,
     parse_int,
     parse_tolerance,
-    unknown_key,
+    table_keys,
 )
 
 # int8_dynamic: onnxruntime.quantization.quantize_dynamic (INT8 weights, activations quantized per
@@ -97,12 +96,9 @@ _PARSERS: dict[str, Any] = {
 
 def parse_variant(entry: Any, where: str) -> VariantRule:
     """One ``[[variants]]`` table → :class:`VariantRule`; every problem of the entry reported."""
-    if not isinstance(entry, Mapping):
-        raise BadInputError(f"{where} must be a table with kind and an acceptance rule, got {entry!r}.")
     problems = Problems()
-    for k in entry:
-        if k not in VARIANT_DEFAULTS:
-            problems.add(unknown_key(k, VARIANT_DEFAULTS, f"in {where}: "))
+    for problem in table_keys(entry, VARIANT_DEFAULTS, where, "kind and an acceptance rule"):
+        problems.add(problem)
     if "kind" not in entry:
         problems.add(f"{where}: kind is required ({', '.join(VARIANT_KINDS)})")
     if not any(k in entry for k in CRITERIA):

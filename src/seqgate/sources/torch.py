@@ -139,7 +139,7 @@ def _import_file(path: Path) -> Any:
         if isinstance(e, KeyboardInterrupt):
             raise
         raise BadInputError(
-            f"running {path} failed with {type(e).__name__}: {_short(e)}{_user_line(e, resolved)}. "
+            f"running {path} failed with {type(e).__name__}: {first_line(e)}{_user_line(e, resolved)}. "
             f"seqgate imports the file to find the factory; make it importable on its own."
         ) from None
     finally:
@@ -153,10 +153,10 @@ def _import_module(modname: str) -> Any:
     try:
         return importlib.import_module(modname)
     except ModuleNotFoundError as e:
-        raise BadInputError(f"Python module {modname!r} cannot be found ({_short(e)}); install the "
+        raise BadInputError(f"Python module {modname!r} cannot be found ({first_line(e)}); install the "
                             f"package or pass FILE.py:FACTORY instead.") from None
     except Exception as e:
-        raise BadInputError(f"importing {modname} failed with {type(e).__name__}: {_short(e)}.") from None
+        raise BadInputError(f"importing {modname} failed with {type(e).__name__}: {first_line(e)}.") from None
 
 
 def _label(src: Source) -> str:
@@ -205,7 +205,7 @@ def _call_factory(src: Source, factory: Any, torch: Any) -> Any:
         module = factory()
     except Exception as e:
         raise BadInputError(
-            f"the factory {label} raised {type(e).__name__}: {_short(e)}"
+            f"the factory {label} raised {type(e).__name__}: {first_line(e)}"
             f"{_user_line(e, src.path.resolve() if src.path else None)}. It is called with no "
             f"arguments and must return the torch.nn.Module; fix it so that it does."
         ) from None
@@ -252,7 +252,7 @@ def _load_weights(module: Any, path: Path, torch: Any) -> None:
     try:
         module.load_state_dict(state, strict=True)
     except Exception as e:
-        raise BadInputError(f"loading weights {path} failed: {_short(e)}.") from None
+        raise BadInputError(f"loading weights {path} failed: {first_line(e)}.") from None
 
 
 _SAVE_HINT = "save the trained weights with torch.save(model.state_dict(), 'FILE.pt') and pass that file"
@@ -311,7 +311,7 @@ def _read_state_dict(path: Path, torch: Any) -> dict[str, Any]:
                 f"torch.save(model.state_dict(), '{path.name}') and pass that file."
             ) from None
         raise BadInputError(
-            f"{path} is not a readable PyTorch weights file ({type(e).__name__}: {_short(e)}). It "
+            f"{path} is not a readable PyTorch weights file ({type(e).__name__}: {first_line(e)}). It "
             f"may be truncated or of another format; save it with "
             f"torch.save(model.state_dict(), path)."
         ) from None
@@ -336,9 +336,6 @@ def _listing(label: str, keys: list[str]) -> str:
     shown = ", ".join(keys[:_MAX_LISTED]) + (", …" if len(keys) > _MAX_LISTED else "")
     return f"{len(keys)} {label} key(s) ({shown})"
 
-
-def _short(e: BaseException) -> str:
-    return first_line(e)
 
 
 def _user_line(e: BaseException, path: Path | None) -> str:

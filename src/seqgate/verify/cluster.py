@@ -48,6 +48,7 @@ from seqgate.errors import BadInputError, SeqgateError
 from seqgate.settings import Tolerances
 from seqgate.sources.spec import Source
 from seqgate.util.progress import SILENT, Progress
+from seqgate.util.text import first_line
 from seqgate.verify.checker import SetResult, merge_worst
 from seqgate.verify.compare import TensorStats, merge_shards
 from seqgate.verify.recordings import Recording, check_finite
@@ -191,7 +192,7 @@ def _init(ray: Any, workers: int, cluster: str, local: bool) -> None:
                      **ip, **quiet)
     except (ConnectionError, RuntimeError, ValueError) as e:
         where = f"the Ray cluster at {cluster}" if cluster else "a local Ray"
-        raise BadInputError(f"cannot start or reach {where}: {str(e).splitlines()[0] if str(e) else e!r}. "
+        raise BadInputError(f"cannot start or reach {where}: {first_line(e)}. "
                             f"Check the address (`ray status` on the head node).") from e
 
 

@@ -22,6 +22,8 @@ import numpy as np
 
 from seqgate.errors import BadInputError
 from seqgate.onnxfile.load import value_dims
+from seqgate.util.outputs import flatten_outputs
+from seqgate.util.text import first_line
 
 
 def _dims(dims: Any) -> str:
@@ -133,18 +135,10 @@ def _run_torch(module: Any, names: list[str], feeds: dict[str, np.ndarray[Any, A
             res = module(**kwargs)
     except Exception as e:  # the user's forward refusing the ONNX file's inputs
         shapes = ", ".join(f"{k} {list(v.shape)}" for k, v in feeds.items())
-        first = (str(e).strip().splitlines() or [""])[0][:300]
         raise _fail(label, src_text, [f"the source's forward fails on the ONNX file's inputs ({shapes}): "
-                                      f"{type(e).__name__}: {first}"]) from None
-    return _flatten(res)
+                                      f"{type(e).__name__}: {first_line(e)}"]) from None
+    return flatten_outputs(res)
 
-
-def _flatten(x: Any) -> list[Any]:
-    if isinstance(x, dict):
-        return [leaf for v in x.values() for leaf in _flatten(v)]
-    if isinstance(x, list | tuple):
-        return [leaf for v in x for leaf in _flatten(v)]
-    return [x]
 
 
 def shape_error(tensor: str, onnx_shape: tuple[int, ...], src_shape: tuple[int, ...], label: str,

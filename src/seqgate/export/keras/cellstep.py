@@ -26,6 +26,7 @@ import numpy as np
 
 from seqgate.errors import Refusal
 from seqgate.export.core.builder import FLOAT, GraphBuilder
+from seqgate.util.text import first_line
 
 F32 = np.float32
 
@@ -63,7 +64,7 @@ def trace_cell(cell: Any, features: int) -> tuple[Any, list[Any], list[Any], dic
     try:
         out, new = cell.call(x, list(states) if len(states) > 1 else [states[0]], **kwargs)
     except Exception as e:
-        why = f"{type(e).__name__}: {(str(e).splitlines() or [''])[0][:160]}"
+        why = f"{type(e).__name__}: {first_line(e, 160)}"
         raise Refusal(f"its call() cannot be traced symbolically ({why})",
                       "write the cell with keras.ops and sublayers only, weights as attributes") from None
     finally:
