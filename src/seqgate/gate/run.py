@@ -14,7 +14,7 @@ Contract:
   that file (the artifact that ships) against the source instead of exporting a new one.
 - Budgets at lengths the exported model cannot take (a fixed time dim) are refused (exit 2)
   before verification and profiling start.
-- Checks: ``export``, ``provenance`` (the source and weights files are those the ONNX file records,
+- Checks: ``export``, ``provenance`` (the source, weights and custom-code files are those the ONNX file records,
   ``seqgate.verify.provenance``; a difference fails unless ``[model] expect_other_source`` gives
   the reason), ``verify`` (every output and hidden state within tolerance on every recording) and,
   when the config has a ``[profile]`` table, ``latency`` (every budget holds).

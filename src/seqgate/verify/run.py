@@ -23,8 +23,8 @@ Contract:
 - Synthetic sets take their per-feature scale from the first recording.
 - The report never claims more than was compared: a file without a probe map is compared on
   outputs only and says so in ``warnings``.
-- Provenance (``seqgate.verify.provenance``): the sha256 of the given source and weights files
-  against those the ONNX file records; the result is the report's ``provenance`` section, and a
+- Provenance (``seqgate.verify.provenance``): the sha256 of the given source, weights and custom-code
+  files against those the ONNX file records; the result is the report's ``provenance`` section, and a
   difference, or an untrained export, is also a warning. It does not change the verdict, which
   is about what the files compute; the gate makes provenance its own check.
 - ``observe(recording, first_window, onnx_outputs, source_outputs)``, when given, sees every
