@@ -21,6 +21,7 @@ with the previous state as the initial state), Keras weights converted by
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -87,3 +88,56 @@ def mask_patterns(rng: np.random.Generator, n: int, t: int) -> dict[str, Array]:
         holes[2, :] = False
         holes[2, t // 2] = True  # exactly one valid step, in the middle
     return {"right": right, "left": left, "holes": holes}
+
+
+Step = Callable[[Array, list[Array]], tuple[Array, list[Array]]]
+
+
+def keras_masked_loop(step: Step, x: Array, mask: Array, states: list[Array], go_backwards: bool = False,
+                      zero_output_for_mask: bool = False) -> tuple[Array, Array, list[Array]]:
+    """The same masked loop as :func:`keras_masked_rnn` for any cell ``step(x_t, states) →
+    (output_t, new_states)`` (Keras ``RNN`` docstring: a cell is a ``call(inputs, states)``
+    returning ``(output, new_states)``). Returns ``(sequence in processing order, last_output,
+    states)``; the output at a masked step is the previous one (zeros before the first valid
+    step), or zeros with ``zero_output_for_mask``; every state is carried over a masked step."""
+    T = mask.shape[1]
+    states = [np.asarray(s, np.float64) for s in states]
+    prev: Array | None = None
+    outs = []
+    for t in (range(T - 1, -1, -1) if go_backwards else range(T)):
+        m = mask[:, t].astype(bool)[:, None]
+        y, new = step(np.asarray(x[:, t], np.float64), states)
+        prev = np.zeros_like(y) if prev is None else prev
+        out = np.where(m, y, 0.0 if zero_output_for_mask else prev)
+        states = [np.where(m, n, s) for n, s in zip(new, states, strict=True)]
+        prev = out
+        outs.append(out)
+    return np.stack(outs, axis=1), outs[-1], states
+
+
+def builtin_cell_step(kind: str, layer_weights: list[Array], reset_after: bool = False) -> Step:
+    """One step of a built-in Keras cell (output = new h), from the ONNX-spec oracles."""
+    bias = layer_weights[2] if len(layer_weights) > 2 else None
+    w = keras_to_onnx(kind, layer_weights[0], layer_weights[1], bias, reset_after)
+
+    def step(x: Array, states: list[Array]) -> tuple[Array, list[Array]]:
+        h, c = _step(kind, w, x, states[0], states[1] if kind == "lstm" else None, int(reset_after))
+        return h, [h] if c is None else [h, c]
+
+    return step
+
+
+def stacked_step(steps: list[tuple[Step, int]]) -> Step:
+    """Keras ``StackedRNNCells.call``: cell k reads cell k−1's output of the same step; the states
+    are the cells' states in order; the output is the last cell's. ``steps``: (step, state count)."""
+
+    def step(x: Array, states: list[Array]) -> tuple[Array, list[Array]]:
+        new: list[Array] = []
+        at = 0
+        for fn, count in steps:
+            x, s = fn(x, states[at:at + count])
+            new.extend(s)
+            at += count
+        return x, new
+
+    return step

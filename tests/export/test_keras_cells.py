@@ -106,19 +106,6 @@ def test_stack_probes_per_cell_match_single_cell_layers(rng: np.random.Generator
         km.assert_matches([to_canonical(p, v)], [expected[p.name]], p.name)
 
 
-def test_stack_with_a_mask_is_refused_naming_the_layer(rng: np.random.Generator) -> None:
-    from seqgate.errors import UnsupportedModelError
-
-    k = km.keras()
-
-    def body(x: Any) -> Any:
-        return k.layers.RNN([k.layers.LSTMCell(2), k.layers.LSTMCell(2)], name="masked_stack")(
-            k.layers.Masking()(x))
-
-    with pytest.raises(UnsupportedModelError, match=r"masked_stack.*mask"):
-        km.export(km.functional((None, 3), body, rng))
-
-
 @pytest.mark.parametrize("back", [False, True])
 def test_cli_export_and_verify_a_stack_with_per_cell_probes(back: bool, tmp_path: Any,
                                                            rng: np.random.Generator) -> None:

@@ -73,7 +73,8 @@ def export(
         load_custom_code(custom_code)
 
     options = {"inputs": input_spec} if input_spec else {}
-    res = export_source(source, out, opset or DEFAULT_OPSET, force, weights, untrained, streaming, **options)
+    res = export_source(source, out, opset or DEFAULT_OPSET, force, weights, untrained, streaming,
+                        custom_code=custom_code, **options)
     n_nodes = len(res.model.graph.node)
     typer.echo(f"wrote {res.path} (opset {res.opset}, {n_nodes} nodes, {res.probes} probes)")
     states = [i.name for i in res.model.graph.input if i.type.HasField("optional_type")]

@@ -81,7 +81,7 @@ def verify(
             tolerances=str(tolerances) if tolerances else None,
             batch_size=opts["batch_size"], states=opts["states"], oracle=opts["oracle"], progress=progress,
             task=opts["task"], seed=opts["seed"], chunk=opts["chunk"], workers=opts["workers"],
-            cluster=opts["cluster"])
+            cluster=opts["cluster"], custom_code=custom_code)
     _write_reports(rep, report, junit, summary)
     if not quiet:
         _print_table(rep)

@@ -1,8 +1,10 @@
 """The provenance an export writes into ``metadata_props`` (no absolute paths: output stays reproducible).
 
 Keys: ``seqgate.version``; ``seqgate.source.framework``/``framework_version``/``text``; the
-source file's name and sha256; the weights file's name and sha256; ``seqgate.source.untrained =
-"true"`` when a PyTorch factory was exported with its own initial parameters.
+source file's name and sha256; the weights file's name and sha256; the custom-code file's name
+and sha256 (``seqgate.source.custom_code``/``custom_code_sha256``, Keras, when one was named);
+``seqgate.source.untrained = "true"`` when a PyTorch factory was exported with its own initial
+parameters.
 """
 
 from __future__ import annotations
@@ -32,8 +34,10 @@ def source_metadata(src: Source, framework_version: str) -> dict[str, str]:
         meta["seqgate.source.weights_sha256"] = sha256_file(src.weights)
     elif src.framework == "torch":
         meta[UNTRAINED_KEY] = "true"
+    if src.custom_code is not None:
+        meta["seqgate.source.custom_code"] = src.custom_code.name
+        meta["seqgate.source.custom_code_sha256"] = sha256_file(src.custom_code)
     return meta
-
 
 
 def portable_text(src: Source) -> str:

@@ -6,7 +6,8 @@ often lag). The accepted range is ``MIN_OPSET..MAX_OPSET``; every value in it is
 run under onnxruntime 1.32 by the tests.
 
 Provenance: the file records what it was made from (:func:`source_metadata`): the source file's
-name and sha256, the weights file's name and sha256, and ``seqgate.source.untrained = "true"``
+name and sha256, the weights file's name and sha256, a Keras source's custom-code file's name and
+sha256, and ``seqgate.source.untrained = "true"``
 when a PyTorch factory was exported with its own initial parameters. That last case is refused
 unless asked for with ``untrained=True`` (``--untrained``): a factory alone builds an untrained
 model, and a release exported by mistake without its weights would otherwise pass unnoticed.
@@ -85,7 +86,7 @@ def build_onnx(src: Source, opset: int = DEFAULT_OPSET, **options: Any) -> Any:
         from seqgate.util.frameworks import version_of
 
         assert src.path is not None
-        model = load_keras(src.path)
+        model = load_keras(src.path, src.custom_code)
         return export_keras_model(model, opset, source_metadata(src, version_of("keras")))
     from seqgate.export.torch.capture import export_torch_source  # type: ignore[import-not-found]
 
@@ -100,15 +101,18 @@ def export_source(
     weights: str | None = None,
     untrained: bool = False,
     streaming: bool | None = None,
+    custom_code: str | Path | None = None,
     **options: Any,
 ) -> ExportResult:
     """Export ``source`` to ``out`` atomically; refuse to overwrite unless ``force``.
 
     A PyTorch factory without ``weights`` is refused unless ``untrained`` (module docstring).
+    ``custom_code``: a Keras source's file of custom classes (run first, hashed in the provenance);
+    a :class:`Source` carries its own.
     """
     from seqgate.onnxfile.probes import read_probe_map
 
-    src = source if isinstance(source, Source) else parse_source(source, weights)
+    src = source if isinstance(source, Source) else parse_source(source, weights, custom_code)
     check_weights_choice(src, untrained)
     out_path = Path(out)
     check_writable(out_path, force)

@@ -14,7 +14,7 @@ Contract:
   that file (the artifact that ships) against the source instead of exporting a new one.
 - Budgets at lengths the exported model cannot take (a fixed time dim) are refused (exit 2)
   before verification and profiling start.
-- Checks: ``export``, ``provenance`` (the source and weights files are those the ONNX file records,
+- Checks: ``export``, ``provenance`` (the source, weights and custom-code files are those the ONNX file records,
   ``seqgate.verify.provenance``; a difference fails unless ``[model] expect_other_source`` gives
   the reason), ``verify`` (every output and hidden state within tolerance on every recording) and,
   when the config has a ``[profile]`` table, ``latency`` (every budget holds).
@@ -252,7 +252,7 @@ def _make_variants(report: GateReport, model_path: Path, weights: str | None,
     cfg = report.config
     options = {"source": cfg.source, "weights": weights, "recordings": [str(p) for p in cfg.recordings],
                "synthetic": cfg.synthetic, "batch_size": cfg.batch_size, "states": cfg.states,
-               "task": cfg.task, "seed": cfg.seed}
+               "task": cfg.task, "seed": cfg.seed, "custom_code": cfg.custom_code}
     report.variants, made = make_and_verify(cfg.variants, model_path, options, progress)
     return made
 
@@ -263,11 +263,12 @@ def _export(report: GateReport, model_path: Path, weights: str | None) -> Any:
     cfg = report.config
     options = {"inputs": list(cfg.inputs)} if cfg.inputs else {}
     res = export_source(cfg.source, model_path, cfg.opset, force=True, weights=weights, untrained=cfg.untrained,
-                        streaming=cfg.streaming, **options)
+                        streaming=cfg.streaming, custom_code=cfg.custom_code, **options)
     from seqgate.onnxfile.probes import read_metadata
 
     meta = read_metadata(res.model)
-    hashed = ((res.source.path, "seqgate.source.sha256"), (res.source.weights, "seqgate.source.weights_sha256"))
+    hashed = ((res.source.path, "seqgate.source.sha256"), (res.source.weights, "seqgate.source.weights_sha256"),
+              (res.source.custom_code, "seqgate.source.custom_code_sha256"))
     for f, key in hashed:
         if f is not None and key in meta:  # hashed once, by the export
             report.files[str(f)] = meta[key]
@@ -299,7 +300,7 @@ def _provenance(report: GateReport, model: Any, weights: str | None) -> None:
     from seqgate.verify.provenance import provenance_check
 
     cfg = report.config
-    report.checks.append(provenance_check(model, cfg.source, weights, cfg.expect_other_source))
+    report.checks.append(provenance_check(model, cfg.source, weights, cfg.expect_other_source, cfg.custom_code))
 
 
 def _check_lengths(cfg: GateConfig, model: Any) -> None:
@@ -318,7 +319,7 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
         model_path, cfg.source, weights=weights, recordings=[str(p) for p in cfg.recordings],
         synthetic=cfg.synthetic, tolerances=cfg.tolerances, batch_size=cfg.batch_size, states=cfg.states,
         oracle=cfg.oracle, progress=progress, task=cfg.task, seed=cfg.seed, chunk=cfg.chunk,
-        workers=cfg.workers, cluster=cfg.cluster,
+        workers=cfg.workers, cluster=cfg.cluster, custom_code=cfg.custom_code,
     )
     report.verify = vr.to_json()
     for r in report.verify["recordings"]:  # hashed once, by verify

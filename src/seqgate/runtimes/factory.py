@@ -32,7 +32,7 @@ def load_source_model(src: Source, threads: int | None = None) -> Any:
                 tf.config.threading.set_intra_op_parallelism_threads(threads)
                 tf.config.threading.set_inter_op_parallelism_threads(1)
         assert src.path is not None
-        return load_keras(src.path)
+        return load_keras(src.path, src.custom_code)
     from seqgate.sources.torch import load_torch
 
     return load_torch(src)

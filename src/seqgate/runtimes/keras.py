@@ -111,7 +111,8 @@ def _cell_clone(layer: Any, k: int, features: int, name: str) -> Any:
     cell = layer.cell.cells[k]
     copy = type(cell).from_config(cell.get_config())
     rnn = keras.layers.RNN(copy, return_sequences=True, return_state=True,
-                           go_backwards=bool(layer.go_backwards) and k == 0, name=name)
+                           go_backwards=bool(layer.go_backwards) and k == 0,
+                           zero_output_for_mask=bool(layer.zero_output_for_mask), name=name)
     rnn.build((None, None, features if k == 0 else _output_size(layer.cell.cells[k - 1])))
     rnn.set_weights(cell.get_weights())
     return rnn
@@ -256,19 +257,24 @@ class KerasRunner:
                  probes: dict[str, Any]) -> list[Any]:
         """RNN([cells]): cell k over cell k−1's output sequence equals the stack step by step
         (each cell's state reads only the cell below at steps ≤ t). Only cell 0 reverses time
-        under ``go_backwards``; the cells above read its output in that processing order."""
+        under ``go_backwards``; the cells above read its output in that processing order, so
+        they get the mask in that order too. With a mask, the per-cell form still holds: every
+        cell keeps its state at a masked step, and reads the cell below only at valid steps."""
         seq, states = x, []
         direction = "reverse" if layer.go_backwards else "forward"
-        at = 0
+        mask, at = self._mask, 0
         for k, cell in enumerate(layer.cell.cells):
             size = cell.state_size
             count = len(size) if isinstance(size, list | tuple) else 1
             part = None if init is None else init[at:at + count]
             at += count
+            if k == 1 and mask is not None and layer.go_backwards:
+                self._mask = self.keras.ops.flip(mask, axis=1)
             seq, st = self._run_clone(self._clones[f"{full}#cell{k}"], seq, part)
             states.extend(st)
             self._record(f"{full}#cell{k}", direction, seq, st, layer.go_backwards, probes)
         outs = [seq if layer.return_sequences else self._last(seq, states[-count:])]
+        self._mask = mask
         return outs + (states if layer.return_state else [])
 
     def _bidirectional(self, full: str, layer: Any, x: Any, init: list[Any] | None,

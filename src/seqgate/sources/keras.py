@@ -27,12 +27,12 @@ def load_custom_code(path: str | Path) -> Any:
     import importlib.util
     import sys
 
+    from seqgate.sources.spec import check_custom_code
+
     p = Path(path).resolve()
     if p in _IMPORTED:
         return _IMPORTED[p]
-    if p.suffix != ".py" or not p.is_file():
-        raise BadInputError(f"custom code {path}: not an existing .py file. Name the Python file that defines "
-                            f"and registers your Keras classes (keras.saving.register_keras_serializable).")
+    check_custom_code(path)
     name = f"seqgate_custom_code_{len(_IMPORTED)}_{p.stem}"
     spec = importlib.util.spec_from_file_location(name, p)
     assert spec is not None and spec.loader is not None
@@ -52,11 +52,15 @@ def load_custom_code(path: str | Path) -> Any:
     return module
 
 
-def load_keras(path: Path) -> Any:
-    """Load a Keras model with ``safe_mode=True``; translate every failure to a clear error."""
+def load_keras(path: Path, custom_code: Path | None = None) -> Any:
+    """Load a Keras model with ``safe_mode=True``; translate every failure to a clear error.
+
+    ``custom_code``: the user's opt-in file, imported first (:func:`load_custom_code`)."""
     from seqgate.util.frameworks import import_keras, quiet_stderr
 
     keras = import_keras()
+    if custom_code is not None:
+        load_custom_code(custom_code)
     _check_container(path)
     try:
         with quiet_stderr():

@@ -275,7 +275,8 @@ def plan_ranges(windows: list[int], batch: int, workers: int) -> list[Range]:
 
 def absolute_source(src: Source) -> Source:
     """``src`` with absolute file paths (workers may run in another directory)."""
-    fix = {k: Path(v).resolve() for k, v in (("path", src.path), ("weights", src.weights)) if v is not None}
+    files = (("path", src.path), ("weights", src.weights), ("custom_code", src.custom_code))
+    fix = {k: Path(v).resolve() for k, v in files if v is not None}
     return dataclasses.replace(src, **fix)
 
 

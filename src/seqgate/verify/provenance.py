@@ -11,6 +11,10 @@ exported without weights on purpose, ``seqgate.source.untrained = "true"``.
   source has no file: it is compared by its text only, and the entry says so.
 - ``weights`` (PyTorch only): the weights file's sha256 against the recorded one; a file given
   where none was recorded (an untrained export), or none given where one was, differs.
+- ``custom_code`` (Keras, when the export recorded one or one is given): the custom-code file's
+  sha256 against the recorded one (``seqgate.source.custom_code_sha256``). Its code builds the
+  model's custom layers, so a changed file differs exactly as a changed model file does; a file
+  given where none was recorded, or none given where one was, differs too.
 
 ``status`` is ``"match"`` when every entry matches, ``"differs"`` when one does not, and
 ``"not recorded"`` when the file holds no seqgate provenance (made by another tool or by hand)
@@ -21,6 +25,7 @@ reason, which the reports show).
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 from seqgate.onnxfile.probes import read_metadata
@@ -30,6 +35,7 @@ from seqgate.util.files import sha256_file
 SOURCE_SHA = "seqgate.source.sha256"
 WEIGHTS_SHA = "seqgate.source.weights_sha256"
 UNTRAINED = "seqgate.source.untrained"
+CUSTOM_CODE_SHA = "seqgate.source.custom_code_sha256"
 
 
 def _source_entry(meta: dict[str, str], src: Source) -> dict[str, Any]:
@@ -66,12 +72,27 @@ def _weights_entry(meta: dict[str, str], src: Source) -> dict[str, Any]:
     return entry
 
 
+def _custom_code_entry(meta: dict[str, str], src: Source) -> dict[str, Any]:
+    want = meta.get(CUSTOM_CODE_SHA)
+    have = sha256_file(src.custom_code) if src.custom_code is not None else None
+    entry: dict[str, Any] = {"role": "custom_code", "path": str(src.custom_code) if src.custom_code else None,
+                             "sha256": have, "recorded_name": meta.get("seqgate.source.custom_code"),
+                             "recorded_sha256": want, "matches": have == want}
+    if have is None:
+        entry["note"] = f"the file was exported with custom code {entry['recorded_name']}, but none was given"
+    elif want is None:
+        entry["note"] = f"the file was exported without custom code, but {src.custom_code} was given"
+    return entry
+
+
 def compare_provenance(model: Any, src: Source) -> dict[str, Any]:
     """Compare ``src``'s files with the provenance recorded in ``model`` (see the module docstring)."""
     meta = read_metadata(model)
     entries = [_source_entry(meta, src)]
     if src.framework == "torch":
         entries.append(_weights_entry(meta, src))
+    if src.framework == "keras" and (CUSTOM_CODE_SHA in meta or (src.custom_code and SOURCE_SHA in meta)):
+        entries.append(_custom_code_entry(meta, src))
     fw = meta.get("seqgate.source.framework")
     if fw is not None and fw != src.framework:
         entries[0]["matches"] = False
@@ -89,6 +110,9 @@ def compare_provenance(model: Any, src: Source) -> dict[str, Any]:
 
 def _detail(status: str, entries: list[dict[str, Any]]) -> str:
     if status == "match":
+        roles = [e["role"] for e in entries]
+        if "custom_code" in roles:
+            return "the source and its custom code are the files the ONNX file records (sha256)"
         if len(entries) > 1 and entries[1]["sha256"] is not None:
             return "the source and weights are the files the ONNX file records (sha256)"
         tail = "; no weights, as recorded (untrained)" if len(entries) > 1 else ""
@@ -106,9 +130,10 @@ def _detail(status: str, entries: list[dict[str, Any]]) -> str:
 
 
 def provenance_check(model: Any, source: str | Source, weights: str | None,
-                     expected_other: str | None = None) -> dict[str, Any]:
+                     expected_other: str | None = None,
+                     custom_code: str | Path | None = None) -> dict[str, Any]:
     """The gate's ``provenance`` check entry: name, passed, detail, plus the comparison itself."""
-    src = source if isinstance(source, Source) else parse_source(source, weights)
+    src = source if isinstance(source, Source) else parse_source(source, weights, custom_code)
     prov = compare_provenance(model, src)
     passed = prov["status"] == "match"
     detail = prov["detail"]

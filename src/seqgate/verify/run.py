@@ -23,8 +23,8 @@ Contract:
 - Synthetic sets take their per-feature scale from the first recording.
 - The report never claims more than was compared: a file without a probe map is compared on
   outputs only and says so in ``warnings``.
-- Provenance (``seqgate.verify.provenance``): the sha256 of the given source and weights files
-  against those the ONNX file records; the result is the report's ``provenance`` section, and a
+- Provenance (``seqgate.verify.provenance``): the sha256 of the given source, weights and custom-code
+  files against those the ONNX file records; the result is the report's ``provenance`` section, and a
   difference, or an untrained export, is also a warning. It does not change the verdict, which
   is about what the files compute; the gate makes provenance its own check.
 - ``observe(recording, first_window, onnx_outputs, source_outputs)``, when given, sees every
@@ -210,12 +210,14 @@ def verify_model(
     observe: Any = None,
     workers: int = d.WORKERS,
     cluster: str = d.CLUSTER,
+    custom_code: str | Path | None = None,
 ) -> VerifyReport:
     """Compare the ONNX file with its source on every window; see the module docstring.
 
     ``workers``/``cluster``: on Ray workers (``seqgate.verify.cluster``), same report + ``workers``.
     Settings go through ``seqgate.settings``; ``tolerances`` is a tolerance file (``atol``/``rtol``
-    on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored)."""
+    on top of it) or a :class:`Tolerances` value (``atol``/``rtol`` ignored). ``custom_code``: a Keras
+    source's file of custom classes (run before loading, compared in the provenance)."""
     from seqgate.onnxfile.load import load_onnx
 
     opts, tol = _settings(locals())
@@ -228,7 +230,7 @@ def verify_model(
     tolerances = None if isinstance(tolerances, Tolerances) else tolerances  # built by the gate config
     path = Path(model_path)
     stream_model, model = _split_streaming(load_onnx(path))
-    src = source if isinstance(source, Source) else parse_source(source, weights)
+    src = source if isinstance(source, Source) else parse_source(source, weights, custom_code)
     prov, probes, warnings = _check_source(model, src, states)
     specs = input_specs(model)
     recs = _window_sets(model, specs, windows, synthetic, batch_size, seed)

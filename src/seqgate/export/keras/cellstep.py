@@ -38,6 +38,7 @@ class Step:
     graph: Any
     state_sizes: list[int]
     output_state: int | None  # index of the new state that IS the output tensor, else None
+    output_size: int = 0  # features of the step's output
 
 
 def _state_sizes(cell: Any) -> list[int]:
@@ -100,7 +101,8 @@ def step_graph(cell: Any, features: int, opset: int, prefix: str, table: dict[st
         sub.output(values[id(t)].name, f"state_out_{k}", FLOAT, [None, int(t.shape[-1])])
     sub.output(values[id(out)].name, "step_out", FLOAT, [None, int(out.shape[-1])])
     same = [k for k, t in enumerate(new) if t is out]
-    return Step(sub.build({}, check=False).graph, [int(t.shape[-1]) for t in new], same[0] if same else None)
+    return Step(sub.build({}, check=False).graph, [int(t.shape[-1]) for t in new], same[0] if same else None,
+                int(out.shape[-1]))
 
 
 def _map_node(b: GraphBuilder, node: Any, op: Any, values: dict[int, Any], table: dict[str, Any]) -> list[str]:

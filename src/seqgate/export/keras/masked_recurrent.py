@@ -52,6 +52,15 @@ def run_masked(b: GraphBuilder, rc: RecurrentCall, x_ntf: str, mask: Value, h0: 
     """Compact the valid steps, run the node with ``sequence_lens``, fix empty rows' states."""
     order = step_order(b, mask.name)
     xt = b.transpose(compact(b, x_ntf, order), [1, 0, 2])
+    return run_compacted(b, rc, xt, order, h0, c0, need_y)
+
+
+def run_compacted(b: GraphBuilder, rc: RecurrentCall, xt: str, order: StepOrder, h0: str, c0: str,
+                  need_y: bool) -> MaskedRun:
+    """:func:`run_masked` on steps already compacted by ``order``, time-major ``[T, N, I]``.
+
+    A stack of cells (``stacked``) compacts once: a node's compacted ``Y`` (zero past
+    ``count``, which the next node's ``sequence_lens`` never reads) is the next node's input."""
     lstm = rc.kind == "lstm"
     out = emit_recurrent(b, rc, xt, h0, c0, need_y=need_y, need_h=True, need_c=lstm,
                          sequence_lens=order.count_i32, probes=False)

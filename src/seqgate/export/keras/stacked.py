@@ -11,9 +11,21 @@ states follow per cell, ``h[, c]`` for cell 0, then cell 1 …, as Keras returns
 ``go_backwards`` (every node runs ``direction="reverse"``; a reverse node's ``Y`` is in input
 order, so the next reverse node reads it as Keras's cells read their input; the returned
 sequence is flipped), ``initial_state`` (a flat or per-cell nested list, per cell ``h[, c]``).
-A mask is refused (not exported for stacks yet).
 
-Probes: ``<layer>/cell<k>/<direction>/…`` with ``stack_index = k`` and ``source["cell_index"]``.
+A mask (``Masking``, ``Embedding(mask_zero=True)``, ``mask=``) follows Keras's masked loop for
+stacks: at a masked step every cell's state is kept and the layer's output repeats the previous
+output (zeros with ``zero_output_for_mask``). Cell k's state still changes only at valid steps,
+from cell k−1's outputs at valid steps, so the per-cell form holds over the valid steps alone:
+the valid steps are compacted ONCE (``core.masked_steps``), every node runs on the compacted
+steps with ``sequence_lens`` and reads the compacted ``Y`` of the node below, and the top
+node's outputs are moved back to their positions with Keras's fill rule
+(``masked_recurrent``). Any mask pattern is exact; a row without valid steps keeps its
+initial states.
+
+Probes: ``<layer>/cell<k>/<direction>/…`` with ``stack_index = k`` and ``source["cell_index"]``;
+with a mask, every cell's ``hidden_sequence`` is its output at each position under the layer's
+fill rule (what the Keras runner's per-cell clones return), the top cell's only when the layer
+returns sequences.
 """
 
 from __future__ import annotations
@@ -21,8 +33,10 @@ from __future__ import annotations
 from typing import Any
 
 from seqgate.errors import Refusal
-from seqgate.export.core.builder import GraphBuilder
+from seqgate.export.core.builder import GraphBuilder, Value
+from seqgate.export.core.masked_steps import compact, step_order
 from seqgate.export.core.rnn_nodes import RecurrentCall, emit_recurrent
+from seqgate.export.keras import masked_recurrent as masked
 from seqgate.export.keras.call import KerasCall
 from seqgate.export.keras.cellparts import builtin_cell, cell_slots, check_options, pack_cell
 from seqgate.export.keras.masking import mask_of
@@ -55,13 +69,22 @@ def _initial_states(b: GraphBuilder, call: KerasCall, kinds: list[str]) -> list[
     return out
 
 
+def _calls(call: KerasCall, cells: list[tuple[str, Any]]) -> list[RecurrentCall]:
+    layer = call.layer
+    back, seqs = bool(layer.go_backwards), bool(layer.return_sequences)
+    return [RecurrentCall(
+        kind=kind, hidden=int(cell.units), direction="reverse" if back else "forward",
+        packed=pack_cell(kind, cell), activations=cell_slots(kind, cell), layer=call.name,
+        stack_index=k, probe_prefix=f"{call.name}/cell{k}",
+        source={"framework": "keras", "layer": call.name, "cell_index": k, "cell": cell.name,
+                "go_backwards": back, "return_sequences": seqs},
+    ) for k, (kind, cell) in enumerate(cells)]
+
+
 def emit_stacked_rnn(b: GraphBuilder, call: KerasCall) -> list[str]:
     """RNN(StackedRNNCells) with the options of the module docstring."""
     layer = call.layer
     check_options(layer)
-    if mask_of(call) is not None:
-        raise Refusal("RNN over a list of cells called with a mask",
-                      "use one RNN layer per cell (masks are exported for those), or drop the mask")
     cells = [builtin_cell(c, f"{call.name} cell {k}") for k, c in enumerate(layer.cell.cells)]
     x = call.inputs[0]
     if x.rank != 3:
@@ -69,25 +92,22 @@ def emit_stacked_rnn(b: GraphBuilder, call: KerasCall) -> list[str]:
     back = bool(layer.go_backwards)
     seqs, state = bool(layer.return_sequences), bool(layer.return_state)
     inits = _initial_states(b, call, [k for k, _ in cells])
+    rcs = _calls(call, cells)
+    mask = mask_of(call)
+    if mask is not None:
+        return _masked_stack(b, rcs, x.name, mask, inits, (seqs, state, bool(layer.zero_output_for_mask)))
     cur = b.transpose(x.name, [1, 0, 2])  # [T, N, I]
     finals: list[str] = []
     last_y = ""
-    for k, ((kind, cell), (h0, c0)) in enumerate(zip(cells, inits, strict=True)):
-        top = k == len(cells) - 1
-        rc = RecurrentCall(
-            kind=kind, hidden=int(cell.units), direction="reverse" if back else "forward",
-            packed=pack_cell(kind, cell), activations=cell_slots(kind, cell), layer=call.name,
-            stack_index=k, probe_prefix=f"{call.name}/cell{k}",
-            source={"framework": "keras", "layer": call.name, "cell_index": k, "cell": cell.name,
-                    "go_backwards": back, "return_sequences": seqs},
-        )
+    for k, (rc, (h0, c0)) in enumerate(zip(rcs, inits, strict=True)):
+        top = k == len(rcs) - 1
         out = emit_recurrent(b, rc, cur, h0, c0, need_y=not top or seqs, need_h=True,
-                             need_c=state and kind == "lstm")
+                             need_c=state and rc.kind == "lstm")
         if not top:
             cur = b.squeeze(out.y, [1])  # [T, N, H_k]: the next cell's input
         last_y = out.y
         finals.append(b.squeeze(out.y_h, [0]))
-        if state and kind == "lstm":
+        if state and rc.kind == "lstm":
             finals.append(b.squeeze(out.y_c, [0]))
     results: list[str] = []
     if seqs:
@@ -96,8 +116,38 @@ def emit_stacked_rnn(b: GraphBuilder, call: KerasCall) -> list[str]:
             y = b.reverse_time(y, 0)
         results.append(b.transpose(y, [1, 0, 2]))
     else:
-        top_h = finals[-2] if state and cells[-1][0] == "lstm" else finals[-1]
+        top_h = finals[-2] if state and rcs[-1].kind == "lstm" else finals[-1]
         results.append(top_h)
     if state:
         results.extend(finals)
     return results
+
+
+def _masked_stack(b: GraphBuilder, rcs: list[RecurrentCall], x: str, mask: Value,
+                  inits: list[tuple[str, str]], flags: tuple[bool, bool, bool]) -> list[str]:
+    """The masked stack of the module docstring; ``flags`` = (return_sequences, return_state,
+    zero_output_for_mask)."""
+    seqs, state, zero = flags
+    back = rcs[0].direction == "reverse"
+    order = step_order(b, mask.name)
+    cur = b.transpose(compact(b, x, order), [1, 0, 2])  # [T, N, I], valid steps first
+    finals: list[str] = []
+    result = ""
+    for k, (rc, (h0, c0)) in enumerate(zip(rcs, inits, strict=True)):
+        top = k == len(rcs) - 1
+        run = masked.run_compacted(b, rc, cur, order, h0, c0, need_y=not top or seqs)
+        seq_slots = None
+        if not top or seqs:
+            seq, slot = masked.sequence_at_positions(b, run, 0, reverse=back, zero_masked=zero)
+            seq_slots = [slot]
+        if not top:
+            cur = b.squeeze(run.out.y, [1])  # compacted [T, N, H_k]: the next cell's input
+        elif seqs:
+            result = b.reverse_time(seq, 1) if back else seq
+        else:
+            result = masked.last_output(b, run, 0, reverse=back, zero_masked=zero)
+        masked.register(b, rc, run, seq_slots)
+        finals.append(masked.state_of(b, run.h, 0))
+        if run.c is not None:
+            finals.append(masked.state_of(b, run.c, 0))
+    return [result, *finals] if state else [result]
