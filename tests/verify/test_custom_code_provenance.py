@@ -184,3 +184,17 @@ def test_custom_code_with_a_pytorch_source_is_bad_usage(tmp_path: Path) -> None:
     (tmp_path / "cells.py").write_text("", encoding="utf-8")
     with pytest.raises(BadInputError, match=r"--custom-code.*Keras"):
         parse_source(f"{tmp_path / 'net.py'}:build", None, tmp_path / "cells.py")
+
+
+def test_profile_records_the_custom_code_file(exported: dict[str, Path]) -> None:
+    """``profile --source K.keras --custom-code F.py`` lists the custom-code file with its sha256
+    beside the model file; ``--custom-code`` without ``--source`` is bad usage (exit 2)."""
+    rep = exported["dir"] / "p.json"
+    r = _invoke("profile", str(exported["onnx"]), "--source", str(exported["keras"]), "--custom-code",
+                str(exported["cells"]), "--seq-lens", "4", "--batch-sizes", "1", "--threads", "1",
+                "--warmup", "1", "--min-runs", "3", "--min-time", "0", "--quiet", "--report", str(rep))
+    assert r.exit_code == 0, r.output
+    files = {Path(f["path"]).name: f["sha256"] for f in json.loads(rep.read_text())["source"]["files"]}
+    assert files == {"m.keras": _sha(exported["keras"]), "tiny_cells.py": _sha(exported["cells"])}
+    r = _invoke("profile", str(exported["onnx"]), "--custom-code", str(exported["cells"]), "--quiet")
+    assert r.exit_code == 2 and "--custom-code was given without --source" in r.output, r.output

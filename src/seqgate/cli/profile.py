@@ -46,6 +46,9 @@ def profile_command(
     source: Annotated[str | None, typer.Option(
         help="Time the source too: a Keras file, or FILE.py:FACTORY for PyTorch.")] = None,
     weights: Annotated[str | None, typer.Option(help="PyTorch state dict for a factory source.")] = None,
+    custom_code: Annotated[Path | None, typer.Option(
+        "--custom-code", help="Keras source: run this Python file first; it defines and registers the model's "
+        "custom classes. Without it such models are refused.")] = None,
     seed: Annotated[int, typer.Option("--seed", help="Seed of the generated inputs.")] = d.SEED,
     lengths: Annotated[str, typer.Option(
         "--lengths", help="Rows of a timed batch: full (every row T steps), uniform (also padded "
@@ -73,7 +76,8 @@ def profile_command(
         if path is not None:
             check_writable(path, force, option)
     with stage_display(quiet) as progress:
-        result = profile_model(model, source=source, weights=weights, progress=progress, **opts)
+        result = profile_model(model, source=source, weights=weights, progress=progress,
+                               custom_code=custom_code, **opts)
     data = result.to_dict()
     if report is not None:
         write_json(data, report)

@@ -367,6 +367,7 @@ def _measure(cfg: GateConfig, model_path: Path, weights: str | None, progress: P
         source=cfg.source if cfg.compare_source else None,
         weights=weights if cfg.compare_source else None, seed=cfg.seed, progress=progress, variants=variants,
         chunks=cfg.chunks, call_budgets=cfg.call_budgets, lengths=cfg.lengths,
+        custom_code=cfg.custom_code if cfg.compare_source else None,
     )
 
 

@@ -196,6 +196,7 @@ def profile_model(
     call_budgets: Sequence[str | Budget] = (),
     lengths: str | os.PathLike[str] = d.LENGTHS,
     variants: Mapping[str, Any] | None = None,
+    custom_code: str | os.PathLike[str] | None = None,
 ) -> ProfileReport:
     """Measure ``model_path`` over the sweep and judge the budgets (module docstring). Bad arguments or
     files (parsed by ``seqgate.settings``) raise ``BadInputError`` (exit 2) before anything is timed."""
@@ -212,7 +213,7 @@ def profile_model(
     notes: list[str] = []
     plans, axes, lengths, batch_list, thread_list = _plan_sweep(model, opts, budget_list, notes)
     draws = _length_draws(opts["lengths"], model, plans, notes)
-    src = _parse_source(source, weights)
+    src = _parse_source(source, weights, custom_code)
     _note_oversubscription(thread_list, notes)
     cost = summary(model)  # one pass of the cost model (two shape inferences) for every length
     sweep = _Sweep(model, plans, _open_runner(src, model, thread_list), seed, counts, progress or SILENT,
@@ -334,15 +335,17 @@ def _options(args: dict[str, Any]) -> dict[str, Any]:
     return opts
 
 
-def _parse_source(source: str | None, weights: str | None) -> Any:
+def _parse_source(source: str | None, weights: str | None, custom_code: str | os.PathLike[str] | None) -> Any:
     from seqgate.sources.spec import parse_source
 
     if source is None:
-        if weights:
-            raise BadInputError("--weights was given without --source; pass the PyTorch factory "
-                                "with --source FILE.py:FACTORY, or drop --weights.")
+        for given, option, meaning in ((weights, "--weights", "the PyTorch factory"),
+                                       (custom_code, "--custom-code", "the Keras file")):
+            if given:
+                raise BadInputError(f"{option} was given without --source; pass {meaning} with --source, "
+                                    f"or drop {option}.")
         return None
-    return parse_source(source, weights)
+    return parse_source(source, weights, custom_code)
 
 
 def _open_runner(src: Any, model: Any, thread_list: list[int]) -> Any:
