@@ -118,7 +118,8 @@ class LongStreamChecker:
         self.seq_inputs = {i["name"]: i["time_axis"] for i in info["inputs"]}
         self.timed = {o["name"]: o["time_axis"] for o in info["outputs"]}
         self.states = info["states"]
-        names = [*self.timed, *(p.name for p in self.probes), *(s["output"] for s in self.states)]
+        # ties at one step name the states first: a wrong output follows from a wrong state
+        names = [*(p.name for p in self.probes), *(s["output"] for s in self.states), *self.timed]
         self.order = {n: i for i, n in enumerate(names)}
 
     def _slice(self, feeds: Feeds, a: int, e: int) -> Feeds:
