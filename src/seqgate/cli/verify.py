@@ -16,6 +16,8 @@ from seqgate.cli.progress import stage_display
 from seqgate.settings import defaults as d
 from seqgate.util.files import check_writable
 
+PASSED = ("synthetic", "batch_size", "states", "oracle", "task", "seed", "chunk", "workers", "cluster",
+          "long_stream_factor")  # parsed options handed to verify_model as they are
 TOLERANCE_HELP = (
     "TOML file: top-level atol/rtol, plus \\[\\[tolerance]] tables with match = \"fnmatch pattern\" and "
     "atol and/or rtol; the last matching table wins."
@@ -78,13 +80,9 @@ def verify(
         if p is not None:
             check_writable(p, force, option)
     with stage_display(quiet) as progress:
-        rep = verify_model(
-            model, source, weights, recordings=[*(recordings or []), *(old_windows or [])],
-            synthetic=opts["synthetic"], atol=atol, rtol=rtol,
-            tolerances=str(tolerances) if tolerances else None,
-            batch_size=opts["batch_size"], states=opts["states"], oracle=opts["oracle"], progress=progress,
-            task=opts["task"], seed=opts["seed"], chunk=opts["chunk"], workers=opts["workers"],
-            cluster=opts["cluster"], long_stream_factor=opts["long_stream_factor"])
+        rep = verify_model(model, source, weights, recordings=[*(recordings or []), *(old_windows or [])],
+                           atol=atol, rtol=rtol, tolerances=str(tolerances) if tolerances else None,
+                           progress=progress, **{k: opts[k] for k in PASSED})
     _write_reports(rep, report, junit, summary)
     if not quiet:
         _print_table(rep)
