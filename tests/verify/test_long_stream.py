@@ -127,9 +127,11 @@ def _time_model() -> Any:
 def test_binned_curve_keeps_the_max_of_each_bin() -> None:
     curve = np.zeros(450)
     curve[[0, 4, 449]] = [1.0, 2.0, 3.0]
+    curve[6:9] = np.nan  # steps 6..8 (bin 2) compared nowhere
     size, points = binned(curve, 200)  # ceil(450 / 200) = 3 steps per bin → 150 points
     assert size == 3 and len(points) == 150
-    assert points[0] == 1.0 and points[1] == 2.0 and points[-1] == 3.0 and sum(points) == 6.0
+    assert points[0] == 1.0 and points[1] == 2.0 and points[2] is None and points[-1] == 3.0
+    assert sum(p for p in points if p is not None) == 6.0
 
 
 def test_per_step_rule_is_atol_plus_rtol_times_reference() -> None:

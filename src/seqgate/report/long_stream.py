@@ -31,6 +31,11 @@ def long_stream_check_entry(section: dict[str, Any]) -> dict[str, Any]:
     return {"name": "long_stream", "passed": bool(section.get("passed")), "detail": detail}
 
 
+def _points(values: list[float | None]) -> list[float]:
+    """Log-scale points: 0 drawn at 1e-12, a bin where nothing was compared (None) left out (NaN)."""
+    return [float("nan") if v is None else max(float(v), 1e-12) for v in values]
+
+
 def long_stream_chart(section: dict[str, Any]) -> str | None:
     """PNG data URI of the per-step growth curves (module docstring)."""
     sets = [s for s in section.get("sets", []) if s.get("outputs_max_abs")]
@@ -44,10 +49,10 @@ def long_stream_chart(section: dict[str, Any]) -> str | None:
     fig, ax = plt.subplots(figsize=(8.5, 3.4))
     for s in sets:
         xs = [i * s["step_bin"] for i in range(len(s["outputs_max_abs"]))]
-        line = ax.plot(xs, [max(float(v), 1e-12) for v in s["outputs_max_abs"]], lw=1.2,
+        line = ax.plot(xs, _points(s["outputs_max_abs"]), lw=1.2, marker=".", ms=2,
                        label=f"{s['label']} outputs")
-        ax.plot(xs, [max(float(v), 1e-12) for v in s["states_max_abs"]], lw=1, ls="--",
-                color=line[0].get_color(), label=f"{s['label']} states")
+        ax.plot(xs, _points(s["states_max_abs"]), lw=1, ls="--", color=line[0].get_color(),
+                label=f"{s['label']} states")
     for k in range(1, sets[0]["calls"]):
         ax.axvline(k * sets[0]["chunk"], color="#999999", lw=0.4, alpha=0.4)
     if section.get("atol"):

@@ -96,10 +96,16 @@ def per_step(got: Array, ref: Array, axis: int, atol: float, rtol: float) -> tup
     return d.max(axis=1, initial=0.0), ok.all(axis=1)
 
 
-def binned(curve: Array, points: int = MAX_POINTS) -> tuple[int, list[float]]:
-    """(steps per bin, max of each bin): at most ``points`` values."""
+def binned(curve: Array, points: int = MAX_POINTS) -> tuple[int, list[float | None]]:
+    """(steps per bin, max of each bin): at most ``points`` values; NaN marks a step where
+    nothing was compared, and a bin of such steps is None."""
     size = max(1, -(-len(curve) // points))
-    return size, [float(curve[i:i + size].max()) for i in range(0, len(curve), size)]
+    bins = [curve[i:i + size] for i in range(0, len(curve), size)]
+    return size, [None if np.isnan(b).all() else float(np.nanmax(b)) for b in bins]
+
+
+def _nanmax(x: Array) -> float:
+    return 0.0 if np.isnan(x).all() else float(np.nanmax(x))
 
 
 class LongStreamChecker:
@@ -130,7 +136,8 @@ class LongStreamChecker:
         from seqgate.verify.recordings import to_model_layout
 
         feeds = to_model_layout(stream.feeds, specs)
-        res = _SetResult(stream, outputs_curve=np.zeros(stream.steps), states_curve=np.zeros(stream.steps))
+        res = _SetResult(stream, outputs_curve=np.full(stream.steps, np.nan),
+                         states_curve=np.full(stream.steps, np.nan))
         carry = bool(getattr(self.source, "stateful", False))
         res.source_run = ("stateful source: states zeroed, then called chunk by chunk" if carry
                           else "one call on the whole stream (causal: equal to carrying the state)")
@@ -178,7 +185,7 @@ class LongStreamChecker:
         d, ok = per_step(got, ref, axis, t.atol, t.rtol)
         steps = np.arange(a, a + len(d))
         curve = res.outputs_curve if t.kind == "output" else res.states_curve
-        np.maximum.at(curve, steps, d)
+        np.fmax.at(curve, steps, d)  # fmax: a step not compared yet (NaN) takes d
         t.max_abs = max(t.max_abs, float(d.max(initial=0.0)))
         t.compared += len(d)
         if t.first_bad is None and not ok.all():
@@ -237,15 +244,15 @@ def _set_json(res: _SetResult, pairs: list[dict[str, Any]]) -> dict[str, Any]:
     bad = sorted((t for t in tensors if t.first_bad is not None), key=lambda t: (t.first_bad or 0, t.order))
     size, outputs = binned(res.outputs_curve)
     _, states = binned(res.states_curve)
-    both = np.maximum(res.outputs_curve, res.states_curve)
+    both = np.fmax(res.outputs_curve, res.states_curve)
     w = res.stream.window
-    first_w, last_w = float(both[:w].max(initial=0.0)), float(both[-w:].max(initial=0.0))
+    first_w, last_w = _nanmax(both[:w]), _nanmax(both[-w:])
     first = _first_failure(res, bad, pairs) if bad else None
     others = [f"{res.stream.label}: {t.kind} '{t.name}' first outside tolerance at step {t.first_bad} "
               f"(max |Δ| {t.max_abs:.3g})" for t in bad[1:10]]
     return {**res.stream.to_json(), "passed": not bad, "calls": res.calls, "chunk": w,
-            "source_run": res.source_run, "max_abs_outputs": float(res.outputs_curve.max(initial=0.0)),
-            "max_abs_states": float(res.states_curve.max(initial=0.0)),
+            "source_run": res.source_run, "max_abs_outputs": _nanmax(res.outputs_curve),
+            "max_abs_states": _nanmax(res.states_curve),
             "growth": last_w / first_w if first_w > 0 else None, "step_bin": size,
             "outputs_max_abs": outputs, "states_max_abs": states,
             "tensors": [t.to_json() for t in tensors], "first_failure": first,
