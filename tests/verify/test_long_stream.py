@@ -308,3 +308,27 @@ def test_verify_fails_and_gate_entry_names_the_long_stream_failure(pair: tuple[A
     assert ls["first_failure"]["tensor"] in entry["detail"]
     page = long_stream_html(ls)
     assert "<h2>Long stream</h2>" in page and "data:image/png;base64," in page
+
+
+# ----- names and messages ------------------------------------------------------------------------
+@pytest.mark.parametrize("value", ["-1", "1001"])
+def test_bad_factor_exits_2_naming_the_option(value: str, tmp_path: Path) -> None:
+    from typer.testing import CliRunner
+
+    from seqgate.cli.app import app
+
+    r = CliRunner().invoke(app, ["verify", str(tmp_path / "none.onnx"), "--source", "m.keras", "--synthetic",
+                                 "--long-stream-factor", value])
+    assert r.exit_code == 2, r.output
+    text = " ".join(r.output.split())
+    assert f"--long-stream-factor must be in 0..1000, got {value}" in text
+    assert "does not exist" not in text  # checked before anything is loaded
+
+
+def test_headline_names_the_long_stream_failure() -> None:
+    from seqgate.verify.run import VerifyReport
+
+    rep = VerifyReport(passed=False, tensors=[], first_divergence=None, recordings=[], model={}, source={},
+                       seed=0, settings={}, environment={}, streaming={"passed": True, "runs": []},
+                       long_stream={"passed": False, "first_failure": {"message": "long:x: state 's/h_out' …"}})
+    assert rep.headline() == "FAILED: long-stream check: long:x: state 's/h_out' …" and rep.exit_code == 1
