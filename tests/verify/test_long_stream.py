@@ -332,3 +332,33 @@ def test_headline_names_the_long_stream_failure() -> None:
                        seed=0, settings={}, environment={}, streaming={"passed": True, "runs": []},
                        long_stream={"passed": False, "first_failure": {"message": "long:x: state 's/h_out' …"}})
     assert rep.headline() == "FAILED: long-stream check: long:x: state 's/h_out' …" and rep.exit_code == 1
+
+
+def test_stateful_stack_of_cells_carries_its_state() -> None:
+    """RNN([LSTMCell, GRUCell], stateful=True): the runner's per-cell clones are stateful too, so
+    Keras carries both cells' states chunk to chunk (= the equations over the whole stream)."""
+    from seqgate.runtimes.keras import KerasRunner
+
+    L = km.keras().layers
+    rng = np.random.default_rng(27)
+    model = km.functional((None, 3), lambda x: L.RNN([L.LSTMCell(4), L.GRUCell(3)], stateful=True,
+                                                     return_sequences=True, name="cells")(x),
+                          rng, name="cells", batch_size=2)
+    stream = make_streaming(km.export(model), "cells")
+    plain = ordinary_view(stream)
+    runner = KerasRunner(model, read_probe_map(stream), [o.name for o in plain.graph.output])
+    windows = rng.normal(size=(20, T, 3)).astype(np.float32)
+    rep = long_stream_check(stream, [_recording(windows)], input_specs(plain), runner, TOL, FACTOR, 0, 64)
+    assert rep["passed"], rep["first_failure"]
+    assert rep["sets"][0]["source_run"].startswith("stateful source")
+    # independent: Keras's stateful chunks against the equations (LSTM, then GRU with reset_after)
+    x = _joined(windows, 2)
+    lstm, gru = model.get_layer("cells").cell.cells
+    W, R, B = ref.keras_to_onnx("lstm", *lstm.get_weights())
+    h = ref.onnx_lstm(x.transpose(1, 0, 2), W, R, B)[0][:, 0]
+    W, R, B = ref.keras_to_onnx("gru", *gru.get_weights(), reset_after=True)
+    want = ref.onnx_gru(h, W, R, B, linear_before_reset=1)[0][:, 0].transpose(1, 0, 2)
+    runner.reset_states()
+    got = np.concatenate([runner.run_carrying({"x": x[:, a:a + T]})[plain.graph.output[0].name]
+                          for a in range(0, x.shape[1], T)], axis=1)
+    km.assert_matches([got], [want], "stateful cells")
