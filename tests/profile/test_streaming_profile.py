@@ -73,3 +73,5 @@ def test_demo_streaming_gate(tmp_path: Path) -> None:
     assert data["profile"]["streaming"]["call_budgets"][0]["chunk"] == 1
     html = (tmp_path / "out" / "report.html").read_text()
     assert "<h2>Streaming</h2>" in html and "streaming drift chart" in html
+    assert "long_stream" in names and data["verify"]["long_stream"]["factor"] == 10  # the default
+    assert "long-stream error growth chart" in html

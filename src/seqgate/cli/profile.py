@@ -79,12 +79,9 @@ def profile_command(
         result = profile_model(model, source=source, weights=weights, progress=progress,
                                custom_code=custom_code, **opts)
     data = result.to_dict()
-    if report is not None:
-        write_json(data, report)
-    if csv is not None:
-        write_csv(data, csv)
-    if plot is not None:
-        write_plot(data, plot)
+    for path, write in ((report, write_json), (csv, write_csv), (plot, write_plot)):
+        if path is not None:
+            write(data, path)
     print_tables(data)
     if not data["passed"]:
         raise typer.Exit(EXIT_CHECK_FAILED)

@@ -16,6 +16,8 @@ from seqgate.cli.progress import stage_display
 from seqgate.settings import defaults as d
 from seqgate.util.files import check_writable
 
+PASSED = ("synthetic", "batch_size", "states", "oracle", "task", "seed", "chunk", "workers", "cluster",
+          "long_stream_factor")  # parsed options handed to verify_model as they are
 TOLERANCE_HELP = (
     "TOML file: top-level atol/rtol, plus \\[\\[tolerance]] tables with match = \"fnmatch pattern\" and "
     "atol and/or rtol; the last matching table wins."
@@ -56,6 +58,9 @@ def verify(
     seed: Annotated[int, typer.Option("--seed", help="Seed of the synthetic windows.")] = d.SEED,
     chunk: Annotated[int, typer.Option("--chunk", help="Streaming files: the chunk size streamed besides "
                                        "1 and 7.")] = d.CHUNK,
+    long_stream_factor: Annotated[int, typer.Option(
+        "--long-stream-factor", help="Streaming files: the long-stream check runs streams this many window "
+        "lengths long through the file and the source (0: off).")] = d.LONG_STREAM_FACTOR,
     workers: Annotated[int, typer.Option("--workers", help="Check the windows on N Ray workers (a local Ray "
                                          "unless --cluster; 0: in this process).")] = d.WORKERS,
     cluster: Annotated[str, typer.Option("--cluster", help="A running Ray cluster, HOST:PORT.")] = d.CLUSTER,
@@ -70,18 +75,14 @@ def verify(
     from seqgate.verify.run import verify_model
 
     opts = _parse_options(custom_code, synthetic, seed, batch_size, states, task, oracle, chunk, workers,
-                          cluster, tolerances, atol, rtol)
+                          cluster, tolerances, atol, rtol, long_stream_factor)
     for p, option in ((report, "--report"), (junit, "--junit"), (summary, "--summary")):
         if p is not None:
             check_writable(p, force, option)
     with stage_display(quiet) as progress:
-        rep = verify_model(
-            model, source, weights, recordings=[*(recordings or []), *(old_windows or [])],
-            synthetic=opts["synthetic"], atol=atol, rtol=rtol,
-            tolerances=str(tolerances) if tolerances else None,
-            batch_size=opts["batch_size"], states=opts["states"], oracle=opts["oracle"], progress=progress,
-            task=opts["task"], seed=opts["seed"], chunk=opts["chunk"], workers=opts["workers"],
-            cluster=opts["cluster"], custom_code=custom_code)
+        rep = verify_model(model, source, weights, recordings=[*(recordings or []), *(old_windows or [])],
+                           atol=atol, rtol=rtol, tolerances=str(tolerances) if tolerances else None,
+                           progress=progress, custom_code=custom_code, **{k: opts[k] for k in PASSED})
     _write_reports(rep, report, junit, summary)
     if not quiet:
         _print_table(rep)
@@ -91,7 +92,8 @@ def verify(
 
 def _parse_options(custom_code: Path | None, synthetic: bool, seed: int, batch_size: int, states: bool,
                    task: str, oracle: bool, chunk: int, workers: int, cluster: str, tolerances: Path | None,
-                   atol: float | None, rtol: float | None) -> dict[str, Any]:
+                   atol: float | None, rtol: float | None, long_stream_factor: int = d.LONG_STREAM_FACTOR
+                   ) -> dict[str, Any]:
     """Every option through ``seqgate.settings``, all problems in one error (exit 2); custom code loaded."""
     if custom_code is not None:
         from seqgate.sources.keras import load_custom_code
@@ -102,7 +104,8 @@ def _parse_options(custom_code: Path | None, synthetic: bool, seed: int, batch_s
 
     problems = Problems()
     raw = {"synthetic": synthetic, "seed": seed, "batch_size": batch_size, "states": states, "task": task,
-           "oracle": oracle, "chunk": chunk, "workers": workers, "cluster": cluster}
+           "oracle": oracle, "chunk": chunk, "workers": workers, "cluster": cluster,
+           "long_stream_factor": long_stream_factor}
     opts = parse_settings("verify", raw, CLI, problems)
     read_tolerances(tolerances, atol, rtol, problems)  # --atol/--rtol with the file they override
     problems.raise_if_any()
@@ -157,6 +160,11 @@ def _print_table(rep: Any) -> None:
         mark = ("pass", "green") if r["passed"] else ("fail", "red")
         c.print(Text.assemble(("streaming:", "cyan"), f" chunk {r['chunk']}: {r['calls']} calls, max |Δ| "
                               f"{r['max_abs']:.2e} vs whole window ", mark))
+    for r in (rep.long_stream or {}).get("sets", []):
+        mark = ("pass", "green") if r["passed"] else ("fail", "red")
+        c.print(Text.assemble(("long stream:", "cyan"), " ", Text(r["label"]),
+                              f": {r['rows']} × {r['steps']} steps in {r['calls']} calls, max |Δ| outputs "
+                              f"{r['max_abs_outputs']:.2e}, states {r['max_abs_states']:.2e} vs source ", mark))
 
 
 @exits_on_error

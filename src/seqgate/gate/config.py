@@ -113,6 +113,7 @@ class GateConfig:
     custom_code: Path | None = None  # Keras: the user's file of custom classes, run only when named
     streaming: bool | None = None  # [export] streaming; None: only for Keras stateful layers
     chunk: int = d.CHUNK  # [verify] chunk
+    long_stream_factor: int = d.LONG_STREAM_FACTOR  # [verify] long_stream_factor (streaming files)
     chunks: tuple[int, ...] = d.CHUNKS  # [profile] chunks (streaming files)
     call_budgets: tuple[Budget, ...] = ()  # [[profile.call_budget]] (streaming files)
     lengths: str | Path = "full"  # [profile] lengths: "full", "uniform" or a recording (resolved)
@@ -205,7 +206,8 @@ def _assemble(c: Problems, p: Path, profile_enabled: bool, model: dict[str, Any]
         onnx=files.path(model["onnx"], "[model] onnx") if "onnx" in model else None,
         untrained=_untrained(c, model), expect_other_source=_other_source(c, model),
         custom_code=files.path(model["custom_code"], "[model] custom_code") if "custom_code" in model else None,
-        streaming=_streaming(c, export), chunk=v["chunk"], chunks=tuple(pr["chunks"]),
+        streaming=_streaming(c, export), chunk=v["chunk"], long_stream_factor=v["long_stream_factor"],
+        chunks=tuple(pr["chunks"]),
         call_budgets=tuple(pr["call_budget"]),
         lengths=files.path(str(pr["lengths"]), "[profile] lengths") if isinstance(pr["lengths"], Path)
         else pr["lengths"],

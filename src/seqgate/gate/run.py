@@ -320,6 +320,7 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
         synthetic=cfg.synthetic, tolerances=cfg.tolerances, batch_size=cfg.batch_size, states=cfg.states,
         oracle=cfg.oracle, progress=progress, task=cfg.task, seed=cfg.seed, chunk=cfg.chunk,
         workers=cfg.workers, cluster=cfg.cluster, custom_code=cfg.custom_code,
+        long_stream_factor=cfg.long_stream_factor,
     )
     report.verify = vr.to_json()
     for r in report.verify["recordings"]:  # hashed once, by verify
@@ -330,6 +331,10 @@ def _verify(report: GateReport, model_path: Path, weights: str | None, progress:
         from seqgate.report.streaming import streaming_check_entry
 
         report.checks.append(streaming_check_entry(vr.streaming))
+    if vr.long_stream is not None:
+        from seqgate.report.long_stream import long_stream_check_entry
+
+        report.checks.append(long_stream_check_entry(vr.long_stream))
 
 
 def _profile(report: GateReport, model_path: Path, weights: str | None, progress: Progress,

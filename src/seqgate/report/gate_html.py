@@ -17,6 +17,7 @@ import html
 import io
 from typing import Any
 
+from seqgate.report.long_stream import long_stream_html
 from seqgate.report.mask_chart import mask_section
 from seqgate.report.profile_report import padded_label
 from seqgate.report.streaming import streaming_html
@@ -416,6 +417,7 @@ def render_gate_html(report: dict[str, Any]) -> str:
         _divergence(report.get("verify")),
         _verify_section(report.get("verify")),
         streaming_html((report.get("verify") or {}).get("streaming")),
+        long_stream_html((report.get("verify") or {}).get("long_stream")),
         mask_section(report.get("verify")),
         _profile_section(report.get("profile"), pct),
         _variants_section(report.get("variants")),

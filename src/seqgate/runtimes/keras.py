@@ -46,10 +46,21 @@ import numpy as np
 
 from seqgate.errors import Unsupported, UnsupportedModelError
 from seqgate.onnxfile.probes import Probe
+from seqgate.runtimes.batches import pad_rows, run_in_groups
 from seqgate.sources.keras_graph import graph_nodes, is_nested
 from seqgate.util.outputs import flatten_outputs
 
 SELF_CHECK_ATOL = 1e-6  # the re-execution runs the same TensorFlow kernels; only op fusion may differ
+
+
+def _fits(spec_tensor: Any, x: Any) -> bool:
+    """``x`` fits the model input's fixed dims (batch aside)."""
+    return all(d is None or int(d) == int(n) for d, n in zip(spec_tensor.shape[1:], x.shape[1:], strict=True))
+
+
+def _free_shape(shape: tuple[Any, ...]) -> tuple[Any, ...]:
+    """Every dim free but the features (last) of a rank ≥ 3 input; all free for ``[batch, time]``."""
+    return (None,) * (len(shape) - 1) + shape[-1:] if len(shape) > 2 else (None,) * len(shape)
 
 
 def _functional(model: Any) -> Any:
@@ -103,17 +114,20 @@ def _clone(layer: Any, input_shape: tuple[Any, ...], name: str) -> Any:
     return clone
 
 
-def _cell_clone(layer: Any, k: int, features: int, name: str) -> Any:
-    """Cell k of an ``RNN([cells])`` as its own RNN returning sequences and states, same weights."""
+def _cell_clone(layer: Any, k: int, shape: tuple[Any, ...], name: str) -> Any:
+    """Cell k of an ``RNN([cells])`` as its own RNN returning sequences and states, same weights
+    (stateful, with the layer's fixed batch, when the layer is)."""
     from seqgate.util.frameworks import import_keras
 
     keras = import_keras()
     cell = layer.cell.cells[k]
     copy = type(cell).from_config(cell.get_config())
-    rnn = keras.layers.RNN(copy, return_sequences=True, return_state=True,
+    stateful = bool(getattr(layer, "stateful", False))
+    rnn = keras.layers.RNN(copy, return_sequences=True, return_state=True, stateful=stateful,
                            go_backwards=bool(layer.go_backwards) and k == 0,
                            zero_output_for_mask=bool(layer.zero_output_for_mask), name=name)
-    rnn.build((None, None, features if k == 0 else _output_size(layer.cell.cells[k - 1])))
+    features = int(shape[-1]) if k == 0 else _output_size(layer.cell.cells[k - 1])
+    rnn.build((shape[0] if stateful else None, None, features))
     rnn.set_weights(cell.get_weights())
     return rnn
 
@@ -159,6 +173,10 @@ class KerasRunner:
         sig = [tf.TensorSpec((None, *t.shape[1:]), dtype=str(t.dtype)) for t in self.graph.inputs]
         self._fn = tf.function(self._forward, input_signature=sig)
         self._plain = tf.function(self._model_call, input_signature=sig)
+        self._free_fn: Any = None  # _forward with every time dim free (built when a call needs it)
+        self.fixed_batch = next((int(t.shape[0]) for t in self.graph.inputs if t.shape[0] is not None), None)
+        self._stateful = [op for op in [*self._operations, *self._clones.values()]
+                          if getattr(op, "stateful", False) and getattr(op, "states", None) is not None]
 
     def _name(self, layer: Any) -> str:
         return self._names.get(id(layer), layer.name)
@@ -176,7 +194,7 @@ class KerasRunner:
             shape = tuple(node.input_tensors[0].shape)
             if type(getattr(layer, "cell", None)).__name__ == "StackedRNNCells":
                 for k in range(len(layer.cell.cells)):  # one RNN per cell: see _stacked
-                    self._clones[f"{full}#cell{k}"] = _cell_clone(layer, k, int(shape[-1]),
+                    self._clones[f"{full}#cell{k}"] = _cell_clone(layer, k, shape,
                                                                   f"seqgate_probe_{n}_{k}")
             elif type(layer).__name__ == "Bidirectional":
                 self._clones[full + "#fw"] = _clone(layer.forward_layer, shape, f"seqgate_probe_{n}_fw")
@@ -312,16 +330,68 @@ class KerasRunner:
             arrays = list(feeds.values())
         return [self.tf.constant(a) for a in arrays]
 
+    @property
+    def stateful(self) -> bool:
+        """The model has ``stateful=True`` layers: Keras carries their state from call to call."""
+        return bool(self._stateful)
+
+    def reset_states(self) -> None:
+        """Zero the carried state of every stateful layer, the model's own and the probe clones'.
+        (Assigned here: ``RNN.reset_state`` fails on stacks of multi-state cells, FACTS.md.)"""
+        for layer in self._stateful:
+            for v in self.keras.tree.flatten(layer.states):
+                v.assign(np.zeros(tuple(v.shape), dtype=str(v.dtype)))
+
     def run(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
-        """Outputs by ONNX output name, then every probe (the model alone when there are none)."""
-        res = self._fn(*self._feeds(feeds)) if self.probes else self._plain(*self._feeds(feeds))
+        """Outputs by ONNX output name, then every probe (the model alone when there are none).
+
+        Every window is independent: a stateful model's states are zeroed before each call, and a
+        model with a fixed batch size takes any number of windows (``seqgate.runtimes.batches``)."""
+        if self.fixed_batch is not None:
+            return run_in_groups(self._run_fresh, feeds, self.fixed_batch)
+        return self._run_fresh(feeds)
+
+    def run_carrying(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
+        """The next chunk of a stream through a stateful model: the states Keras carries from the
+        previous call are kept (call :meth:`reset_states` before a stream's first chunk). At most
+        ``fixed_batch`` rows, padded to it (rows are independent)."""
+        n = next(iter(feeds.values())).shape[0]
+        if self.fixed_batch is not None:
+            feeds = {k: pad_rows(v, self.fixed_batch) for k, v in feeds.items()}
+        return {k: v[:n] for k, v in self._call(feeds).items()}
+
+    def _run_fresh(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
+        if self._stateful:
+            self.reset_states()
+        return self._call(feeds)
+
+    def _call(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
+        tensors = self._feeds(feeds)
+        if not self.probes:
+            res = self._plain(*tensors)
+        elif all(_fits(t, x) for t, x in zip(self.graph.inputs, tensors, strict=True)):
+            res = self._fn(*tensors)
+        else:  # a stream longer than the model's fixed window: only the recurrent steps see time
+            res = self._free_function()(*tensors)
         names = [*self.output_names, *(p.name for p in self.probes)]
         return dict(zip(names, self.outputs(res), strict=True))
 
+    def _free_function(self) -> Any:
+        if self._free_fn is None:
+            spec = self.tf.TensorSpec
+            sig = [spec(_free_shape(tuple(t.shape)), dtype=str(t.dtype)) for t in self.graph.inputs]
+            self._free_fn = self.tf.function(self._forward, input_signature=sig)
+        return self._free_fn
+
     def run_plain(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
-        """The original model alone (the bare inference the benchmark compares against)."""
-        res = self._plain(*self._feeds(feeds))
-        return dict(zip(self.output_names, self.outputs(res), strict=True))
+        """The original model alone (the bare inference the benchmark compares against); windows
+        independent as in :meth:`run`."""
+        def plain(f: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
+            if self._stateful:
+                self.reset_states()
+            return dict(zip(self.output_names, self.outputs(self._plain(*self._feeds(f))), strict=True))
+
+        return run_in_groups(plain, feeds, self.fixed_batch) if self.fixed_batch is not None else plain(feeds)
 
     @contextlib.contextmanager
     def timed_call(self, feeds: dict[str, np.ndarray[Any, Any]], threads: int) -> Iterator[Callable[[], Any]]:

@@ -23,6 +23,7 @@ import numpy as np
 
 from seqgate.errors import BadInputError
 from seqgate.onnxfile.probes import Probe, to_canonical, with_probe_outputs
+from seqgate.runtimes.batches import fixed_batch, run_in_groups
 from seqgate.util.text import first_line
 
 
@@ -68,9 +69,16 @@ class OnnxRunner:
                                 f"`seqgate inspect`, or export it again.") from e
         self.recorded["providers"] = self.session.get_providers()
         self._fetch = list(dict.fromkeys([*self.output_names, *(p.value for p in self.probes)]))
+        self.fixed_batch = fixed_batch(model)
 
     def run(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
-        """Every graph output by name, then every probe in DESIGN.md's axes."""
+        """Every graph output by name, then every probe in DESIGN.md's axes. A model with a fixed
+        batch size takes any number of windows (``seqgate.runtimes.batches``)."""
+        if self.fixed_batch is not None:
+            return run_in_groups(self._run, feeds, self.fixed_batch)
+        return self._run(feeds)
+
+    def _run(self, feeds: dict[str, np.ndarray[Any, Any]]) -> dict[str, np.ndarray[Any, Any]]:
         res = self.session.run(self._fetch, feeds)
         by_value = dict(zip(self._fetch, res, strict=True))
         out = {n: np.asarray(by_value[n]) for n in self.output_names}

@@ -28,6 +28,8 @@ TASKS = ("auto", "classify", "regress")
 ORACLE = False
 # streaming files: chunk size streamed besides 1 and 7 (seqgate.verify.streaming)
 CHUNK = 16
+# streaming files: the long-stream check's length in window lengths (0: off; seqgate.verify.long_stream)
+LONG_STREAM_FACTOR = 10
 WORKERS = 0  # 0: verify in this process; N: N Ray workers (an embedded local Ray unless CLUSTER)
 CLUSTER = ""  # "": no cluster; else the address of a running Ray cluster (HOST:PORT)
 # profile

@@ -26,6 +26,7 @@ from seqgate.settings.values import (
     parse_percentile,
     parse_seconds,
     parse_seed,
+    parse_stream_factor,
     parse_task,
     parse_tolerance,
     parse_warmup,
@@ -79,6 +80,9 @@ SETTINGS: tuple[Setting, ...] = (
             "re-run the worst windows under onnx.reference"),
     Setting("verify", "chunk", "--chunk", "streaming.chunk_sizes", d.CHUNK, parse_count,
             "streaming files: the chunk size streamed besides 1 and 7"),
+    Setting("verify", "long_stream_factor", "--long-stream-factor", "long_stream.factor", d.LONG_STREAM_FACTOR,
+            parse_stream_factor, "streaming files: long-stream length in window lengths (0: no long-stream "
+            "check)"),
     Setting("verify", "workers", "--workers", "settings.workers", d.WORKERS, parse_workers,
             "Ray workers that share the windows (0: verify in this process)"),
     Setting("verify", "cluster", "--cluster", "settings.cluster", d.CLUSTER, parse_cluster,

@@ -137,6 +137,11 @@ def parse_workers(value: Any, where: str) -> int:
     return parse_int(value, where, 0, 1024)
 
 
+def parse_stream_factor(value: Any, where: str) -> int:
+    """Long-stream length in window lengths: 0 (the check is off) up to 1000."""
+    return parse_int(value, where, 0, 1000)
+
+
 def parse_cluster(value: Any, where: str) -> str:
     """The address of a running Ray cluster, ``HOST:PORT`` (``ray://HOST:PORT`` for a Ray client
     server), or ``""`` for none."""

@@ -80,6 +80,7 @@ class VerifyReport:
     warnings: list[str] = field(default_factory=list)
     provenance: dict[str, Any] | None = None
     streaming: dict[str, Any] | None = None  # seqgate.verify.streaming, for a streaming file
+    long_stream: dict[str, Any] | None = None  # seqgate.verify.long_stream, for a streaming file
     workers: dict[str, Any] | None = None  # Ray workers' record (seqgate.verify.cluster), else None
 
     @property
@@ -91,9 +92,11 @@ class VerifyReport:
             worst = max((t["metrics"]["max_abs"] or 0.0 for t in self.tensors), default=0.0)
             return (f"PASSED: {len(self.tensors)} tensors on {len(self.recordings)} recordings within "
                     f"tolerance (largest |Δ| {worst:.3g}).")
-        if self.first_divergence is None and self.streaming:
+        if self.first_divergence is None and self.streaming and not self.streaming["passed"]:
             fails = [f for r in self.streaming["runs"] for f in r["failures"]]
             return f"FAILED: streaming check: {fails[0] if fails else 'see the streaming section'}"
+        if self.first_divergence is None and self.long_stream and self.long_stream["first_failure"]:
+            return f"FAILED: long-stream check: {self.long_stream['first_failure']['message']}"
         fd = self.first_divergence or {}
         step = f" from step {fd['step']}" if fd.get("step") is not None else ""
         return (f"FAILED: first divergence at {fd.get('kind')} '{fd.get('tensor')}'"
@@ -106,7 +109,7 @@ class VerifyReport:
             "schema": SCHEMA, "passed": self.passed, "headline": self.headline(),
             "first_divergence": self.first_divergence, "tensors": self.tensors,
             "recordings": self.recordings, "model": self.model, "source": self.source,
-            "provenance": self.provenance, "streaming": self.streaming,
+            "provenance": self.provenance, "streaming": self.streaming, "long_stream": self.long_stream,
             "seed": self.seed, "settings": self.settings, "oracle": self.oracle,
             "warnings": self.warnings, "environment": self.environment, "workers": self.workers,
             "seqgate_version": self.environment.get("seqgate"),
@@ -207,6 +210,7 @@ def verify_model(
     task: str | None = d.TASK,
     seed: int = d.SEED,
     chunk: int = d.CHUNK,
+    long_stream_factor: int = d.LONG_STREAM_FACTOR,
     observe: Any = None,
     workers: int = d.WORKERS,
     cluster: str = d.CLUSTER,
@@ -243,8 +247,12 @@ def verify_model(
                                        progress or SILENT)
     oracle_out = _oracle(model, probes, infos, results, onnx_runner, src_runner, tol) if oracle else None
     streaming = _streaming(stream_model, recs, specs, src_runner, tol, opts["chunk"])
-    return _report(infos, results, comparer, path, specs, src, seed, opts, tol, tolerances, oracle_out,
-                   warnings, prov, ray_record, streaming)
+    long_stream = _long_stream(stream_model, recs, specs, src_runner, tol, opts)
+    report = _report(infos, results, comparer, path, specs, src, seed, opts, tol, tolerances, oracle_out,
+                     warnings, prov, ray_record, streaming)
+    report.long_stream = long_stream
+    report.passed = report.passed and (long_stream is None or long_stream["passed"])
+    return report
 
 
 def _report(infos: list[TensorInfo], results: list[SetResult], comparer: Comparer, path: Path,
@@ -289,6 +297,17 @@ def _streaming(stream_model: Any, recs: list[Recording], specs: list[InputSpec],
     from seqgate.verify.streaming import verify_streaming
 
     return verify_streaming(stream_model, recs, specs, src_runner.run, tol.atol, tol.rtol, chunk)
+
+
+def _long_stream(stream_model: Any, recs: list[Recording], specs: list[InputSpec], src_runner: Any,
+                 tol: Tolerances, opts: dict[str, Any]) -> dict[str, Any] | None:
+    """The long-stream section (``seqgate.verify.long_stream``) of a streaming file; None otherwise."""
+    if stream_model is None:
+        return None
+    from seqgate.verify.long_stream import long_stream_check
+
+    return long_stream_check(stream_model, recs, specs, src_runner, tol, opts["long_stream_factor"],
+                             opts["seed"], opts["batch_size"])
 
 
 def _model_record(path: Path, specs: list[InputSpec]) -> dict[str, Any]:
@@ -359,7 +378,7 @@ def _settings(args: dict[str, Any]) -> tuple[dict[str, Any], Tolerances]:
     """``verify_model``'s arguments through ``seqgate.settings``; every problem in one error (exit 2)."""
     problems = Problems()
     raw = {k: args[k] for k in ("synthetic", "seed", "batch_size", "states", "task", "oracle", "chunk",
-                                 "workers", "cluster")}
+                                 "long_stream_factor", "workers", "cluster")}
     opts = parse_settings("verify", {**raw, "task": raw["task"] or d.TASK}, PYTHON, problems)
     tol = args["tolerances"]
     if not isinstance(tol, Tolerances):

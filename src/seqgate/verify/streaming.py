@@ -259,12 +259,17 @@ def streaming_check(model: Any, batches: list[tuple[str, Feeds]], atol: float, r
 def verify_streaming(model: Any, recs: list[Any], specs: list[Any],
                      source_run: Callable[[Feeds], dict[str, Array]], atol: float, rtol: float,
                      chunk: int | None) -> dict[str, Any]:
-    """``streaming_check`` over the first ``STREAM_WINDOWS`` windows of every set of a verify run."""
+    """``streaming_check`` over the first ``STREAM_WINDOWS`` windows of every set of a verify run
+    (a file with a fixed batch size B: the first B windows, the last one repeated if a set is shorter)."""
+    from seqgate.runtimes.batches import fixed_batch, pad_rows
     from seqgate.verify.recordings import to_model_layout
 
+    size = fixed_batch(model, outputs=False)
     batches = []
     for rec in recs:
-        for _, feeds in rec.batches(STREAM_WINDOWS):
+        for _, feeds in rec.batches(size or STREAM_WINDOWS):
+            if size:
+                feeds = {k: pad_rows(v, size) for k, v in feeds.items()}
             batches.append((rec.label, to_model_layout(feeds, specs)))
             break
     return streaming_check(model, batches, atol, rtol, chunk, source_run)

@@ -127,6 +127,22 @@ def synthetic_sets(specs: list[InputSpec], stats: dict[str, FeatureStats] | None
     return out
 
 
+def scaled_windows(specs: list[InputSpec], stats: dict[str, FeatureStats] | None, seed: int, windows: int,
+                   steps: int) -> dict[str, np.ndarray[Any, Any]]:
+    """``synthetic:scaled`` windows (module docstring) with ``steps`` steps along every input's
+    time axis, from their own stream ``default_rng([seed, 200])`` (the long-stream check's input)."""
+    per = {s.name: (stats or {}).get(s.name) or _default_stats(s) for s in specs}
+    rng = np.random.default_rng([seed, 200])
+    out = {}
+    for s in specs:
+        shape = (windows, *per[s.name].shape)
+        t = time_axis(s)
+        if t is not None:
+            shape = (*shape[:t], steps, *shape[t + 1:])
+        out[s.name] = _draw("scaled", s, per[s.name], shape, rng)
+    return out
+
+
 def steps_exercised(specs: list[InputSpec], recs: list[Recording]) -> int | None:
     """The longest time axis any set feeds to any input that has one (None: no input has one)."""
     longest: int | None = None
