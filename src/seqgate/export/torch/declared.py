@@ -92,8 +92,8 @@ def parse_one(text: str) -> Declared:
     parts = head.split(":")
     name = parts[0].strip()
     if len(parts) not in (2, 3) or not _NAME.match(name):
-        raise _bad(text, "expected a NAME (a forward() parameter, or PARAM.KEY for a tensor of a dict "
-                         "or dataclass parameter), a colon and the dims.")
+        raise _bad(text, "expected NAME:DIM,DIM,... with NAME a forward() parameter (or PARAM.KEY for "
+                         "a tensor of a dict or dataclass parameter), then at most one more :DTYPE.")
     dims_text = parts[1]
     dims = tuple(_dim(text, d.strip()) for d in dims_text.split(",")) if dims_text.strip() else ()
     dtype = parts[2].strip() if len(parts) == 3 else None
