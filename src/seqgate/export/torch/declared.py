@@ -110,6 +110,8 @@ def parse_one(text: str) -> Declared:
         low, high = _bound(text, lo_text), _bound(text, hi_text)
         if isinstance(low, int) and isinstance(high, int) and low > high:
             raise _bad(text, f"the range {low}..{high} is empty (LOW is above HIGH).")
+    if dtype == "bool":
+        low, high = 0, 1
     return Declared(name, dims, dtype, low, high)
 
 
