@@ -1,10 +1,22 @@
 """Forward parameters that hold several tensors (a dict, a dataclass, a tuple or list).
 
-An ONNX graph input is one tensor; seqgate maps each tensor parameter of ``forward`` to one
-input. A parameter that holds several tensors is refused (exit 3) with a message that says
-what seqgate saw — the parameter and its type annotation, or the keys/fields the forward
-reads from it — and shows a six-line wrapper module whose ``forward`` takes the tensors one
-by one and rebuilds the structure.
+An ONNX graph input is one tensor. A dict or dataclass parameter is exported when every tensor
+of it is declared on the command line, ``--input PARAM.KEY:DIMS`` (:func:`flat_forward`):
+
+- each declared tensor becomes one ONNX input named ``PARAM.KEY`` (``batch.encoder_cont``):
+  the name the user wrote, so the option, the recording's array key and the report agree, and
+  a dot cannot collide with a forward() parameter name (``PARAM__KEY`` could). While tracing
+  it is the identifier ``PARAM__KEY``; the export renames it at the graph boundary;
+- a parameter annotated with a dataclass is built as ``Cls(KEY=tensor, ...)`` (its fields
+  without defaults must all be declared); any other parameter (unannotated, ``dict``,
+  ``Mapping``, ``TypedDict``) is a dict ``{KEY: tensor}``;
+- the ONNX file records the mapping (``seqgate.input_structure``,
+  ``seqgate.onnxfile.input_meta``) so verify and profile rebuild the structure for the source.
+
+Without those options a parameter that holds several tensors is refused (exit 3) with a
+message that says what seqgate saw — the parameter and its type annotation, or the
+keys/fields the forward reads from it — and names the option, or shows a six-line wrapper
+module whose ``forward`` takes the tensors one by one and rebuilds the structure.
 
 Two checks: :func:`refuse_annotated` before tracing (the annotation names a dict, mapping,
 dataclass, tuple or list), :func:`refuse_read_as_structure` after tracing (the traced graph
@@ -145,11 +157,17 @@ def _problem(module: Any, name: str, how: str, kind: str, keys: list[str],
         f"\n          def forward(self, {args}):"
         f"\n              return self.model({built})"
     )
+    structured = kind in ("dict", "mapping", "ordereddict", "typeddict", "dataclass")
+    option = (f"declare each tensor on the command line, "
+              f"{' '.join(f'--input {name}.{n}:DIM,DIM,...' for n in names)} (each becomes an ONNX "
+              f"input named {name}.KEY and seqgate builds the {kind} from them"
+              f"{', so declare every field without a default' if kind == 'dataclass' else ''}), or "
+              if structured else "")
     return Unsupported(
         f"{cls}.forward parameter {name!r}",
         f"holds several tensors ({kind}; {how}); an ONNX input is one tensor",
-        f"export a wrapper whose forward takes the tensors one by one (each becomes an ONNX input "
-        f"under its own name; give dims with --input {names[0]}:batch,time,N):{wrapper}")
+        f"{option}export a wrapper whose forward takes the tensors one by one (each becomes an ONNX "
+        f"input under its own name; give dims with --input {names[0]}:batch,time,N):{wrapper}")
 
 
 # ----- --input PARAM.KEY: named tensors of a dict or dataclass parameter ----------------------
