@@ -246,7 +246,7 @@ def test_recording_that_breaks_the_relation_is_refused(tmp_path: Path, rng: np.r
     np.savez(path, enc=rand(rng, 4, 5, 3), dec=rand(rng, 4, 11, 2))
     load_recording(path, input_specs(model))  # 11 = 5 + 6
     np.savez(path, enc=rand(rng, 4, 5, 3), dec=rand(rng, 4, 9, 2))
-    with pytest.raises(BadInputError, match="dim 'time\\+6' of input 'dec' is 9.*should be 11"):
+    with pytest.raises(BadInputError, match=r"dim 'time\+6' of input 'dec' is 9.*should be 11"):
         load_recording(path, input_specs(model))
 
 
