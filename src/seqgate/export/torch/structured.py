@@ -158,8 +158,9 @@ def _problem(module: Any, name: str, how: str, kind: str, keys: list[str],
         f"\n              return self.model({built})"
     )
     structured = kind in ("dict", "mapping", "ordereddict", "typeddict", "dataclass")
-    option = (f"declare each tensor on the command line, "
-              f"{' '.join(f'--input {name}.{n}:DIM,DIM,...' for n in names)} (each becomes an ONNX "
+    each = (" ".join(f"--input {name}.{n}:DIM,DIM,..." for n in names) if keys
+            else f"--input {name}.KEY:DIM,DIM,... for each KEY the forward reads")
+    option = (f"declare each tensor on the command line, {each} (each becomes an ONNX "
               f"input named {name}.KEY and seqgate builds the {kind} from them"
               f"{', so declare every field without a default' if kind == 'dataclass' else ''}), or "
               if structured else "")
@@ -227,12 +228,18 @@ def _entry(sig: inspect.Signature, param: str, keys: list[str], cls: str, shown:
                 f"fields without defaults (and any others you want as inputs) as --input {param}.FIELD:DIMS.")
         ann = p.annotation
         return {"kind": "dataclass", "class": f"{ann.__module__}.{ann.__qualname__}", **record}
-    if kind not in _DICT_KINDS:
+    if kind not in _DICT_KINDS or (kind is None and not _open_annotation(p.annotation)):
         raise BadInputError(
             f"--input {shown}: {cls}.forward parameter {param!r} is annotated "
             f"`{_annotation_text(p.annotation)}`; PARAM.KEY names one tensor of a dict or dataclass "
             f"parameter. Declare the parameter itself with --input {param}:DIMS instead.")
     return {"kind": "dict", **record}
+
+
+def _open_annotation(annotation: Any) -> bool:
+    """No annotation, or ``Any``: the parameter may be a dict."""
+    text = annotation if isinstance(annotation, str) else getattr(annotation, "_name", None) or ""
+    return annotation is inspect.Parameter.empty or text.replace("typing.", "") == "Any"
 
 
 class _DeclaredDict(dict):  # type: ignore[type-arg]
