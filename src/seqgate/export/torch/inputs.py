@@ -7,8 +7,8 @@ Graph inputs are the parameters of ``forward``, in order, under their own names:
   unless ``--input NAME:DIMS`` names it, which makes it a tensor input;
 - a tensor input that the traced graph never reads is left out of the ONNX file.
 
-Dims of a tensor input come from ``--input NAME:DIM,DIM,...`` (integers or symbolic names) or
-are inferred from the first module that consumes it (through dropout/identity/activation
+Dims of a tensor input come from ``--input NAME:DIM,DIM,...`` (integers, symbolic names or
+``NAME+K``; the option's dtype and value range too: ``declared.py``) or are inferred from the first module that consumes it (through dropout/identity/activation
 modules and ``contiguous``/``float``):
 
 - ``nn.RNN/GRU/LSTM`` input: ``[batch, time, I]`` when ``batch_first`` else ``[time, batch, I]``;
@@ -30,7 +30,8 @@ Conv1d gives ``[batch, time, C_in]``).
 
 Static shapes: the module runs twice (``torch.no_grad``) on seeded random inputs whose symbolic
 dims take different values in the two runs (batch 3/2, time 13/17, others from two disjoint
-pools). A dim of an intermediate tensor that is equal in both runs is static; a dim that follows
+pools: ``samples.py``). A failed run is exit 2 (:class:`GuessedShapeError`), naming the shapes
+seqgate guessed, if any. A dim of an intermediate tensor that is equal in both runs is static; a dim that follows
 one symbol's values in both runs is named after it on graph outputs.
 """
 
