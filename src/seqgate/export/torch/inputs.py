@@ -8,8 +8,9 @@ Graph inputs are the parameters of ``forward``, in order, under their own names:
 - a tensor input that the traced graph never reads is left out of the ONNX file.
 
 Dims of a tensor input come from ``--input NAME:DIM,DIM,...`` (integers, symbolic names or
-``NAME+K``; the option's dtype and value range too: ``declared.py``) or are inferred from the first module that consumes it (through dropout/identity/activation
-modules and ``contiguous``/``float``):
+``NAME+K``; the option's dtype and value range too: ``declared.py``) or are inferred from
+the first module that consumes it (through dropout/identity/activation modules and
+``contiguous``/``float``):
 
 - ``nn.RNN/GRU/LSTM`` input: ``[batch, time, I]`` when ``batch_first`` else ``[time, batch, I]``;
   its ``h0``/``c0`` argument: ``[L·D, batch, H]`` (``batch_first`` never changes states); a
@@ -31,8 +32,8 @@ Conv1d gives ``[batch, time, C_in]``).
 Static shapes: the module runs twice (``torch.no_grad``) on seeded random inputs whose symbolic
 dims take different values in the two runs (batch 3/2, time 13/17, others from two disjoint
 pools: ``samples.py``). A failed run is exit 2 (:class:`GuessedShapeError`), naming the shapes
-seqgate guessed, if any. A dim of an intermediate tensor that is equal in both runs is static; a dim that follows
-one symbol's values in both runs is named after it on graph outputs.
+seqgate guessed, if any. A dim of an intermediate tensor that is equal in both runs is static;
+a dim that follows one symbol's values in both runs is named after it on graph outputs.
 """
 
 from __future__ import annotations
