@@ -375,7 +375,8 @@ def _record(gm: Any, plan: Plan, sizes: dict[str, int], seed: int, label: str) -
                            for s in plan.inputs)
         guessed = [s for s in plan.inputs if s.how != "--input"]
         said = ("; no --input gave the shape, so seqgate guessed " + ", ".join(
-            f"{s.name} as [{', '.join(str(d) for d in s.dims)}] (from {s.how})" for s in guessed)
+            f"{plan.onnx_names.get(s.name, s.name)} as [{', '.join(str(d) for d in s.dims)}] (from {s.how})"
+            for s in guessed)
             + f", and the guess is probably wrong. Pass the real shape with --input {guessed[0].name}:"
               f"DIM,DIM,... (e.g. --input {guessed[0].name}:batch,time,N)") if guessed else (
             ". Check the dims given with --input")
