@@ -144,6 +144,12 @@ def test_dict_forward_exports_and_verifies(nets: dict[str, Path], rng: np.random
     assert report["passed"] and [i["name"] for i in report["model"]["inputs"]] == [
         "batch.encoder_cont", "batch.target_scale"]
     assert "recorded" in {r["kind"] for r in report["recordings"]}
+    prof = nets["dir"] / "forecaster.profile.json"
+    r = _invoke("profile", str(model), *FAST, "--source", f"{nets['py']}:forecaster", "--weights",
+                str(nets["forecaster"]), "--report", str(prof))
+    assert r.exit_code == 0, r.output
+    runtimes = {p["runtime"] for p in json.loads(prof.read_text())["points"]}
+    assert runtimes == {"onnxruntime", "torch"}, runtimes  # the source ran on the rebuilt dict
 
 
 def test_integer_lengths_verify_and_profile(nets: dict[str, Path], rng: np.random.Generator) -> None:

@@ -87,7 +87,8 @@ def _draw(kind: str, spec: InputSpec, st: FeatureStats, shape: tuple[int, ...],
         if kind in ("scaled", "long"):
             x = rng.integers(lo, hi + 1, size=shape)
         elif kind == "zeros":
-            x = np.full(shape, min(max(0, lo), hi))  # the declared range's value nearest zero
+            # a declared range's value nearest zero (a length of 0 may be invalid); else zeros
+            x = np.full(shape, min(max(0, lo), hi)) if bounds else np.zeros(shape)
         elif kind == "constants":
             x = np.broadcast_to(np.round(np.linspace(lo, hi, n)).reshape((n,) + (1,) * (len(shape) - 1)), shape)
         else:
