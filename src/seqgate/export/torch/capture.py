@@ -39,6 +39,7 @@ from seqgate.export.torch.inputs import (
     Plan,
     TMeta,
     forward_params,
+    guessed_shape_error,
     infer_inputs,
     output_dims,
     record_runs,
@@ -50,7 +51,7 @@ from seqgate.export.torch.structured import (
     renamed_metadata,
     structure_metadata,
 )
-from seqgate.export.torch.untraceable import SampleRunFailed, guessed_shape_error, untraceable
+from seqgate.export.torch.untraceable import SampleRunFailed, untraceable
 from seqgate.export.torch.values import TV, UNKNOWN, TorchCall, source_line
 from seqgate.sources.spec import Source
 from seqgate.util.outputs import flatten_with_paths
@@ -203,7 +204,7 @@ def _loop_capture(module: Any, plan: Plan, user: dict[str, Any], label: str, cel
         if not guessed:
             raise
         how = "from the input_size of the model's first recurrent module or cell"
-        raise GuessedShapeError(str(guessed_shape_error(label, guessed, how, e.error))) from None
+        raise guessed_shape_error(label, guessed, how, e.error) from None
     return clean(gm, label)
 
 

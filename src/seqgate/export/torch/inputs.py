@@ -44,7 +44,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
-from seqgate.export.torch.declared import Declared, parse_inputs
+from seqgate.export.torch.declared import Declared
 from seqgate.export.torch.samples import sample_args, symbol_values
 from seqgate.util.text import first_line
 
@@ -111,12 +111,6 @@ class DynInt:
 
     a: int
     b: int
-
-
-# ----- --input parsing (declared.py) ------------------------------------------------------
-def parse_input_options(texts: list[str] | None) -> dict[str, tuple[int | str, ...]]:
-    """``["x:batch,time,8"]`` → ``{"x": ("batch", "time", 8)}``; exit 2 on a malformed spec."""
-    return {name: d.dims for name, d in parse_inputs(texts).items()}
 
 
 # ----- the plan ---------------------------------------------------------------------------
@@ -389,6 +383,19 @@ def _record(gm: Any, plan: Plan, sizes: dict[str, int], seed: int, label: str) -
 
 class GuessedShapeError(BadInputError):
     """The module failed on sample inputs whose shape seqgate guessed or the user gave (exit 2)."""
+
+
+def guessed_shape_error(label: str, guessed: dict[str, tuple[int | str, ...]], how: str,
+                        error: BaseException) -> GuessedShapeError:
+    """Exit 2: a run on sample values failed (the loop capture's trace) and at least one input's
+    shape was a guess (``how`` says where it came from)."""
+    shown = ", ".join(f"{n} as [{', '.join(str(d) for d in dims)}]" for n, dims in guessed.items())
+    first = next(iter(guessed))
+    return GuessedShapeError(
+        f"running {label} on sample inputs failed ({type(error).__name__}: {first_line(error)}); "
+        f"no --input gave the shape, so seqgate guessed {shown} ({how}), and the guess is probably "
+        f"wrong. Pass the real shape with --input {first}:DIM,DIM,... (integers or symbolic names "
+        f"such as batch and time), e.g. --input {first}:batch,time,N.")
 
 
 class _RunFailed(Exception):

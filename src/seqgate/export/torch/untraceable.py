@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
+from seqgate.errors import Unsupported, UnsupportedModelError
 from seqgate.util.text import first_line
 
 
@@ -53,7 +53,7 @@ def _trace_hint(msg: str, code: str) -> str:
 class SampleRunFailed(UnsupportedModelError):
     """Tracing on sample values failed inside the model's own computation (a shape check, a
     matmul of the wrong size): ``error`` is the original exception. Exit 3 as it stands; exit 2
-    (:func:`guessed_shape_error`) when seqgate guessed an input's shape."""
+    (``inputs.guessed_shape_error``) when seqgate guessed an input's shape."""
 
     def __init__(self, source: str, problems: list[Unsupported], error: BaseException) -> None:
         super().__init__(source, problems)
@@ -68,14 +68,3 @@ def run_failure(e: BaseException) -> bool:
         return False
     return not any(w in str(e) for w in ("Proxy", "symbolically traced", "control flow"))
 
-
-def guessed_shape_error(label: str, guessed: dict[str, tuple[int | str, ...]], how: str,
-                        error: BaseException) -> BadInputError:
-    """Exit 2: the run on sample inputs failed and at least one input's shape was a guess."""
-    shown = ", ".join(f"{n} as [{', '.join(str(d) for d in dims)}]" for n, dims in guessed.items())
-    first = next(iter(guessed))
-    return BadInputError(
-        f"running {label} on sample inputs failed ({type(error).__name__}: {first_line(error)}); "
-        f"no --input gave the shape, so seqgate guessed {shown} ({how}), and the guess is probably "
-        f"wrong. Pass the real shape with --input {first}:DIM,DIM,... (integers or symbolic names "
-        f"such as batch and time), e.g. --input {first}:batch,time,N.")
