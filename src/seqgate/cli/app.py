@@ -56,7 +56,10 @@ def export(
         "--untrained", help="PyTorch: export the factory's initial parameters without --weights "
         "(a test or placeholder model); recorded in the file and shown in every report.")] = False,
     input_spec: Annotated[list[str] | None, typer.Option(
-        "--input", help="PyTorch input NAME:DIM,DIM,... (symbolic names or integers); repeatable.")] = None,
+        "--input", help="PyTorch input NAME:DIM,DIM,...[:DTYPE][=LOW..HIGH]: DIM an integer, a symbolic "
+        "name or NAME+K/NAME-K; DTYPE float32, int64, int32 or bool; LOW..HIGH the range integers are "
+        "drawn from (ints or dims, e.g. 1..time); NAME may be PARAM.KEY, a tensor of a dict or "
+        "dataclass parameter; repeatable.")] = None,
     custom_code: Annotated[Path | None, typer.Option(
         "--custom-code", help="Keras: run this Python file first; it defines and registers the model's "
         "custom classes (e.g. a custom RNN cell). Without it such models are refused.")] = None,

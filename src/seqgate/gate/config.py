@@ -6,7 +6,7 @@ default)::
     [model]
     source = "forecaster.keras"        # Keras file, or "FILE.py:FACTORY" for PyTorch
     weights = "model.pt"               # PyTorch state dict (PyTorch sources only)
-    inputs = ["x:batch,time,3"]        # PyTorch input spec, NAME:DIM,... (optional)
+    inputs = ["x:batch,time,3"]        # PyTorch inputs as --input takes them (optional)
     onnx = "shipped.onnx"              # gate this ONNX file instead of exporting one (optional)
     untrained = false                  # PyTorch without weights on purpose (shown in every report)
     expect_other_source = "reason"     # the ONNX file is known not to come from these files: why

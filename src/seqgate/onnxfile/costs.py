@@ -28,6 +28,8 @@ import numpy as np
 import onnx
 from onnx import numpy_helper, shape_inference
 
+from seqgate.util.dims import split_dim
+
 _GATES = {"RNN": 1, "GRU": 3, "LSTM": 4}
 _T1, _T2 = 8, 16
 
@@ -63,8 +65,9 @@ def _fixed_dims(model: onnx.ModelProto, t: int) -> onnx.ModelProto:
         for d in vi.type.tensor_type.shape.dim:
             if d.HasField("dim_param"):
                 name = d.dim_param
+                base, offset = split_dim(name)  # time+6: six steps more than the time axis
                 d.Clear()
-                d.dim_value = t if name in time_names else 1
+                d.dim_value = max(1, (t if name in time_names or base in time_names else 1) + offset)
     del m.graph.value_info[:]
     for o in m.graph.output:
         for d in o.type.tensor_type.shape.dim:

@@ -11,8 +11,13 @@ depend on the order of the sweep and are the same for every thread count and run
 - integer inputs that reach the index slot of a ``Gather`` on an initializer (an embedding
   table), possibly through Cast/Identity/Reshape/Squeeze/Unsqueeze/Transpose/Flatten: uniform
   token ids in ``[0, rows)``, ``rows`` being the smallest such table's size on the gathered axis;
+- integer or boolean inputs with a declared range (``seqgate.input_ranges``, from
+  ``--input NAME:DIMS:int64=LOW..HIGH`` at export): uniform in that range, a bound that names
+  ``time`` taken at the point's T;
 - other integer or boolean inputs are refused: there is no realistic value to invent for them,
   except the lengths input of a padded model (below).
+
+A dim ``time+K``/``time-K`` (``seqgate.util.dims``) is T plus/minus K at every point.
 
 Padded models (ONNX metadata ``seqgate.padding``, see ``verify.synthetic``): in a full-length
 batch a lengths input holds T for every row and a token input never holds its padding id (ids
@@ -35,6 +40,8 @@ import onnx
 
 from seqgate.errors import BadInputError
 from seqgate.onnxfile.costs import time_dim_names
+from seqgate.onnxfile.input_meta import read_ranges
+from seqgate.util.dims import dim_text, resolve, split_dim
 from seqgate.verify.synthetic import read_padding
 
 _PASS_THROUGH = {"Cast", "Identity", "Reshape", "Squeeze", "Unsqueeze", "Transpose", "Flatten"}
@@ -51,8 +58,12 @@ class InputPlan:
     role: str = ""  # "lengths": the lengths input of a padded model
     pad_value: float | None = None  # a step holding only this value is padding
 
+    low: int | str | None = None  # a declared value range (seqgate.input_ranges), bounds may name time
+    high: int | str | None = None
+
     def shape(self, batch: int, t: int) -> tuple[int, ...]:
-        return tuple(batch if d == "batch" else t if d == "time" else int(d) for d in self.dims)
+        sizes = {"batch": batch, "time": t}
+        return tuple(int(d) if isinstance(d, int) else int(resolve(d, sizes) or 1) for d in self.dims)
 
 
 @dataclass(frozen=True)
@@ -70,6 +81,7 @@ def plan_inputs(model: onnx.ModelProto) -> list[InputPlan]:
     time_names = time_dim_names(model)
     vocab = _embedding_sizes(model)
     padding = read_padding(model)
+    ranges = read_ranges(model)
     lengths_inputs = {e["lengths"] for e in padding if e.get("kind") == "lengths"}
     pad_values = {e["input"]: float(e["value"]) for e in padding if e.get("kind") == "value"}
     plans: list[InputPlan] = []
@@ -80,10 +92,11 @@ def plan_inputs(model: onnx.ModelProto) -> list[InputPlan]:
         dtype = onnx.helper.tensor_dtype_to_np_dtype(tt.elem_type)
         dims: list[int | str] = []
         for axis, d in enumerate(tt.shape.dim):
+            base, offset = split_dim(d.dim_param)
             if d.HasField("dim_value"):
                 dims.append(int(d.dim_value))
-            elif d.dim_param in time_names:
-                dims.append("time")
+            elif d.dim_param in time_names or base in time_names:
+                dims.append(dim_text("time", offset))  # time+6: six steps more than the time axis
             elif axis == 0 and d.HasField("dim_param"):
                 dims.append("batch")
             else:
@@ -95,14 +108,16 @@ def plan_inputs(model: onnx.ModelProto) -> list[InputPlan]:
                     f"that dim fixed."
                 )
         role = "lengths" if vi.name in lengths_inputs else ""
-        if dtype.kind in "iub" and vocab.get(vi.name) is None and not role:
+        declared = ranges.get(vi.name, {})
+        if dtype.kind in "iub" and vocab.get(vi.name) is None and not role and not declared:
             raise BadInputError(
                 f"input {vi.name!r} is {dtype.name} but feeds no embedding table, so the profiler "
-                f"has no realistic value range for it. Profile a model whose integer inputs are "
-                f"token ids (they reach a Gather on an initializer), or whose inputs are float."
+                f"has no realistic value range for it. Export it with a declared range "
+                f"(--input {vi.name}:DIMS:{dtype.name}=LOW..HIGH), or profile a model whose integer "
+                f"inputs are token ids (they reach a Gather on an initializer)."
             )
         plans.append(InputPlan(vi.name, dtype.name, tuple(dims), vocab.get(vi.name), role,
-                               pad_values.get(vi.name)))
+                               pad_values.get(vi.name), declared.get("low"), declared.get("high")))
     return plans
 
 
@@ -126,6 +141,10 @@ def make_inputs(plans: list[InputPlan], batch: int, t: int, seed: int) -> dict[s
         shape = p.shape(batch, t)
         if p.role == "lengths":
             out[p.name] = np.full(shape, t, dtype=p.dtype)
+        elif p.low is not None and p.high is not None:
+            sizes = {"batch": batch, "time": t}
+            low, high = resolve(p.low, sizes), resolve(p.high, sizes)
+            out[p.name] = rng.integers(low or 0, max(low or 0, high or 0) + 1, size=shape).astype(p.dtype)
         elif p.vocab is not None and p.pad_value is not None and 0 <= p.pad_value < p.vocab and p.vocab > 1:
             ids = rng.integers(0, p.vocab - 1, size=shape)  # every id but the padding id, uniformly
             out[p.name] = (ids + (ids >= p.pad_value)).astype(p.dtype)

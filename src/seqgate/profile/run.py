@@ -351,10 +351,11 @@ def _parse_source(source: str | None, weights: str | None, custom_code: str | os
 def _open_runner(src: Any, model: Any, thread_list: list[int]) -> Any:
     if src is None:
         return None
+    from seqgate.onnxfile.input_meta import read_structure
     from seqgate.runtimes.factory import open_source_runner
 
     return open_source_runner(src, [], [o.name for o in model.graph.output], states=False,
-                              threads=thread_list[0])
+                              threads=thread_list[0], structure=read_structure(model))
 
 
 def _source_record(src: Any, agreement: tuple[bool, str] | None) -> dict[str, Any] | None:

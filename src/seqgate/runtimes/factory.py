@@ -39,8 +39,10 @@ def load_source_model(src: Source, threads: int | None = None) -> Any:
 
 
 def open_source_runner(src: Source, probes: list[Probe], output_names: list[str], states: bool = True,
-                       threads: int | None = None, loaded: Any = None) -> SourceRunner:
-    """The runner for ``src``; ``loaded`` is the model when the caller loaded it already."""
+                       threads: int | None = None, loaded: Any = None,
+                       structure: dict[str, Any] | None = None) -> SourceRunner:
+    """The runner for ``src``; ``loaded`` is the model when the caller loaded it already;
+    ``structure`` is the ONNX file's ``seqgate.input_structure`` (PyTorch dict/dataclass inputs)."""
     loaded = load_source_model(src, threads) if loaded is None else loaded
     if src.framework == "keras":
         from seqgate.runtimes.keras import KerasRunner
@@ -48,4 +50,4 @@ def open_source_runner(src: Source, probes: list[Probe], output_names: list[str]
         return KerasRunner(loaded, probes, output_names, states)
     from seqgate.runtimes.torch import TorchRunner
 
-    return TorchRunner(loaded, probes, output_names, states)
+    return TorchRunner(loaded, probes, output_names, states, structure)

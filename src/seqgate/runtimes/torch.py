@@ -3,8 +3,10 @@
 Outputs: ``forward``'s result flattened by ``seqgate.util.outputs.flatten_outputs`` (depth
 first, dicts in insertion order: the exporter's rule), matched in order to the ONNX graph
 outputs. Inputs are passed by name when ``forward`` has parameters of those names (the ONNX
-inputs of a PyTorch export are ``forward``'s parameters), else by position in the ONNX input
-order (an ONNX file exported from another source, profiled beside this module).
+inputs of a PyTorch export are ``forward``'s parameters, ``(h0, c0)`` pairs, or the named
+tensors of a dict/dataclass parameter listed by ``seqgate.input_structure``: ``torch_args``),
+else by position in the ONNX input order (an ONNX file exported from another source, profiled
+beside this module).
 
 Two calls: :meth:`TorchRunner.run` (outputs and probes, for verify) and
 :meth:`TorchRunner.timed_call` (the bare module under ``inference_mode`` with the point's
@@ -52,10 +54,12 @@ class TorchRunner:
     self_check_atol = SELF_CHECK_ATOL
     runtime = "torch"
 
-    def __init__(self, module: Any, probes: list[Probe], output_names: list[str], states: bool = True) -> None:
+    def __init__(self, module: Any, probes: list[Probe], output_names: list[str], states: bool = True,
+                 structure: dict[str, Any] | None = None) -> None:
         from seqgate.util.frameworks import import_torch
 
         self.torch = import_torch()
+        self.structure = structure or {}  # seqgate.input_structure: inputs gathered into dicts/dataclasses
         self.module = module.eval()
         self.output_names = list(output_names)
         self.probes = list(probes) if states else []
@@ -181,17 +185,15 @@ class TorchRunner:
                 torch.set_num_threads(previous)
 
     def _arguments(self, feeds: dict[str, np.ndarray[Any, Any]]) -> tuple[list[Any], dict[str, Any]]:
-        """``forward``'s arguments: by name when it takes these names, else by position."""
-        import inspect
+        """``forward``'s arguments: by name (``runtimes.torch_args``: plain names, ``(h0, c0)``
+        pairs, dicts/dataclasses of ``seqgate.input_structure``) when every input fits a
+        parameter, else by position."""
+        from seqgate.runtimes.torch_args import forward_kwargs
 
-        tensors = {k: self.torch.from_numpy(np.ascontiguousarray(v)) for k, v in feeds.items()}
-        try:
-            params = inspect.signature(self.module.forward).parameters
-        except (TypeError, ValueError):
-            params = {}
-        if all(k in params for k in tensors):
-            return [], tensors
-        return list(tensors.values()), {}
+        kwargs = forward_kwargs(self.module, feeds, self.structure)
+        if kwargs is not None:
+            return [], kwargs
+        return [self.torch.from_numpy(np.ascontiguousarray(v)) for v in feeds.values()], {}
 
     def _collect(self, res: Any) -> dict[str, np.ndarray[Any, Any]]:
         leaves = self.outputs(res)

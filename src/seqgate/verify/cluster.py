@@ -201,6 +201,7 @@ class RangeChecker:
     """A worker: loads the model, both runtimes and the recordings once; checks ranges."""
 
     def __init__(self, job: WorkerJob) -> None:
+        from seqgate.onnxfile.input_meta import read_structure
         from seqgate.onnxfile.load import load_onnx
         from seqgate.onnxfile.probes import read_probe_map
         from seqgate.runtimes.factory import load_source_model, open_source_runner
@@ -216,7 +217,7 @@ class RangeChecker:
         self.onnx = OnnxRunner(model, probes, threads=plan.onnx)
         loaded = load_source_model(job.source, plan.source)
         self.src = open_source_runner(job.source, probes, [o.name for o in model.graph.output], job.states,
-                                      loaded=loaded)
+                                      loaded=loaded, structure=read_structure(model))
         if job.source.framework == "torch":
             self.src.run_threads = plan.source
         self.comparer = Comparer(tensor_infos(model, probes), job.tol, set(job.class_names), specs,

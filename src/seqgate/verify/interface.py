@@ -5,7 +5,8 @@ model) is bad input (exit 2), not a model seqgate cannot export. The message lis
 difference at once:
 
 - inputs, by name: every ONNX input must be a source input (Keras: the model's input tensors;
-  PyTorch: a ``forward`` parameter, or ``NAME_0``/``NAME_1`` for a ``(h0, c0)`` pair) and every
+  PyTorch: a ``forward`` parameter, ``NAME_0``/``NAME_1`` for a ``(h0, c0)`` pair, or a tensor of
+  a dict/dataclass parameter that ``seqgate.input_structure`` lists) and every
   required source input must be an ONNX input;
 - Keras inputs and outputs, statically: the rank, and every dim both sides fix, must agree;
   the number of outputs must agree;
@@ -97,13 +98,18 @@ def torch_params(module: Any) -> tuple[list[str], set[str]]:
 def check_torch(model: Any, module: Any, feeds: dict[str, np.ndarray[Any, Any]] | None,
                 onnx_runner: Any, label: str, src_text: str) -> None:
     """Compare input names with ``forward``'s; then outputs by one run on ``feeds`` (one window)."""
+    from seqgate.onnxfile.input_meta import read_structure
+
     names, required = torch_params(module)
-    problems = _name_problems([vi.name for vi in model.graph.input], names, required)
+    structure = read_structure(model)
+    param_of = {onnx: param for param, e in structure.items() for onnx in e.get("keys", {}).values()}
+    onnx_names = list(dict.fromkeys(param_of.get(vi.name, vi.name) for vi in model.graph.input))
+    problems = _name_problems(onnx_names, names, required)
     if problems or feeds is None:
         if problems:
             raise _fail(label, src_text, problems)
         return
-    got = _run_torch(module, names, feeds, label, src_text)
+    got = _run_torch(module, structure, feeds, label, src_text)
     onnx_out = onnx_runner.run(feeds)
     outs = [o.name for o in model.graph.output]
     if len(got) != len(outs):
@@ -119,17 +125,13 @@ def check_torch(model: Any, module: Any, feeds: dict[str, np.ndarray[Any, Any]] 
         raise _fail(label, src_text, problems)
 
 
-def _run_torch(module: Any, names: list[str], feeds: dict[str, np.ndarray[Any, Any]], label: str,
+def _run_torch(module: Any, structure: dict[str, Any], feeds: dict[str, np.ndarray[Any, Any]], label: str,
                src_text: str) -> list[Any]:
     import torch
 
-    kwargs: dict[str, Any] = {}
-    for n in names:
-        if n in feeds:
-            kwargs[n] = torch.from_numpy(np.ascontiguousarray(feeds[n]))
-        elif f"{n}_0" in feeds:
-            parts = sorted(k for k in feeds if k.rpartition("_")[0] == n and k.rpartition("_")[2].isdigit())
-            kwargs[n] = tuple(torch.from_numpy(np.ascontiguousarray(feeds[k])) for k in parts)
+    from seqgate.runtimes.torch_args import forward_kwargs
+
+    kwargs = forward_kwargs(module, feeds, structure) or {}
     try:
         with torch.inference_mode():
             res = module(**kwargs)

@@ -32,6 +32,7 @@ from typing import Any
 import numpy as np
 
 from seqgate.errors import BadInputError
+from seqgate.util.dims import split_dim
 from seqgate.util.files import sha256_file
 
 TARGETS_KEY = "targets"
@@ -416,6 +417,13 @@ def _check_arrays(path: Path, chosen: dict[str, LazyArray], specs: list[InputSpe
                         f"{spec.name!r}; inputs sharing a dim must agree."
                     )
         counts.add(a.shape[0])
+    for want, (got, name) in symbols.items():
+        base, offset = split_dim(want)
+        if offset and base in symbols and symbols[base][0] + offset != got:
+            size, other = symbols[base]
+            raise BadInputError(
+                f"recording {path}: dim {want!r} of input {name!r} is {got}, but {base!r} is {size} in "
+                f"input {other!r}, so it should be {size + offset}; record windows that keep that relation.")
     if len(counts) != 1:
         raise BadInputError(f"recording {path}: the arrays hold different numbers of windows {sorted(counts)}; "
                             f"every input needs one row per window.")

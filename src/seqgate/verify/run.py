@@ -334,6 +334,7 @@ def _check_source(model: Any, src: Source, states: bool) -> tuple[Any, list[Prob
 def _window_sets(model: Any, specs: list[InputSpec], windows: list[str | Path], synthetic: bool,
                  batch_size: int, seed: int) -> list[Recording]:
     """The recordings as given, then the synthetic sets (scaled from the first recording's statistics)."""
+    from seqgate.onnxfile.input_meta import read_ranges
     from seqgate.verify.padded_steps import add_padding_counts
     from seqgate.verify.synthetic import read_padding, require_steps, synthetic_sets
 
@@ -342,7 +343,7 @@ def _window_sets(model: Any, specs: list[InputSpec], windows: list[str | Path], 
     add_padding_counts(recs, padding)
     if synthetic:
         stats = feature_stats(recs[0], batch_size) if recs else None
-        recs += synthetic_sets(specs, stats, seed, padding=padding)
+        recs += synthetic_sets(specs, stats, seed, padding=padding, ranges=read_ranges(model))
     require_steps(specs, recs)  # a verification of one step would pass without testing recurrence
     return recs
 
@@ -350,6 +351,7 @@ def _window_sets(model: Any, specs: list[InputSpec], windows: list[str | Path], 
 def _runners(model: Any, src: Source, probes: list[Probe], states: bool, recs: list[Recording],
              specs: list[InputSpec], label: str) -> tuple[Any, Any]:
     """ONNX Runtime's runner and the source framework's, after checking the file fits the source."""
+    from seqgate.onnxfile.input_meta import read_structure
     from seqgate.runtimes.factory import load_source_model, open_source_runner
     from seqgate.runtimes.onnx import OnnxRunner
     from seqgate.verify.pipeline import thread_plan
@@ -359,7 +361,8 @@ def _runners(model: Any, src: Source, probes: list[Probe], states: bool, recs: l
     loaded = load_source_model(src, plan.source)
     _check_interface(model, src, loaded, recs, specs, onnx_runner, label)
     output_names = [o.name for o in model.graph.output]
-    src_runner = open_source_runner(src, probes, output_names, states, loaded=loaded)
+    src_runner = open_source_runner(src, probes, output_names, states, loaded=loaded,
+                                    structure=read_structure(model))
     if src.framework == "torch":
         src_runner.run_threads = plan.source
     return onnx_runner, src_runner

@@ -25,7 +25,14 @@ steps hold the padding value (a ``value`` entry) or zeros beyond the length (a `
 entry); valid integer steps never hold the padding id.
 
 Integer inputs (token ids) use the recorded range ``[low, high]`` instead: uniform ids,
-zeros, constant ids spread over the range, and ``low``/``high`` at random as extremes.
+zeros, constant ids spread over the range, and ``low``/``high`` at random as extremes. An
+integer input with a declared range (ONNX metadata ``seqgate.input_ranges``, from
+``--input NAME:DIMS:int64=LOW..HIGH``) uses that range, its bounds resolved at the set's dim
+sizes (``1..time`` never exceeds the set's window length, 4× in the long set), and its
+"zeros" are the range's value nearest zero; bool inputs draw 0/1.
+
+Dims written ``NAME+K``/``NAME-K`` (``seqgate.util.dims``) keep their relation in every set:
+NAME's size plus/minus K (:func:`set_shapes`).
 Each set draws from its own stream ``default_rng([seed, k])`` so sets are reproducible alone.
 """
 
@@ -35,6 +42,7 @@ from typing import Any
 
 import numpy as np
 
+from seqgate.util.dims import resolve, split_dim
 from seqgate.verify.recordings import FeatureStats, InputSpec, MappedArray, Recording
 
 SYNTHETIC_WINDOWS = 32
@@ -66,18 +74,21 @@ def _default_stats(spec: InputSpec) -> FeatureStats:
 
 
 def _draw(kind: str, spec: InputSpec, st: FeatureStats, shape: tuple[int, ...],
-          rng: np.random.Generator) -> np.ndarray[Any, Any]:
+          rng: np.random.Generator, bounds: tuple[int, int] | None = None) -> np.ndarray[Any, Any]:
     n = shape[0]
     mu, sigma = st.mean, np.where(st.std > 0, st.std, 1.0)
     if mu.shape[-1:] != shape[-1:]:  # channels-first: the last axis is time, stats are per step
         mu, sigma = np.mean(mu), np.mean(sigma)
-    if spec.dtype.kind in "iu":
+    if spec.dtype.kind in "iub":
         # one id range for the whole input: token ids are not per-feature quantities
-        lo, hi = int(np.floor(np.min(st.low))), int(np.ceil(np.max(st.high)))
+        lo, hi = bounds or (int(np.floor(np.min(st.low))), int(np.ceil(np.max(st.high))))
+        if spec.dtype.kind == "b":
+            lo, hi = 0, 1
         if kind in ("scaled", "long"):
             x = rng.integers(lo, hi + 1, size=shape)
         elif kind == "zeros":
-            x = np.zeros(shape)
+            # a declared range's value nearest zero (a length of 0 may be invalid); else zeros
+            x = np.full(shape, min(max(0, lo), hi)) if bounds else np.zeros(shape)
         elif kind == "constants":
             x = np.broadcast_to(np.round(np.linspace(lo, hi, n)).reshape((n,) + (1,) * (len(shape) - 1)), shape)
         else:
@@ -99,31 +110,77 @@ def _draw(kind: str, spec: InputSpec, st: FeatureStats, shape: tuple[int, ...],
     return np.asarray(x, dtype=np.float64).astype(spec.dtype)
 
 
+def set_shapes(specs: list[InputSpec], per: dict[str, FeatureStats],
+               long: bool) -> tuple[dict[str, tuple[int, ...]], dict[str, int]]:
+    """One window's shape per input in a set, and the size of every plain symbolic dim.
+
+    A symbol takes the size the statistics (the recording, or ``DEFAULT_STEPS`` for time) give
+    it; a dim ``NAME+K``/``NAME-K`` (``seqgate.util.dims``) is NAME's size plus/minus K, NAME
+    raised when needed so that it is at least 1; in the ``long`` set every symbol at a dynamic
+    time axis is 4× (its expressions follow)."""
+    sizes: dict[str, int] = {}
+    exprs: list[tuple[str, int, int]] = []
+    for s in specs:
+        for axis, d in enumerate(s.window_dims[1:]):
+            if isinstance(d, str):
+                base, offset = split_dim(d)
+                if offset:
+                    exprs.append((base, offset, per[s.name].shape[axis]))
+                else:
+                    sizes.setdefault(base, per[s.name].shape[axis])
+    for base, offset, own in exprs:
+        sizes.setdefault(base, own - offset)
+        sizes[base] = max(sizes[base], 1 - offset)
+    if long:
+        for base in {split_dim(d)[0] for s in specs if _time_dynamic(s)
+                     for d in [s.window_dims[time_axis(s) or 1]] if isinstance(d, str)}:
+            sizes[base] *= 4
+    shapes = {}
+    for s in specs:
+        t = time_axis(s)
+        shapes[s.name] = tuple(
+            resolve(d, sizes) if isinstance(d, str) else
+            4 * size if long and d is None and i + 1 == t else size
+            for i, (d, size) in enumerate(zip(s.window_dims[1:], per[s.name].shape, strict=True)))
+    return shapes, sizes
+
+
+def value_bounds(ranges: dict[str, dict[str, Any]], name: str, sizes: dict[str, int]) -> tuple[int, int] | None:
+    """An integer input's declared range (``seqgate.input_ranges``) at this set's dim sizes."""
+    entry = ranges.get(name)
+    if entry is None:
+        return None
+    low, high = resolve(entry["low"], sizes), resolve(entry["high"], sizes)
+    if low is None or high is None or low > high:
+        return None
+    return low, high
+
+
 def synthetic_sets(specs: list[InputSpec], stats: dict[str, FeatureStats] | None, seed: int,
                    windows: int = SYNTHETIC_WINDOWS,
-                   padding: list[dict[str, Any]] | None = None) -> list[Recording]:
+                   padding: list[dict[str, Any]] | None = None,
+                   ranges: dict[str, dict[str, Any]] | None = None) -> list[Recording]:
     """One :class:`Recording` per synthetic kind (``long`` only for a dynamic time axis), then
-    the padded sets of ``padding`` (module docstring)."""
+    the padded sets of ``padding`` (module docstring); integer inputs in ``ranges``
+    (``seqgate.input_ranges``) are drawn in their declared range."""
     per = {s.name: (stats or {}).get(s.name) or _default_stats(s) for s in specs}
-    long_dims = {s.window_dims[time_axis(s) or 1] for s in specs if _time_dynamic(s)}
+    has_long = any(_time_dynamic(s) for s in specs)
     out = []
     for k, kind in enumerate(KINDS):
-        if kind == "long" and not long_dims:
+        if kind == "long" and not has_long:
             continue
         rng = np.random.default_rng([seed, k])
+        shapes, sizes = set_shapes(specs, per, kind == "long")
         arrays = {}
         for s in specs:
-            shape = (windows, *per[s.name].shape)
-            t = time_axis(s)
-            if kind == "long" and t is not None and _time_dynamic(s) and s.window_dims[t] in long_dims:
-                shape = (*shape[:t], 4 * shape[t], *shape[t + 1:])
-            x = _draw(kind, s, per[s.name], shape, rng)
+            bounds = value_bounds(ranges or {}, s.name, sizes)
+            x = _draw(kind, s, per[s.name], (windows, *shapes[s.name]), rng, bounds)
             arrays[s.name] = MappedArray(x, f"synthetic:{kind} {s.name!r}")
         _full_lengths(arrays, padding or [], f"synthetic:{kind}")
         notes = {"seed": seed, "scale": "recording" if stats else "unit (no recording)"}
         out.append(Recording(f"synthetic:{kind}", f"synthetic:{kind}", dict(arrays), windows, notes=notes))
     if padding:
-        out += padded_sets(specs, per, padding, seed, windows, stats is not None)
+        out += padded_sets(specs, per, padding, seed, windows, stats is not None, ranges or {})
     return out
 
 
@@ -207,21 +264,24 @@ def _pattern(kind: str, n: int, t: int, rng: np.random.Generator) -> np.ndarray[
 
 
 def padded_sets(specs: list[InputSpec], per: dict[str, FeatureStats], padding: list[dict[str, Any]],
-                seed: int, windows: int, recorded: bool) -> list[Recording]:
+                seed: int, windows: int, recorded: bool,
+                ranges: dict[str, dict[str, Any]] | None = None) -> list[Recording]:
     """The padded synthetic sets (module docstring); one mask per set, shared by every entry."""
     out = []
+    shapes, sizes = set_shapes(specs, per, False)
     for k, kind in enumerate(PADDED):
         allowed = [e for e in padding if _NEEDS.get(kind, "right") in e.get("patterns", ["right"])
                    and not (kind == "all" and int(e.get("min_length", 1)) > 0)]
         if not allowed:
             continue
         rng = np.random.default_rng([seed, 100 + k])
-        arrays = {s.name: MappedArray(_draw("scaled", s, per[s.name], (windows, *per[s.name].shape), rng),
+        arrays = {s.name: MappedArray(_draw("scaled", s, per[s.name], (windows, *shapes[s.name]), rng,
+                                            value_bounds(ranges or {}, s.name, sizes)),
                                       f"synthetic:padded_{kind} {s.name!r}") for s in specs}
         seq = next((s for s in specs if s.is_sequence), None)
         if seq is None:
             continue
-        mask = _pattern(kind, windows, per[seq.name].shape[0], rng)
+        mask = _pattern(kind, windows, shapes[seq.name][0], rng)
         for entry in allowed:
             _apply(arrays, entry, mask, f"synthetic:padded_{kind}")
         notes = {"seed": seed, "scale": "recording" if recorded else "unit (no recording)",

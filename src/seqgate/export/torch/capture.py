@@ -32,18 +32,26 @@ from typing import Any
 
 from seqgate.errors import MappingError, Refusal, SeqgateError, Unsupported, UnsupportedModelError
 from seqgate.export.core.builder import GraphBuilder, np_to_onnx_type
+from seqgate.export.torch.declared import parse_inputs, range_metadata
 from seqgate.export.torch.inplace import inplace_problems
 from seqgate.export.torch.inputs import (
+    GuessedShapeError,
     Plan,
     TMeta,
     forward_params,
+    guessed_shape_error,
     infer_inputs,
     output_dims,
-    parse_input_options,
     record_runs,
 )
-from seqgate.export.torch.structured import refuse_annotated, refuse_read_as_structure
-from seqgate.export.torch.untraceable import untraceable
+from seqgate.export.torch.structured import (
+    flat_forward,
+    refuse_annotated,
+    refuse_read_as_structure,
+    renamed_metadata,
+    structure_metadata,
+)
+from seqgate.export.torch.untraceable import SampleRunFailed, untraceable
 from seqgate.export.torch.values import TV, UNKNOWN, TorchCall, source_line
 from seqgate.sources.spec import Source
 from seqgate.util.outputs import flatten_with_paths
@@ -76,8 +84,13 @@ def export_torch_module(
     """Build the ONNX ModelProto of a loaded module (put in ``eval()`` mode here)."""
     module.eval()
     label = label or type(module).__name__
-    user = parse_input_options(inputs)
+    declared = parse_inputs(inputs)
+    module, onnx_names = flat_forward(module, declared, label)  # --input PARAM.KEY: structured.py
+    idents = {v: k for k, v in onnx_names.items()}
+    declared = {idents.get(n, n): d for n, d in declared.items()}
+    user = {n: d.dims for n, d in declared.items()}
     plan = forward_params(module, user, label)
+    plan.declared, plan.onnx_names = declared, onnx_names
     refuse_annotated(module, user, label)
     gm = _loop_capture(module, plan, user, label, []) if _has_cells(module) else _trace_or_loops(
         module, plan, user, label)
@@ -92,7 +105,9 @@ def export_torch_module(
     _declare_outputs(b, result, metas.get(_output_node(gm).name), plan, sa, sb, label)
     from seqgate.export.torch.packing import padding_metadata
 
-    return b.build({**metadata, **padding_metadata(plan)})
+    inputs_meta = {**renamed_metadata(padding_metadata(plan), onnx_names),
+                   **range_metadata(plan.inputs, onnx_names), **structure_metadata(module)}
+    return b.build({**metadata, **inputs_meta})
 
 
 # ----- tracing ----------------------------------------------------------------------------
@@ -113,6 +128,8 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
             if n.op == "call_function" and any(n.target is f for f in leaves):
                 n.meta.pop("is_wrapped", None)
         gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
+    except SeqgateError:
+        raise
     except Exception as e:
         raise UnsupportedModelError(label, [untraceable(module, e)]) from None
     return clean(gm, label)
@@ -166,7 +183,7 @@ def _trace_or_loops(module: Any, plan: Plan, user: dict[str, Any], label: str) -
         mine = dict(user)
         try:
             gm = _loop_capture(module, plan, mine, label, [])
-        except BranchError:
+        except (BranchError, GuessedShapeError):
             raise
         except SeqgateError:
             raise original from None
@@ -179,8 +196,16 @@ def _loop_capture(module: Any, plan: Plan, user: dict[str, Any], label: str, cel
     from seqgate.export.torch.loops import loop_trace, sample_inputs
 
     dims = sample_inputs(module, plan.params, plan.concrete, user, label)
+    guessed = {n: d for n, d in dims.items() if n not in user}
     user.update(dims)
-    return clean(loop_trace(module, tracer_class(), plan.concrete, plan.params, dims, cells, label), label)
+    try:
+        gm = loop_trace(module, tracer_class(), plan.concrete, plan.params, dims, cells, label, plan.declared)
+    except SampleRunFailed as e:
+        if not guessed:
+            raise
+        how = "from the input_size of the model's first recurrent module or cell"
+        raise guessed_shape_error(label, guessed, how, e.error) from None
+    return clean(gm, label)
 
 
 def clean(gm: Any, label: str) -> Any:
@@ -237,7 +262,7 @@ class _Walk:
             return UNKNOWN
         shape = tuple(d if isinstance(d, int) else None for d in spec.dims)
         values = []
-        for onnx_name in spec.onnx_names:
+        for onnx_name in (plan.onnx_names.get(n, n) for n in spec.onnx_names):
             self.b.input(onnx_name, np_to_onnx_type(_np_dtype(spec.dtype)), list(spec.dims))
             values.append(TV(onnx_name, shape, spec.dtype))
         return tuple(values) if spec.parts else values[0]
@@ -413,7 +438,7 @@ def _declare_outputs(
         else:
             oname = f"output_{i}" if path else "output"
         leaves.append((oname, v, _meta_at(meta, path)))
-    taken = set(plan.params) | {n for s in plan.inputs for n in s.onnx_names}
+    taken = set(plan.params) | {n for s in plan.inputs for n in s.onnx_names} | set(plan.onnx_names.values())
     problems: list[Unsupported] = []
     for oname, v, m in leaves:
         while oname in taken:

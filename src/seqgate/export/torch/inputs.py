@@ -7,9 +7,10 @@ Graph inputs are the parameters of ``forward``, in order, under their own names:
   unless ``--input NAME:DIMS`` names it, which makes it a tensor input;
 - a tensor input that the traced graph never reads is left out of the ONNX file.
 
-Dims of a tensor input come from ``--input NAME:DIM,DIM,...`` (integers or symbolic names) or
-are inferred from the first module that consumes it (through dropout/identity/activation
-modules and ``contiguous``/``float``):
+Dims of a tensor input come from ``--input NAME:DIM,DIM,...`` (integers, symbolic names or
+``NAME+K``; the option's dtype and value range too: ``declared.py``) or are inferred from
+the first module that consumes it (through dropout/identity/activation modules and
+``contiguous``/``float``):
 
 - ``nn.RNN/GRU/LSTM`` input: ``[batch, time, I]`` when ``batch_first`` else ``[time, batch, I]``;
   its ``h0``/``c0`` argument: ``[L·D, batch, H]`` (``batch_first`` never changes states); a
@@ -30,8 +31,9 @@ Conv1d gives ``[batch, time, C_in]``).
 
 Static shapes: the module runs twice (``torch.no_grad``) on seeded random inputs whose symbolic
 dims take different values in the two runs (batch 3/2, time 13/17, others from two disjoint
-pools). A dim of an intermediate tensor that is equal in both runs is static; a dim that follows
-one symbol's values in both runs is named after it on graph outputs.
+pools: ``samples.py``). A failed run is exit 2 (:class:`GuessedShapeError`), naming the shapes
+seqgate guessed, if any. A dim of an intermediate tensor that is equal in both runs is static;
+a dim that follows one symbol's values in both runs is named after it on graph outputs.
 """
 
 from __future__ import annotations
@@ -42,12 +44,9 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
+from seqgate.export.torch.declared import Declared
+from seqgate.export.torch.samples import sample_args, symbol_values
 from seqgate.util.text import first_line
-
-SAMPLE_A = {"batch": 3, "time": 13}
-SAMPLE_B = {"batch": 2, "time": 17}
-_POOL_A = [5, 6, 8, 9, 10, 11, 12, 14, 15, 16]
-_POOL_B = [4, 7, 18, 19, 20, 21, 22, 23, 24, 25]
 
 _PASS_MODULES = (
     "Dropout", "Dropout1d", "Dropout2d", "Dropout3d", "AlphaDropout", "FeatureAlphaDropout",
@@ -71,6 +70,8 @@ class InputSpec:
     id_limit: int | None = None  # int inputs: sample ids in [0, id_limit)
     parts: int = 0  # 2: a (h0, c0) pair, given to ONNX as NAME_0 and NAME_1 of these dims
     fill: str = ""  # "lengths": a pack_padded_sequence lengths input, sampled as the full time size
+    low: int | str | None = None  # --input NAME:...=LOW..HIGH: sampled in this range (dims allowed)
+    high: int | str | None = None
 
     @property
     def onnx_names(self) -> list[str]:
@@ -85,6 +86,8 @@ class Plan:
     concrete: dict[str, Any]
     inputs: list[InputSpec] = field(default_factory=list)
     unused: list[str] = field(default_factory=list)
+    declared: dict[str, Declared] = field(default_factory=dict)  # --input, by name
+    onnx_names: dict[str, str] = field(default_factory=dict)  # param → ONNX input name, when they differ
 
 
 @dataclass(frozen=True)
@@ -108,31 +111,6 @@ class DynInt:
 
     a: int
     b: int
-
-
-# ----- --input parsing --------------------------------------------------------------------
-def parse_input_options(texts: list[str] | None) -> dict[str, tuple[int | str, ...]]:
-    """``["x:batch,time,8"]`` → ``{"x": ("batch", "time", 8)}``; exit 2 on a malformed spec."""
-    out: dict[str, tuple[int | str, ...]] = {}
-    for text in texts or []:
-        name, sep, dims_text = text.partition(":")
-        name = name.strip()
-        if not sep or not name.isidentifier():
-            raise BadInputError(f"--input {text!r}: expected NAME:DIM,DIM,... such as "
-                                f"x:batch,time,8 (NAME is a forward() parameter).")
-        dims: list[int | str] = []
-        for d in (p.strip() for p in dims_text.split(",")) if dims_text.strip() else []:
-            if d.isdigit() and int(d) > 0:
-                dims.append(int(d))
-            elif d.isidentifier():
-                dims.append(d)
-            else:
-                raise BadInputError(f"--input {text!r}: dim {d!r} is neither a positive integer nor "
-                                    f"a symbolic name such as batch or time.")
-        if name in out:
-            raise BadInputError(f"--input names {name!r} twice; give each input once.")
-        out[name] = tuple(dims)
-    return out
 
 
 # ----- the plan ---------------------------------------------------------------------------
@@ -165,9 +143,11 @@ def infer_inputs(gm: Any, plan: Plan, user: dict[str, tuple[int | str, ...]], la
             continue
         g = _guess(gm, ph)
         if name in user:
-            plan.inputs.append(InputSpec(name, user[name], g.dtype if g else "float32", "--input",
+            d = plan.declared.get(name)
+            dtype = (d.dtype if d else None) or (g.dtype if g else "float32")
+            plan.inputs.append(InputSpec(name, user[name], dtype, "--input",
                                          g.id_limit if g else None, g.parts if g else 0,
-                                         g.fill if g else ""))
+                                         g.fill if g else "", d.low if d else None, d.high if d else None))
         elif not ph.users:
             plan.unused.append(name)
         elif g is None:
@@ -355,44 +335,6 @@ def _flat(args: Any) -> list[Any]:
 
 
 # ----- sample runs ------------------------------------------------------------------------
-def symbol_values(inputs: list[InputSpec]) -> tuple[dict[str, int], dict[str, int]]:
-    """Sample sizes for every symbolic dim in the two runs (module docstring)."""
-    a, b = dict(SAMPLE_A), dict(SAMPLE_B)
-    k = 0
-    for spec in inputs:
-        for d in spec.dims:
-            if isinstance(d, str) and d not in a:
-                if k >= len(_POOL_A):
-                    raise BadInputError("too many different symbolic dims in --input (at most 12).")
-                a[d], b[d] = _POOL_A[k], _POOL_B[k]
-                k += 1
-    return a, b
-
-
-def sample_args(plan: Plan, sizes: dict[str, int], seed: int) -> list[Any]:
-    """Positional arguments for one run: random tensors, fixed defaults, None for unused."""
-    import torch
-
-    g = torch.Generator().manual_seed(seed)
-    by_name = {s.name: s for s in plan.inputs}
-    args: list[Any] = []
-    for name in plan.params:
-        spec = by_name.get(name)
-        if spec is None:
-            args.append(plan.concrete.get(name))
-            continue
-        shape = [sizes[d] if isinstance(d, str) else d for d in spec.dims]
-        if spec.fill == "lengths":
-            args.append(torch.full(shape, sizes["time"], dtype=torch.int64))
-        elif spec.dtype == "int64":
-            args.append(torch.randint(0, max(spec.id_limit or 2, 1), shape, generator=g))
-        elif spec.parts:
-            args.append(tuple(torch.randn(shape, generator=g) for _ in range(spec.parts)))
-        else:
-            args.append(torch.randn(shape, generator=g))
-    return args
-
-
 def record_runs(gm: Any, plan: Plan, label: str) -> tuple[dict[str, Any], dict[str, int], dict[str, int]]:
     """Run ``gm`` twice; return {node name: merged meta} and both runs' symbol sizes."""
     sa, sb = symbol_values(plan.inputs)
@@ -423,14 +365,37 @@ def _record(gm: Any, plan: Plan, sizes: dict[str, int], seed: int, label: str) -
             warnings.simplefilter("ignore", UserWarning)
             Recorder(gm).run(*args)
     except _RunFailed as f:
-        shapes = ", ".join(f"{s.name}: {[sizes.get(d, d) for d in s.dims]}" for s in plan.inputs)
-        raise BadInputError(
+        shapes = ", ".join(f"{plan.onnx_names.get(s.name, s.name)}: {[sizes.get(d, d) for d in s.dims]}"
+                           for s in plan.inputs)
+        guessed = [s for s in plan.inputs if s.how != "--input"]
+        said = ("; no --input gave the shape, so seqgate guessed " + ", ".join(
+            f"{plan.onnx_names.get(s.name, s.name)} as [{', '.join(str(d) for d in s.dims)}] (from {s.how})"
+            for s in guessed)
+            + f", and the guess is probably wrong. Pass the real shape with --input {guessed[0].name}:"
+              f"DIM,DIM,... (e.g. --input {guessed[0].name}:batch,time,N)") if guessed else (
+            ". Check the dims given with --input")
+        raise GuessedShapeError(
             f"running {label} on sample inputs ({shapes}) failed at {_where(f.node)} with "
-            f"{type(f.error).__name__}: {first_line(f.error)}. "
-            f"seqgate runs the module to learn its shapes; if the inferred input shape is wrong, "
-            f"pass --input NAME:DIM,DIM,..."
+            f"{type(f.error).__name__}: {first_line(f.error)}{said}."
         ) from None
     return seen
+
+
+class GuessedShapeError(BadInputError):
+    """The module failed on sample inputs whose shape seqgate guessed or the user gave (exit 2)."""
+
+
+def guessed_shape_error(label: str, guessed: dict[str, tuple[int | str, ...]], how: str,
+                        error: BaseException) -> GuessedShapeError:
+    """Exit 2: a run on sample values failed (the loop capture's trace) and at least one input's
+    shape was a guess (``how`` says where it came from)."""
+    shown = ", ".join(f"{n} as [{', '.join(str(d) for d in dims)}]" for n, dims in guessed.items())
+    first = next(iter(guessed))
+    return GuessedShapeError(
+        f"running {label} on sample inputs failed ({type(error).__name__}: {first_line(error)}); "
+        f"no --input gave the shape, so seqgate guessed {shown} ({how}), and the guess is probably "
+        f"wrong. Pass the real shape with --input {first}:DIM,DIM,... (integers or symbolic names "
+        f"such as batch and time), e.g. --input {first}:batch,time,N.")
 
 
 class _RunFailed(Exception):

@@ -9,7 +9,7 @@ the loop unrolls. Cell modules (``nn.LSTMCell``/``GRUCell``/``RNNCell``) stay le
 Contract (the proof that the unrolled loop is one recurrent op over a dynamic time axis):
 
 1. the forward is traced twice, at two different batch sizes and sequence lengths
-   (``inputs.SAMPLE_A``/``SAMPLE_B``);
+   (``samples.SAMPLE_A``/``SAMPLE_B``);
 2. in each trace, ``loopfold.fold_loops`` replaces every run of cell calls that is exactly
    ``state_{t+1} = cell(X[:, t], state_t)`` for t = 0..T−1 (T = X's time size) by one
    :class:`~seqgate.export.torch.loopfold.CellLoop` leaf (module docstring there);
@@ -28,7 +28,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import Any
 
-from seqgate.errors import BadInputError, Unsupported, UnsupportedModelError
+from seqgate.errors import BadInputError, SeqgateError, Unsupported, UnsupportedModelError
 
 
 def cell_classes() -> tuple[type, ...]:
@@ -214,17 +214,19 @@ def sample_inputs(module: Any, params: list[str], concrete: dict[str, Any],
 
 
 def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params: list[str],
-               dims: dict[str, tuple[int | str, ...]], user_cells: list[Any], label: str) -> Any:
+               dims: dict[str, tuple[int | str, ...]], user_cells: list[Any], label: str,
+               declared: dict[str, Any] | None = None) -> Any:
     """The folded GraphModule (module docstring: trace twice, fold, prove the graphs equal).
 
     ``user_cells`` are traced as leaves; one that is not part of a folded loop is traced again
     inlined (a shared block called twice stays an ordinary part of the graph).
     """
     from seqgate.export.torch.branches import compare
-    from seqgate.export.torch.inputs import InputSpec, Plan, sample_args, symbol_values
+    from seqgate.export.torch.inputs import Plan
     from seqgate.export.torch.loopfold import canonical, cell_loop_class, fold_loops
+    from seqgate.export.torch.samples import sample_args, symbol_values
 
-    specs = [InputSpec(n, d) for n, d in dims.items()]
+    specs = [_spec(n, d, (declared or {}).get(n)) for n, d in dims.items()]
     plan = Plan(params=params, concrete=concrete, inputs=specs)
     leaves = frozenset(id(m) for m in user_cells)
     graphs: list[Any] = []
@@ -253,12 +255,21 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     return graphs[0]
 
 
+def _spec(name: str, dims: tuple[int | str, ...], declared: Any) -> Any:
+    """The sample spec of one input: ``--input``'s dtype and value range when it gave them."""
+    from seqgate.export.torch.inputs import InputSpec
+
+    if declared is None or declared.dtype is None:
+        return InputSpec(name, dims)
+    return InputSpec(name, dims, declared.dtype, low=declared.low, high=declared.high)
+
+
 def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
                 label: str) -> tuple[Any, dict[Any, Any], Any]:
     import torch.fx
 
     from seqgate.export.torch.branches import BranchError, DataDependent
-    from seqgate.export.torch.untraceable import untraceable
+    from seqgate.export.torch.untraceable import SampleRunFailed, run_failure, untraceable
 
     tracer = tracer_cls()
     tracer.record_stack_traces = True
@@ -267,7 +278,11 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
             graph = tracer.trace(module, concrete_args=dict(concrete) or None)
     except DataDependent as e:
         raise BranchError(label, [e.unsupported]) from None
+    except SeqgateError:
+        raise
     except Exception as e:
+        if run_failure(e):
+            raise SampleRunFailed(label, [untraceable(module, e)], e) from None
         raise UnsupportedModelError(label, [untraceable(module, e)]) from None
     return torch.fx.GraphModule(tracer.root, graph, type(module).__name__), tracer.values, tracer.decisions
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from seqgate.errors import Unsupported
+from seqgate.errors import Unsupported, UnsupportedModelError
 from seqgate.util.text import first_line
 
 
@@ -48,3 +48,23 @@ def _trace_hint(msg: str, code: str) -> str:
                 "a Python loop over time); keep sizes as x.size(d) values passed to view/reshape, "
                 "and let the recurrent module loop over time")
     return "rewrite that line with tensor operations on the forward() inputs"
+
+
+class SampleRunFailed(UnsupportedModelError):
+    """Tracing on sample values failed inside the model's own computation (a shape check, a
+    matmul of the wrong size): ``error`` is the original exception. Exit 3 as it stands; exit 2
+    (``inputs.guessed_shape_error``) when seqgate guessed an input's shape."""
+
+    def __init__(self, source: str, problems: list[Unsupported], error: BaseException) -> None:
+        super().__init__(source, problems)
+        self.error = error
+
+
+def run_failure(e: BaseException) -> bool:
+    """Did ``e`` come from running an operation on sample values (not from fx's own limits)?"""
+    from torch.fx.proxy import TraceError
+
+    if isinstance(e, TraceError) or not isinstance(e, RuntimeError | IndexError | ValueError):
+        return False
+    return not any(w in str(e) for w in ("Proxy", "symbolically traced", "control flow"))
+
