@@ -178,6 +178,73 @@ def test_keras_stateful_called_twice(kind: str, rng: np.random.Generator, tmp_pa
     assert np.abs(fresh - keras_second).max() > 1e-3
 
 
+def test_keras_stateful_stack_of_cells_streams_by_default(rng: np.random.Generator, tmp_path: Any) -> None:
+    """``RNN([LSTMCell, GRUCell], stateful=True)`` is a streaming file without ``--streaming``; two
+    calls with the state fed forward equal Keras's own stateful layer called twice."""
+    from seqgate.export.run import export_source
+
+    k = km.keras()
+    layer = k.layers.RNN([k.layers.LSTMCell(4), k.layers.GRUCell(3)], stateful=True, return_sequences=True,
+                         name="cells")
+    model = km.functional((None, 3), lambda x: layer(x), rng, name="stateful_cells", batch_size=2)
+    res = export_source(str(km.save(model, tmp_path / "cells.keras")), tmp_path / "cells.onnx")
+    info = read_streaming(res.model)
+    assert info is not None and len(info["states"]) == 3  # h and c of the LSTM cell, h of the GRU cell
+    x1, x2 = (rng.normal(size=(2, t, 3)).astype(np.float32) for t in (5, 8))
+    expected = [km.keras_outputs(model, [x])[0] for x in (x1, x2)]  # Keras carries the state
+    sess = km.session(res.model)
+    names = [o.name for o in sess.get_outputs()]
+    first = dict(zip(names, sess.run(None, {"x": x1}), strict=True))
+    states = {s["input"]: first[s["output"]] for s in info["states"]}
+    second = sess.run(None, {"x": x2, **states})[0]
+    km.assert_matches([first[names[0]], second], expected, "stateful stack of cells")
+
+
+_SCAN_CELL = '''
+import keras
+from keras import ops
+
+
+@keras.saving.register_keras_serializable(package="seqgate_streaming_test")
+class HalfLeakCell(keras.layers.Layer):
+    def __init__(self, units, **kw):
+        super().__init__(**kw)
+        self.units = units
+        self.state_size = units
+
+    def build(self, input_shape):
+        self.kernel = self.add_weight(shape=(input_shape[-1], self.units), name="kernel")
+
+    def call(self, inputs, states):
+        out = ops.tanh(ops.matmul(inputs, self.kernel) + 0.5 * states[0])
+        return out, [out]
+
+    def get_config(self):
+        return {**super().get_config(), "units": self.units}
+'''
+
+
+def test_keras_stateful_scan_cell_refused_by_default_with_the_way_out(rng: np.random.Generator,
+                                                                       tmp_path: Any) -> None:
+    """A stateful custom cell that exports as a Scan cannot stream yet: refused (exit 3) saying that
+    stateful=True made streaming the default and that --no-streaming writes an ordinary file."""
+    from seqgate.export.run import export_source
+    from seqgate.sources.keras import load_custom_code
+
+    code = tmp_path / "leak_cells.py"
+    code.write_text(_SCAN_CELL, encoding="utf-8")
+    cell = load_custom_code(code).HalfLeakCell(3)
+    k = km.keras()
+    model = km.functional((None, 2), lambda x: k.layers.RNN(cell, stateful=True, return_sequences=True,
+                                                            name="leak")(x), rng, batch_size=2)
+    path = km.save(model, tmp_path / "leak.keras")
+    with pytest.raises(UnsupportedModelError) as e:
+        export_source(str(path), tmp_path / "leak.onnx", custom_code=code)
+    assert "stateful=True" in str(e.value) and "--no-streaming" in str(e.value) and "leak" in str(e.value)
+    res = export_source(str(path), tmp_path / "leak.onnx", custom_code=code, streaming=False)
+    assert read_streaming(res.model) is None
+
+
 def test_keras_bidirectional_stateful_refused(rng: np.random.Generator) -> None:
     k = km.keras()
     bi = k.layers.Bidirectional(k.layers.LSTM(4, stateful=True), name="bi")

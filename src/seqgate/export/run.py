@@ -121,7 +121,10 @@ def export_source(
     if streaming or (streaming is None and has_stateful_layer(model)):
         from seqgate.export.streaming import make_streaming
 
-        model = make_streaming(model, src.text)
+        by_default = "" if streaming else (" (its stateful=True layers make streaming the default; "
+                                           "--no-streaming writes an ordinary file whose every call starts "
+                                           "from zero states)")
+        model = make_streaming(model, src.text, by_default)
     data = model.SerializeToString(deterministic=True)
     write_atomic(out_path, data)
     return ExportResult(out_path, model, src, len(read_probe_map(model)), opset)

@@ -71,12 +71,14 @@ def state_pairs(model: onnx.ModelProto) -> list[StatePair]:
     return [StatePair(**s) for s in info["states"]]
 
 
-def make_streaming(model: onnx.ModelProto, source: str) -> onnx.ModelProto:
-    """A streaming copy of ``model`` (module docstring); ``source`` names the model in errors."""
+def make_streaming(model: onnx.ModelProto, source: str, why: str = "") -> onnx.ModelProto:
+    """A streaming copy of ``model`` (module docstring); ``source`` names the model in errors and
+    ``why`` (if any) says why it is streamed."""
     try:
         kinds = time_kinds(model)
     except NotCausal as e:
-        raise UnsupportedModelError(f"{source} for streaming", [Unsupported(e.where, e.why, _HINT)]) from None
+        problem = Unsupported(e.where, e.why, _HINT)
+        raise UnsupportedModelError(f"{source} for streaming{why}", [problem]) from None
     m = copy.deepcopy(model)
     g = m.graph
     problems, pairs = [], []
@@ -90,7 +92,7 @@ def make_streaming(model: onnx.ModelProto, source: str) -> onnx.ModelProto:
             continue
         pairs += _wire(g, node, prefixes.get(node.name, node.name), dims, slots)
     if problems:
-        raise UnsupportedModelError(f"{source} for streaming", problems)
+        raise UnsupportedModelError(f"{source} for streaming{why}", problems)
     _sort_nodes(g)  # copies the nodes: done once, after every node was wired
     outputs = [{"name": o.name, "time_axis": _time_axis(kinds.get(o.name), o)} for o in model.graph.output]
     _free_time_dims(m, {o["name"]: o["time_axis"] for o in outputs})

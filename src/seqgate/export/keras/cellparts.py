@@ -39,6 +39,12 @@ def check_options(layer: Any, bidirectional: bool = False) -> None:
                       "use stateful=False, or a unidirectional stateful layer")
 
 
+def stateful_mark(layer: Any) -> dict[str, bool]:
+    """``{"stateful": True}`` for a ``stateful=True`` layer, else empty: merged into its probes'
+    source record, which makes the export a streaming file by default (``export.run``)."""
+    return {"stateful": True} if getattr(layer, "stateful", False) else {}
+
+
 def cell_slots(kind: str, cell: Any) -> list[CellActivation]:
     act = cell_activation(*keras_activation(cell.activation))
     if kind == "rnn":

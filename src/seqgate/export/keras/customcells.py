@@ -37,7 +37,7 @@ from seqgate.export.core.rnn_nodes import RecurrentCall, emit_recurrent
 from seqgate.export.core.scanbody import prefix_names
 from seqgate.export.keras import masked_recurrent as masked
 from seqgate.export.keras.call import KerasCall
-from seqgate.export.keras.cellparts import check_options
+from seqgate.export.keras.cellparts import check_options, stateful_mark
 from seqgate.export.keras.cellstep import Step, step_graph
 from seqgate.export.keras.masking import BOOL, mask_of
 from seqgate.onnxfile.probes import Probe
@@ -92,7 +92,8 @@ def _native_call(call: KerasCall, cell: NativeCell) -> RecurrentCall:
     return RecurrentCall(kind=cell.kind, hidden=cell.hidden, direction="reverse" if back else "forward",
                          packed=cell.packed, activations=cell.activations, layer=call.name,
                          source={"framework": "keras", "layer": call.name, "go_backwards": back,
-                                 "return_sequences": bool(layer.return_sequences), "exported_as": cell.form})
+                                 "return_sequences": bool(layer.return_sequences), "exported_as": cell.form,
+                                 **stateful_mark(layer)})
 
 
 def _native(b: GraphBuilder, call: KerasCall, cell: NativeCell, init: list[str]) -> list[str]:
@@ -179,7 +180,7 @@ def _scan(b: GraphBuilder, call: KerasCall, step: Step, init: list[str], why: st
 def _scan_probes(b: GraphBuilder, call: KerasCall, seq: str, finals: list[str], back: bool, why: str) -> None:
     direction = "reverse" if back else "forward"
     src = {"framework": "keras", "layer": call.name, "go_backwards": back, "exported_as": "Scan",
-           "not_native_because": why}
+           "not_native_because": why, **stateful_mark(call.layer)}
     in_order = b.reverse_time(seq, 1) if back else seq
     kinds = [("hidden_sequence", b.unsqueeze(in_order, [2]), "NTDH", b.last_node_name)]
     for kind, k in (("hidden_final", 0), ("cell_final", 1))[:len(finals)]:

@@ -22,7 +22,14 @@ from seqgate.export.core.recurrent import stack_directions
 from seqgate.export.core.rnn_nodes import RecurrentCall, RecurrentOut, emit_recurrent
 from seqgate.export.keras import masked_recurrent as masked
 from seqgate.export.keras.call import KerasCall
-from seqgate.export.keras.cellparts import builtin_cell, cell_slots, check_options, is_custom_cell, pack_cell
+from seqgate.export.keras.cellparts import (
+    builtin_cell,
+    cell_slots,
+    check_options,
+    is_custom_cell,
+    pack_cell,
+    stateful_mark,
+)
 from seqgate.export.keras.masking import mask_of
 
 
@@ -73,7 +80,7 @@ def emit_keras_rnn(b: GraphBuilder, call: KerasCall) -> list[str]:
         packed=pack_cell(kind, cell), activations=cell_slots(kind, cell), layer=call.name,
         source={"framework": "keras", "layer": call.name, "go_backwards": back,
                 "return_sequences": bool(layer.return_sequences),
-                **({"stateful": True} if getattr(layer, "stateful", False) else {})},
+                **stateful_mark(layer)},
     )
     h0, c0 = _initial_states(b, call, 1, kind)
     seqs, state = bool(layer.return_sequences), bool(layer.return_state)

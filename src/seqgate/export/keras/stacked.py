@@ -38,7 +38,7 @@ from seqgate.export.core.masked_steps import compact, step_order
 from seqgate.export.core.rnn_nodes import RecurrentCall, emit_recurrent
 from seqgate.export.keras import masked_recurrent as masked
 from seqgate.export.keras.call import KerasCall
-from seqgate.export.keras.cellparts import builtin_cell, cell_slots, check_options, pack_cell
+from seqgate.export.keras.cellparts import builtin_cell, cell_slots, check_options, pack_cell, stateful_mark
 from seqgate.export.keras.masking import mask_of
 
 
@@ -77,7 +77,7 @@ def _calls(call: KerasCall, cells: list[tuple[str, Any]]) -> list[RecurrentCall]
         packed=pack_cell(kind, cell), activations=cell_slots(kind, cell), layer=call.name,
         stack_index=k, probe_prefix=f"{call.name}/cell{k}",
         source={"framework": "keras", "layer": call.name, "cell_index": k, "cell": cell.name,
-                "go_backwards": back, "return_sequences": seqs},
+                "go_backwards": back, "return_sequences": seqs, **stateful_mark(layer)},
     ) for k, (kind, cell) in enumerate(cells)]
 
 
