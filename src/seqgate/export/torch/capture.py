@@ -32,6 +32,7 @@ from typing import Any
 
 from seqgate.errors import MappingError, Refusal, SeqgateError, Unsupported, UnsupportedModelError
 from seqgate.export.core.builder import GraphBuilder, np_to_onnx_type
+from seqgate.export.torch.asserts import SKIPPED, SkippedAsserts, assertion_outcome, skipped_metadata
 from seqgate.export.torch.inplace import inplace_problems
 from seqgate.export.torch.inputs import (
     Plan,
@@ -92,7 +93,8 @@ def export_torch_module(
     _declare_outputs(b, result, metas.get(_output_node(gm).name), plan, sa, sb, label)
     from seqgate.export.torch.packing import padding_metadata
 
-    return b.build({**metadata, **padding_metadata(plan)})
+    skipped = skipped_metadata(gm.meta.get(SKIPPED, []))
+    return b.build({**metadata, **padding_metadata(plan), **skipped})
 
 
 # ----- tracing ----------------------------------------------------------------------------
@@ -113,6 +115,7 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
             if n.op == "call_function" and any(n.target is f for f in leaves):
                 n.meta.pop("is_wrapped", None)
         gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
+        gm.meta[SKIPPED] = list(tracer.skipped.lines)
     except Exception as e:
         raise UnsupportedModelError(label, [untraceable(module, e)]) from None
     return clean(gm, label)
@@ -125,6 +128,14 @@ def tracer_class() -> type:
     from seqgate.export.torch.modules import module_mapping
 
     class Tracer(torch.fx.Tracer):
+        def __init__(self, *args: Any, **kwargs: Any) -> None:
+            super().__init__(*args, **kwargs)
+            self.skipped = SkippedAsserts()
+
+        def to_bool(self, obj: Any) -> bool:
+            held = assertion_outcome(self.skipped)  # an `assert` is traced past (asserts.py)
+            return super().to_bool(obj) if held is None else held
+
         def is_leaf_module(self, m: Any, qualname: str) -> bool:
             return super().is_leaf_module(m, qualname) or module_mapping(m) is not None
 

@@ -147,6 +147,7 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
     ``computing`` is set while a sample value is evaluated, so module calls inside that
     evaluation run eagerly instead of being recorded.
     """
+    from seqgate.export.torch.asserts import assertion_outcome
     from seqgate.export.torch.branches import Decisions, decide
 
     proxy_class = _proxy_class()
@@ -160,7 +161,8 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
             self.decisions = Decisions()
 
         def to_bool(self, obj: Any) -> bool:
-            return decide(self, obj, self.decisions)
+            held = assertion_outcome(self.skipped)  # an `assert` is traced past (asserts.py)
+            return decide(self, obj, self.decisions) if held is None else held
 
         def proxy(self, node: Any) -> Any:
             return proxy_class(node, self)
@@ -222,28 +224,22 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     """
     from seqgate.export.torch.branches import compare
     from seqgate.export.torch.inputs import InputSpec, Plan, sample_args, symbol_values
-    from seqgate.export.torch.loopfold import canonical, cell_loop_class, fold_loops
+    from seqgate.export.torch.loopfold import canonical
 
     specs = [InputSpec(n, d) for n, d in dims.items()]
     plan = Plan(params=params, concrete=concrete, inputs=specs)
     leaves = frozenset(id(m) for m in user_cells)
-    graphs: list[Any] = []
-    decided: list[Any] = []
     sizes_ab = symbol_values(specs)
-    for sizes, seed in zip(sizes_ab, (0, 1), strict=True):
-        args = dict(zip(params, sample_args(plan, sizes, seed), strict=True))
-        for _ in range(2):
-            gm, values, decisions = _trace_once(
-                module, make_value_tracer(base_tracer, args, leaves), concrete, label)
-            fold_loops(gm, values, lambda m, ls=leaves: isinstance(m, cell_classes()) or id(m) in ls, label)
-            left = {id(gm.get_submodule(n.target)) for n in gm.graph.nodes
-                    if n.op == "call_module" and id(gm.get_submodule(n.target)) in leaves
-                    and not isinstance(gm.get_submodule(n.target), cell_loop_class())}
-            if not left:
-                break
-            leaves = leaves - left
-        graphs.append(gm)
-        decided.append(decisions)
+    samples = [dict(zip(params, sample_args(plan, sizes, seed), strict=True))
+               for sizes, seed in zip(sizes_ab, (0, 1), strict=True)]
+    while True:  # both traces with the same leaves: the set only shrinks, so this ends
+        traced = [_folded_trace(module, base_tracer, concrete, args, leaves, label) for args in samples]
+        settled = traced[0][2] & traced[1][2]
+        if settled == leaves:
+            break
+        leaves = settled
+    graphs = [t[0] for t in traced]
+    decided = [t[1] for t in traced]
     # without a cell loop to fold, a size read as a Python number must be the same at both sizes
     numbers = not user_cells and not has_cells(module)
     compare(decided[0], decided[1], *sizes_ab, dims, numbers, label)
@@ -253,10 +249,30 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     return graphs[0]
 
 
+def _folded_trace(module: Any, base_tracer: type, concrete: dict[str, Any], args: dict[str, Any],
+                  leaves: frozenset[int], label: str) -> tuple[Any, Any, frozenset[int]]:
+    """Trace with ``leaves`` kept whole, fold cell loops; retrace inlining every user cell that
+    was not part of a folded loop until none is left. Returns the graph, its decisions and the
+    leaves it ended with (a shared block called twice stays an ordinary part of the graph)."""
+    from seqgate.export.torch.loopfold import cell_loop_class, fold_loops
+
+    while True:
+        tracer = make_value_tracer(base_tracer, args, leaves)
+        gm, values, decisions = _trace_once(module, tracer, concrete, label)
+        fold_loops(gm, values, lambda m, ls=leaves: isinstance(m, cell_classes()) or id(m) in ls, label)
+        left = {id(gm.get_submodule(n.target)) for n in gm.graph.nodes
+                if n.op == "call_module" and id(gm.get_submodule(n.target)) in leaves
+                and not isinstance(gm.get_submodule(n.target), cell_loop_class())}
+        if not left:
+            return gm, decisions, leaves
+        leaves = leaves - left
+
+
 def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
                 label: str) -> tuple[Any, dict[Any, Any], Any]:
     import torch.fx
 
+    from seqgate.export.torch.asserts import SKIPPED
     from seqgate.export.torch.branches import BranchError, DataDependent
     from seqgate.export.torch.untraceable import untraceable
 
@@ -269,7 +285,9 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
         raise BranchError(label, [e.unsupported]) from None
     except Exception as e:
         raise UnsupportedModelError(label, [untraceable(module, e)]) from None
-    return torch.fx.GraphModule(tracer.root, graph, type(module).__name__), tracer.values, tracer.decisions
+    gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
+    gm.meta[SKIPPED] = list(tracer.skipped.lines)
+    return gm, tracer.values, tracer.decisions
 
 
 @contextmanager
