@@ -73,10 +73,14 @@ class TorchRunner:
         self._threads = 0
         self.run_threads: int | None = None  # intra-op threads of run() (None: PyTorch's own)
         self._stacked = sorted(w for w in wanted if int(getattr(self._mods[w], "num_layers", 1)) > 1)
-        for name in wanted:
+        inner = {p.source.get("module", p.layer) for p in self.probes if p.source.get("base_forward")}
+        for name in sorted(inner):
+            self._record_base_forward(name)
+        for name in sorted(wanted - inner):
             self._mods[name].register_forward_hook(self._hook(name), with_kwargs=True)
         for name in self._stacked:
-            self._mods[name].forward = self._stacked_forward(name)
+            if name not in inner:
+                self._mods[name].forward = self._stacked_forward(name)
 
     def _hook(self, name: str) -> Any:
         def hook(mod: Any, args: tuple[Any, ...], kwargs: dict[str, Any], out: Any) -> None:
@@ -87,6 +91,26 @@ class TorchRunner:
             self._calls.setdefault(name, []).append((x, hx, out))
 
         return hook
+
+    def _record_base_forward(self, name: str) -> None:
+        """A subclass whose own ``forward`` calls ``super().forward``: its states are those of the
+        base call (the export's ``source.base_forward``), recorded by a ``forward`` placed just
+        before the base class's in this instance's method order (``util.mro``)."""
+        from seqgate.util.mro import insert_before_base
+
+        m = self._mods[name]
+        nn = self.torch.nn
+        base = next(c for c in type(m).__mro__ if c in (nn.LSTM, nn.GRU, nn.RNN))
+        stacked = self._stacked_forward(name) if int(m.num_layers) > 1 else None
+        runner = self
+
+        def forward(mod: Any, input: Any, hx: Any = None) -> Any:
+            out = stacked(input, hx) if stacked is not None else base.forward(mod, input, hx)
+            if runner._recording:
+                runner._calls.setdefault(name, []).append((input, hx, out))
+            return out
+
+        insert_before_base(m, base, {"forward": forward})
 
     # ----- per-layer runs ---------------------------------------------------------------------------
     def _single_layer(self, name: str, k: int) -> Any:
@@ -112,9 +136,11 @@ class TorchRunner:
         d = 2 if m.bidirectional else 1
         torch = self.torch
 
+        base = next(c for c in type(m).__mro__ if c in (torch.nn.LSTM, torch.nn.GRU, torch.nn.RNN))
+
         def forward(input: Any, hx: Any = None) -> Any:
             if not self._recording:
-                return type(m).forward(m, input, hx)
+                return base.forward(m, input, hx)
             is_lstm = isinstance(m, torch.nn.LSTM)
             inp, seqs, hs, cs = input, [], [], []
             for k in range(m.num_layers):
@@ -237,8 +263,10 @@ class TorchRunner:
         with self.torch.inference_mode():
             for name in self._stacked:
                 m = self._mods[name]
+                nn = self.torch.nn
+                base = next(c for c in type(m).__mro__ if c in (nn.LSTM, nn.GRU, nn.RNN))
                 for x, hx, out in self._calls.get(name, []):
-                    ref = type(m).forward(m, x, hx)
+                    ref = base.forward(m, x, hx)  # the recorded call's own inputs, without the stacking
                     for r, o in zip(flatten_outputs(ref), flatten_outputs(out), strict=True):
                         if r is None or o is None:  # a PackedSequence's absent sorted_indices
                             continue

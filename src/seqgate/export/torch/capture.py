@@ -103,9 +103,10 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
     import torch.fx
 
     from seqgate.export.torch.packing import packing_leaves
+    from seqgate.export.torch.subclassed import base_calls_traced
 
     try:
-        with packing_leaves(module) as leaves:
+        with packing_leaves(module) as leaves, base_calls_traced(module):
             tracer = tracer_class()(autowrap_functions=leaves)
             tracer.record_stack_traces = True
             graph = tracer.trace(module, concrete_args=dict(concrete) or None)

@@ -274,12 +274,13 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
 
     from seqgate.export.torch.asserts import SKIPPED
     from seqgate.export.torch.branches import BranchError, DataDependent
+    from seqgate.export.torch.subclassed import base_calls_traced
     from seqgate.export.torch.untraceable import untraceable
 
     tracer = tracer_cls()
     tracer.record_stack_traces = True
     try:
-        with _factories_recorded(tracer):
+        with _factories_recorded(tracer), base_calls_traced(module):
             graph = tracer.trace(module, concrete_args=dict(concrete) or None)
     except DataDependent as e:
         raise BranchError(label, [e.unsupported]) from None

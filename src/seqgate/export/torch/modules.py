@@ -37,7 +37,8 @@ from seqgate.export.core.recurrent import CellActivation, Packed, stack_directio
 from seqgate.export.core.rnn_nodes import ProbeSlot, RecurrentCall, emit_recurrent, register_probe_slots
 from seqgate.export.torch.functions import activation
 from seqgate.export.torch.shapes import flatten
-from seqgate.export.torch.values import TV, TorchCall, bind, want_tensor
+from seqgate.export.torch.subclassed import is_base_forward, recurrent_base, recurrent_base_forward
+from seqgate.export.torch.values import TV, Table, TorchCall, bind, want_tensor
 
 F32 = np.float32
 _KIND = {nn.LSTM: "lstm", nn.GRU: "gru", nn.RNN: "rnn"}
@@ -99,10 +100,14 @@ def _check_rnn(m: nn.RNNBase, x: TV, states: tuple[TV | None, TV | None]) -> Non
             raise Refusal(f"initial state of rank {s.rank}", "pass batched states [L·D, batch, H]")
 
 
-def _recurrent(b: GraphBuilder, call: TorchCall) -> Any:
+def recurrent_module(b: GraphBuilder, call: TorchCall) -> Any:
+    """An RNN/GRU/LSTM call (module docstring); for a subclass with its own ``forward``, the call
+    of the base class's ``forward`` (``subclassed``), whose arguments bind to the base's."""
     m = call.module
-    kind = _KIND[next(c for c in type(m).__mro__ if c in _KIND)]
-    a = _args(call)
+    base = next(c for c in type(m).__mro__ if c in _KIND)
+    kind = _KIND[base]
+    a = bind(base.forward, (m, *call.args), call.kwargs, f"{type(m).__name__}.forward")
+    a.pop("self", None)
     from seqgate.export.torch.packing import PackedV
 
     packed = a["input"] if isinstance(a["input"], PackedV) else None
@@ -127,7 +132,8 @@ def _recurrent(b: GraphBuilder, call: TorchCall) -> Any:
             stack_index=k, probe_prefix=f"{prefix}/l{k}",
             source={"framework": "torch", "module": call.name, "module_type": _TYPE[kind],
                     "layer_index": k, "num_layers": n_layers, "bidirectional": d == 2,
-                    "batch_first": bool(m.batch_first), "call_index": call.call_index},
+                    "batch_first": bool(m.batch_first), "call_index": call.call_index,
+                    **({"base_forward": True} if type(m).forward is not base.forward else {})},
         )
         ih = _layer_slice(b, h0, k, d, n_layers)
         ic = _layer_slice(b, c0, k, d, n_layers)
@@ -171,6 +177,27 @@ def _layer_slice(b: GraphBuilder, s: TV | None, k: int, d: int, n_layers: int) -
 
 def _concat(b: GraphBuilder, parts: list[str]) -> str:
     return parts[0] if len(parts) == 1 else b.op("Concat", parts, axis=0)
+
+
+def base_forward_call(b: GraphBuilder, call: TorchCall) -> Any:
+    """``recurrent_base_forward(module, ...)`` (``subclassed``): the base layer's call, counted per module."""
+    m = call.args[0] if call.args else None
+    if recurrent_base(m) is None:
+        raise Refusal("recurrent_base_forward of something that is not a recurrent module")
+    target = str(call.node.args[0].target)
+    index = 0
+    for n in call.node.graph.nodes:  # earlier base calls of the same module
+        if n is call.node:
+            break
+        if is_base_forward(n) and str(n.args[0].target) == target:
+            index += 1
+    inner = TorchCall(call.node, target, tuple(call.args[1:]), call.kwargs, call.meta, m, call.used,
+                      index, type(m).__name__, call.capture)
+    return recurrent_module(b, inner)
+
+
+BASE_CALLS = Table()  # merged in registry.py
+BASE_CALLS.functions[recurrent_base_forward] = base_forward_call
 
 
 # ----- other modules --------------------------------------------------------------------------
@@ -304,7 +331,7 @@ def _act(kind: str, params: Any = None) -> Any:
 _SELU = {"alpha": 1.6732632423543772848170429916717, "gamma": 1.0507009873554804934193349852946}
 
 MODULES: dict[type, Any] = {
-    nn.LSTM: _recurrent, nn.GRU: _recurrent, nn.RNN: _recurrent,
+    nn.LSTM: recurrent_module, nn.GRU: recurrent_module, nn.RNN: recurrent_module,
     nn.Linear: _linear, nn.Embedding: _embedding, nn.Conv1d: _conv1d,
     nn.LayerNorm: _layer_norm, nn.BatchNorm1d: _batch_norm,
     nn.Dropout: _identity, nn.Dropout1d: _identity, nn.Dropout2d: _identity, nn.Dropout3d: _identity,
