@@ -120,8 +120,10 @@ class TorchRunner:
             nn = self.torch.nn
             kind = next(c for c in type(m).__mro__ if c in (nn.LSTM, nn.GRU, nn.RNN))
             opts: dict[str, Any] = {"nonlinearity": m.nonlinearity} if kind is nn.RNN else {}
+            if kind is nn.LSTM and m.proj_size:
+                opts["proj_size"] = m.proj_size
             d = 2 if m.bidirectional else 1
-            in_size = m.input_size if k == 0 else d * m.hidden_size
+            in_size = m.input_size if k == 0 else d * (getattr(m, "proj_size", 0) or m.hidden_size)
             one = kind(in_size, m.hidden_size, num_layers=1, bias=m.bias, batch_first=m.batch_first,
                        bidirectional=m.bidirectional, **opts)
             state = {}
@@ -172,7 +174,7 @@ class TorchRunner:
                 continue
             out = calls[call][2]
             m = self._mods[name]
-            d_all, h = (2 if m.bidirectional else 1), m.hidden_size
+            d_all, h = (2 if m.bidirectional else 1), getattr(m, "proj_size", 0) or m.hidden_size
             k, d = int(src.get("layer_index", p.stack_index)), p.direction_index
             if p.kind == "hidden_sequence":
                 seq = self._seqs[name][call][k] if name in self._stacked else out[0]

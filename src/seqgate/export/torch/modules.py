@@ -3,7 +3,8 @@
 Each mapping is ``fn(builder, call) -> raw result`` (ONNX value names in the structure the
 module returns; ``None`` for parts nobody reads). Equations:
 
-- RNN/GRU/LSTM: one native ONNX node per stacked layer k (layout 0, time-major):
+- RNN/GRU/LSTM: one native ONNX node per stacked layer k (layout 0, time-major; an LSTM with
+  ``proj_size > 0`` is one Scan per layer and direction instead, ``projected``):
   ``X_0 = x`` (transposed to ``[T, N, I]`` when ``batch_first``), ``Y_k [T, D, N, H]``,
   ``X_{k+1} = reshape(transpose(Y_k, (0, 2, 1, 3)), [T, N, D·H])``; the output is ``X_L``
   (transposed back when ``batch_first``); ``h_n = concat_k(Y_h,k)`` along axis 0, i.e.
@@ -36,6 +37,7 @@ from seqgate.export.core.builder import GraphBuilder
 from seqgate.export.core.recurrent import CellActivation, Packed, stack_directions, torch_weights
 from seqgate.export.core.rnn_nodes import ProbeSlot, RecurrentCall, emit_recurrent, register_probe_slots
 from seqgate.export.torch.functions import activation
+from seqgate.export.torch.projected import projected_lstm
 from seqgate.export.torch.shapes import flatten
 from seqgate.export.torch.subclassed import is_base_forward, recurrent_base, recurrent_base_forward
 from seqgate.export.torch.values import TV, Table, TorchCall, bind, want_tensor
@@ -89,9 +91,6 @@ def _states(m: nn.RNNBase, kind: str, hx: Any) -> tuple[TV | None, TV | None]:
 
 
 def _check_rnn(m: nn.RNNBase, x: TV, states: tuple[TV | None, TV | None]) -> None:
-    if getattr(m, "proj_size", 0):
-        raise Refusal(f"proj_size={m.proj_size}",
-                      "an LSTM with a projection is not one ONNX LSTM op; use proj_size=0")
     if x.rank != 3:
         raise Refusal(f"input of rank {x.rank}",
                       "pass a batched 3-D input ([batch, time, features] or [time, batch, features])")
@@ -124,16 +123,19 @@ def recurrent_module(b: GraphBuilder, call: TorchCall) -> Any:
     hs: list[str] = []
     cs: list[str] = []
     prefix = call.name if call.call_index == 0 else f"{call.name}/call{call.call_index}"
+    if getattr(m, "proj_size", 0):
+        if packed is not None:
+            raise Refusal(f"proj_size={m.proj_size} on a packed sequence",
+                          "pass the padded tensor (a projected LSTM is exported as a Scan, without lengths)")
+        y, h, c = projected_lstm(b, m, inp, h0, c0, prefix, _source(call, base))
+        return ((b.transpose(y, [1, 0, 2]) if m.batch_first else y) if need_y else None, (h, c))
     for k in range(n_layers):
         last = k == n_layers - 1
         rc = RecurrentCall(
             kind=kind, hidden=hidden, direction="bidirectional" if d == 2 else "forward",
             packed=_pack_layer(m, kind, k), activations=_slots(m, kind), layer=call.name,
             stack_index=k, probe_prefix=f"{prefix}/l{k}",
-            source={"framework": "torch", "module": call.name, "module_type": _TYPE[kind],
-                    "layer_index": k, "num_layers": n_layers, "bidirectional": d == 2,
-                    "batch_first": bool(m.batch_first), "call_index": call.call_index,
-                    **({"base_forward": True} if type(m).forward is not base.forward else {})},
+            source={**_source(call, base), "layer_index": k},
         )
         ih = _layer_slice(b, h0, k, d, n_layers)
         ic = _layer_slice(b, c0, k, d, n_layers)
@@ -153,6 +155,15 @@ def recurrent_module(b: GraphBuilder, call: TorchCall) -> Any:
     if kind != "lstm":
         return (y, h)
     return (y, (h, _concat(b, cs) if need_c else None))
+
+
+def _source(call: TorchCall, base: type) -> dict[str, Any]:
+    """What the probes of a recurrent call record about their module (the runner reads it)."""
+    m = call.module
+    return {"framework": "torch", "module": call.name, "module_type": _TYPE[_KIND[base]],
+            "num_layers": int(m.num_layers), "bidirectional": bool(m.bidirectional),
+            "batch_first": bool(m.batch_first), "call_index": call.call_index,
+            **({"base_forward": True} if type(m).forward is not base.forward else {})}
 
 
 def _final_probes(b: GraphBuilder, rc: RecurrentCall, out: Any, d: int) -> None:
