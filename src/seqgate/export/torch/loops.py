@@ -232,8 +232,11 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     sizes_ab = symbol_values(specs)
     samples = [dict(zip(params, sample_args(plan, sizes, seed), strict=True))
                for sizes, seed in zip(sizes_ab, (0, 1), strict=True)]
+    notes: list[dict[str, Any]] = [{}, {}]  # cells called per step but not folded, per sample
     while True:  # both traces with the same leaves: the set only shrinks, so this ends
         traced = [_folded_trace(module, base_tracer, concrete, args, leaves, label) for args in samples]
+        for note, t in zip(notes, traced, strict=True):
+            note.update(t[3])
         settled = traced[0][2] & traced[1][2]
         if settled == leaves:
             break
@@ -245,17 +248,20 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     compare(decided[0], decided[1], *sizes_ab, dims, numbers, label)
     a, b = canonical(graphs[0]), canonical(graphs[1])
     if a != b:
-        raise UnsupportedModelError(label, [_difference(graphs[0], graphs[1], a, b)])
+        why = _unfolded_cell(type(module).__name__, notes)
+        raise UnsupportedModelError(label, [why or _difference(graphs[0], graphs[1], a, b)])
     return graphs[0]
 
 
 def _folded_trace(module: Any, base_tracer: type, concrete: dict[str, Any], args: dict[str, Any],
-                  leaves: frozenset[int], label: str) -> tuple[Any, Any, frozenset[int]]:
+                  leaves: frozenset[int], label: str) -> tuple[Any, Any, frozenset[int], dict[str, Any]]:
     """Trace with ``leaves`` kept whole, fold cell loops; retrace inlining every user cell that
-    was not part of a folded loop until none is left. Returns the graph, its decisions and the
-    leaves it ended with (a shared block called twice stays an ordinary part of the graph)."""
+    was not part of a folded loop until none is left. Returns the graph, its decisions, the leaves
+    it ended with (a shared block called twice stays an ordinary part of the graph) and, for each
+    cell called more than once but not folded, (calls, class, where its next state comes from)."""
     from seqgate.export.torch.loopfold import cell_loop_class, fold_loops
 
+    notes: dict[str, tuple[int, str, str]] = {}
     while True:
         tracer = make_value_tracer(base_tracer, args, leaves)
         gm, values, decisions = _trace_once(module, tracer, concrete, label)
@@ -264,7 +270,11 @@ def _folded_trace(module: Any, base_tracer: type, concrete: dict[str, Any], args
                 if n.op == "call_module" and id(gm.get_submodule(n.target)) in leaves
                 and not isinstance(gm.get_submodule(n.target), cell_loop_class())}
         if not left:
-            return gm, decisions, leaves
+            return gm, decisions, leaves, notes
+        for target, calls in _calls_by_target(gm).items():
+            via = _unfolded_note(gm, calls) if len(calls) > 1 and id(gm.get_submodule(target)) in left else None
+            if via is not None:
+                notes[target] = (len(calls), type(gm.get_submodule(target)).__name__, via)
         leaves = leaves - left
 
 
@@ -334,4 +344,62 @@ def _difference(ga: Any, gb: Any, a: list[Any], b: list[Any]) -> Unsupported:
     return Unsupported(f"{type(ga).__name__}.forward", what, hint)
 
 
+def _calls_by_target(gm: Any) -> dict[str, list[Any]]:
+    out: dict[str, list[Any]] = {}
+    for n in gm.graph.nodes:
+        if n.op == "call_module":
+            out.setdefault(str(n.target), []).append(n)
+    return out
 
+
+def _from_call(n: Any, call: Any) -> bool:
+    """Is ``n`` the call's output or an item of it (``out[0]``, ``out[1][0]``)?"""
+    import operator
+
+    while n is not call:
+        if not (hasattr(n, "op") and n.op == "call_function" and n.target is operator.getitem):
+            return False
+        n = n.args[0]
+    return True
+
+
+def _describe(n: Any, gm: Any) -> str:
+    """``target (Class) at file:line`` of the op that made ``n`` (items taken out of it skipped)."""
+    import operator
+
+    from seqgate.export.torch.values import source_line
+
+    while n.op == "call_function" and n.target is operator.getitem and hasattr(n.args[0], "op"):
+        n = n.args[0]
+
+    what = (f"{n.target} ({type(gm.get_submodule(n.target)).__name__})" if n.op == "call_module"
+            else str(getattr(n.target, "__name__", n.target)))
+    line = source_line(n)
+    return what + (f" at {line}" if line else "")
+
+
+def _unfolded_note(gm: Any, calls: list[Any]) -> str | None:
+    """Why a cell called once per step was not folded: where its next step's state comes from."""
+    import torch.fx
+
+    first, second = calls[0], calls[1]
+    foreign = [a for a in second.args[1:] if isinstance(a, torch.fx.Node) and not _from_call(a, first)]
+    return _describe(foreign[0], gm) if foreign else None
+
+
+def _unfolded_cell(root: str, notes: list[dict[str, tuple[int, str, str]]]) -> Unsupported | None:
+    """A cell called once per time step in both traces (a different number of calls) whose loop
+    was not folded into one op: name it and what its next step's state goes through."""
+    for target, (n_a, cls, via) in notes[0].items():
+        n_b = notes[1].get(target, (n_a, "", ""))[0]
+        if n_b == n_a:
+            continue
+        what = (f"{target} ({cls}) runs once per time step ({n_a} and {n_b} calls at the two sample "
+                f"lengths), but the state given to its next step is not its own output: it comes from "
+                f"{via}, so the loop is not `state = cell(x[:, t], state)` and cannot be one op over a "
+                f"dynamic time axis")
+        hint = ("give the cell its own outputs back as its next state: move what is applied to the state "
+                "between steps (a residual, a normalisation, stacking the layers' states) inside the cell's "
+                "forward (seqgate then exports the loop as one Scan), or fix the time size with --input")
+        return Unsupported(f"{root}.forward", what, hint)
+    return None
