@@ -178,3 +178,9 @@ def test_cli_verify_compares_every_projected_state(tmp_path: Path) -> None:
     names = {t["name"] for t in json.loads(rep.read_text())["tensors"]}
     assert {f"enc/l{k}/{d}/{kind}" for k in (0, 1) for d in ("forward", "reverse")
             for kind in ("hidden_sequence", "hidden_final", "cell_final")} <= names, names
+
+
+def test_two_exports_of_a_projected_lstm_are_byte_identical() -> None:
+    m = randomize(Projected(2, True, True, True))
+    specs = ["x:batch,time,3", "h0:4,batch,2", "c0:4,batch,6"]
+    assert export(m, specs).SerializeToString() == export(m, specs).SerializeToString()

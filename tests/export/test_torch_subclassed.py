@@ -15,12 +15,14 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pytest
 import torch
 from torch import nn
 from torch.nn.utils.rnn import pack_padded_sequence, pad_packed_sequence
 from typer.testing import CliRunner
 
 from seqgate.cli.app import app
+from seqgate.errors import UnsupportedModelError
 from seqgate.onnxfile.probes import read_probe_map
 from torch_models import export, rand, randomize, run_onnx, torch_outputs, worst
 from torch_reference import run_module
@@ -83,6 +85,28 @@ class Plain(nn.Module):
         return out[:, -1] * 2.0, h
 
 
+class ZeroLengthAware(nn.GRU):
+    """Branches on the lengths' values before packing: a data branch, refused."""
+
+    def forward(self, x: torch.Tensor, hx: Any = None, lengths: Any = None) -> Any:  # type: ignore[override]
+        if lengths is None:
+            return super().forward(x, hx)
+        if lengths.max() == 0:
+            return torch.zeros_like(x), hx
+        packed = pack_padded_sequence(x, lengths, batch_first=True, enforce_sorted=False)
+        out, h = super().forward(packed, hx)
+        return pad_packed_sequence(out, batch_first=True)[0], h
+
+
+class WithLengths(nn.Module):
+    def __init__(self) -> None:
+        super().__init__()
+        self.rnn = ZeroLengthAware(3, 4, batch_first=True)
+
+    def forward(self, x: torch.Tensor, lengths: torch.Tensor) -> Any:
+        return self.rnn(x, lengths=lengths)[0]
+
+
 def _params(m: nn.Module) -> dict[str, Any]:
     return {k: v.detach().numpy() for k, v in m.state_dict().items()}
 
@@ -128,6 +152,13 @@ def test_forecasting_style_subclass_exports_like_the_base_layer(rng: np.random.G
     names = [p.name for p in read_probe_map(model)]
     assert names == ["rnn/l0/forward/hidden_sequence", "rnn/l0/forward/hidden_final"], names
     assert all(p.source["base_forward"] for p in read_probe_map(model))
+
+
+def test_data_branch_inside_the_subclass_is_refused_naming_its_line() -> None:
+    with pytest.raises(UnsupportedModelError) as e:
+        export(randomize(WithLengths()), ["x:batch,time,3", "lengths:batch"])
+    msg = str(e.value)
+    assert "if lengths.max() == 0:" in msg and "decides on tensor data" in msg, msg
 
 
 FACTORY = '''

@@ -43,12 +43,17 @@ def has_cells(module: Any) -> bool:
 
 
 def user_cell_candidates(module: Any) -> list[Any]:
-    """Submodules written by the user whose ``forward`` takes an input and a state (≥ 2 parameters)."""
+    """Submodules written by the user whose ``forward`` takes an input and a state (≥ 2 parameters).
+
+    A subclass of nn.LSTM/GRU/RNN runs whole sequences, not one step: it is traced through
+    (``subclassed``), never a cell candidate."""
     import inspect
+
+    from torch import nn
 
     out = []
     for name, m in module.named_modules():
-        if not name or type(m).__module__.startswith("torch."):
+        if not name or type(m).__module__.startswith("torch.") or isinstance(m, nn.RNNBase):
             continue
         params = [p for p in inspect.signature(m.forward).parameters.values()
                   if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD)]
