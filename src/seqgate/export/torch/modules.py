@@ -204,7 +204,8 @@ def base_forward_call(b: GraphBuilder, call: TorchCall) -> Any:
             index += 1
     inner = TorchCall(call.node, target, tuple(call.args[1:]), call.kwargs, call.meta, m, call.used,
                       index, type(m).__name__, call.capture)
-    return recurrent_module(b, inner)
+    with b.layer(target, type(m).__name__):  # named after the module, as a leaf call would be
+        return recurrent_module(b, inner)
 
 
 BASE_CALLS = Table()  # merged in registry.py
