@@ -218,3 +218,24 @@ def test_loop_over_the_rank_is_decided_at_trace_time(rng: np.random.Generator) -
         ref = torch_reference.run_module("gru", {k: v.numpy() for k, v in m.gru.state_dict().items()},
                                          z, 1, False, True)["output"]
         worst([ref + xd.std(1, ddof=1, keepdims=True)[..., :1]], got)
+
+
+class RankFromShape(nn.Module):
+    """``len(x.shape)`` and a loop over ``x.shape`` (the rank, fixed for the export) beside a size
+    branch, so the value-carrying trace reads them."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.lstm = nn.LSTM(3, 4, batch_first=True)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        if x.dim() == 2:
+            x = x.unsqueeze(-1)
+        idx = [slice(None)] * len(x.shape)
+        idx[-1] = slice(0, 3)
+        n_axes = sum(1 for _ in x.shape)
+        return self.lstm(x[tuple(idx)])[0] * float(n_axes)
+
+
+def test_len_of_a_shape_in_the_value_carrying_trace(rng: np.random.Generator) -> None:
+    _check(randomize(RankFromShape()), None, [(1, 2, 3), (4, 9, 3)], rng)

@@ -65,7 +65,7 @@ def user_cell_candidates(module: Any) -> list[Any]:
 def _proxy_class() -> type:
     """A proxy whose sizes can be read as Python numbers (the sample's)."""
     import torch.fx
-    from torch.fx.proxy import TraceError
+    from torch.fx.proxy import Attribute, TraceError
 
     from seqgate.export.torch.branches import record_number
 
@@ -87,6 +87,13 @@ def _proxy_class() -> type:
 
         def __iter__(self) -> Any:
             return iter([self[i] for i in range(len(self.tracer.value_of(self)))])  # type: ignore[attr-defined]
+
+        def __getattr__(self, k: str) -> Any:
+            return ValueAttribute(self, k)  # x.shape: len(x.shape) and `for d in x.shape` work too
+
+    class ValueAttribute(Attribute):
+        __len__ = ValueProxy.__len__
+        __iter__ = ValueProxy.__iter__
 
     return ValueProxy
 
