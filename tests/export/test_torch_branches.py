@@ -14,6 +14,7 @@ import pytest
 import torch
 from torch import nn
 
+import torch_reference
 from seqgate.errors import UnsupportedModelError
 from torch_models import export, rand, randomize, run_onnx, torch_outputs, worst
 
@@ -179,3 +180,62 @@ def test_parameter_free_modules_built_in_forward_are_inlined(rng: np.random.Gene
 def test_module_with_weights_built_in_forward_stays_refused() -> None:
     with pytest.raises(UnsupportedModelError, match=r"not installed as a submodule"):
         export(randomize(PerCallLinear()))
+
+
+class InstanceNormByRank(nn.Module):
+    """Normalisation over every axis between batch and features, the axes listed with
+    ``range(1, x.ndim - 1)`` (a loop over the rank, fixed for the export), an affine whose
+    weight is reshaped with ``w.shape + (1,)``, then a GRU."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.weight = nn.Parameter(torch.ones(3))
+        self.bias = nn.Parameter(torch.zeros(3))
+        self.gru = nn.GRU(3, 4, batch_first=True)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        dims = tuple(range(1, x.ndim - 1))
+        mean = torch.mean(x, dim=dims, keepdim=True)
+        std = torch.sqrt(torch.var(x, dim=dims, keepdim=True, unbiased=False) + 1e-5)
+        z = (x - mean) / std
+        scale = self.weight.view(self.weight.shape + (1,))  # noqa: RUF005 - the form under test
+        z = (z.transpose(1, 2) * scale).transpose(1, 2) + self.bias
+        return self.gru(z)[0] + x.std(dim=1, keepdim=True)[..., :1]
+
+
+def test_loop_over_the_rank_is_decided_at_trace_time(rng: np.random.Generator) -> None:
+    m = randomize(InstanceNormByRank())
+    model = export(m)
+    for shape in ((1, 2, 3), (4, 9, 3)):
+        x = rand(rng, *shape)
+        got = run_onnx(model, {"x": x})
+        worst(torch_outputs(m, {"x": x}), got)
+        # NumPy: biased variance over time for the normalisation (np.var, ddof=0), the
+        # correction-1 standard deviation (np.std, ddof=1) added at the end
+        w, bias = m.weight.detach().numpy(), m.bias.detach().numpy()
+        xd = x.astype(np.float64)
+        z = (xd - xd.mean(1, keepdims=True)) / np.sqrt(xd.var(1, keepdims=True) + 1e-5) * w + bias
+        ref = torch_reference.run_module("gru", {k: v.numpy() for k, v in m.gru.state_dict().items()},
+                                         z, 1, False, True)["output"]
+        worst([ref + xd.std(1, ddof=1, keepdims=True)[..., :1]], got)
+
+
+class RankFromShape(nn.Module):
+    """``len(x.shape)`` and a loop over ``x.shape`` (the rank, fixed for the export) beside a size
+    branch, so the value-carrying trace reads them."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.lstm = nn.LSTM(3, 4, batch_first=True)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        if x.dim() == 2:
+            x = x.unsqueeze(-1)
+        idx = [slice(None)] * len(x.shape)
+        idx[-1] = slice(0, 3)
+        n_axes = sum(1 for _ in x.shape)
+        return self.lstm(x[tuple(idx)])[0] * float(n_axes)
+
+
+def test_len_of_a_shape_in_the_value_carrying_trace(rng: np.random.Generator) -> None:
+    _check(randomize(RankFromShape()), None, [(1, 2, 3), (4, 9, 3)], rng)

@@ -17,7 +17,6 @@ from onnx import numpy_helper
 from onnx.reference import ReferenceEvaluator
 
 from reference_equations import onnx_gru, onnx_lstm, onnx_rnn
-from seqgate.errors import UnsupportedModelError
 from seqgate.onnxfile.probes import read_probe_map, to_canonical, with_probe_outputs
 from torch_models import check, export, nn, rand, randomize, run_onnx, torch_outputs, worst
 from torch_reference import run_module
@@ -196,22 +195,6 @@ def test_same_module_called_twice_gets_call_index(rng: np.random.Generator) -> N
     assert {p.source["call_index"] for p in probes} == {0, 1}
     assert len({p.name for p in probes}) == len(probes)
     assert any(p.name.startswith("rnn/call1/l0/") for p in probes)
-
-
-def test_proj_size_is_refused() -> None:
-    import torch.nn as tnn
-
-    class Proj(tnn.Module):
-        def __init__(self) -> None:
-            super().__init__()
-            self.lstm = tnn.LSTM(5, 8, proj_size=3)
-
-        def forward(self, x: torch.Tensor) -> torch.Tensor:
-            return self.lstm(x)[0]
-
-    with pytest.raises(UnsupportedModelError) as e:
-        export(Proj())
-    assert "lstm (LSTM)" in str(e.value) and "proj_size=3" in str(e.value)
 
 
 LONG = [("lstm", 2, True), ("gru", 2, False), ("rnn", 1, True)]

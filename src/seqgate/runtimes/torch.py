@@ -77,10 +77,14 @@ class TorchRunner:
         self._threads = 0
         self.run_threads: int | None = None  # intra-op threads of run() (None: PyTorch's own)
         self._stacked = sorted(w for w in wanted if int(getattr(self._mods[w], "num_layers", 1)) > 1)
-        for name in wanted:
+        inner = {p.source.get("module", p.layer) for p in self.probes if p.source.get("base_forward")}
+        for name in sorted(inner):
+            self._record_base_forward(name)
+        for name in sorted(wanted - inner):
             self._mods[name].register_forward_hook(self._hook(name), with_kwargs=True)
         for name in self._stacked:
-            self._mods[name].forward = self._stacked_forward(name)
+            if name not in inner:
+                self._mods[name].forward = self._stacked_forward(name)
 
     def _hook(self, name: str) -> Any:
         def hook(mod: Any, args: tuple[Any, ...], kwargs: dict[str, Any], out: Any) -> None:
@@ -92,6 +96,26 @@ class TorchRunner:
 
         return hook
 
+    def _record_base_forward(self, name: str) -> None:
+        """A subclass whose own ``forward`` calls ``super().forward``: its states are those of the
+        base call (the export's ``source.base_forward``), recorded by a ``forward`` placed just
+        before the base class's in this instance's method order (``util.mro``)."""
+        from seqgate.util.mro import insert_before_base
+
+        m = self._mods[name]
+        nn = self.torch.nn
+        base = next(c for c in type(m).__mro__ if c in (nn.LSTM, nn.GRU, nn.RNN))
+        stacked = self._stacked_forward(name) if int(m.num_layers) > 1 else None
+        runner = self
+
+        def forward(mod: Any, input: Any, hx: Any = None) -> Any:
+            out = stacked(input, hx) if stacked is not None else base.forward(mod, input, hx)
+            if runner._recording:
+                runner._calls.setdefault(name, []).append((input, hx, out))
+            return out
+
+        insert_before_base(m, base, {"forward": forward})
+
     # ----- per-layer runs ---------------------------------------------------------------------------
     def _single_layer(self, name: str, k: int) -> Any:
         key = (name, k)
@@ -100,8 +124,10 @@ class TorchRunner:
             nn = self.torch.nn
             kind = next(c for c in type(m).__mro__ if c in (nn.LSTM, nn.GRU, nn.RNN))
             opts: dict[str, Any] = {"nonlinearity": m.nonlinearity} if kind is nn.RNN else {}
+            if kind is nn.LSTM and m.proj_size:
+                opts["proj_size"] = m.proj_size
             d = 2 if m.bidirectional else 1
-            in_size = m.input_size if k == 0 else d * m.hidden_size
+            in_size = m.input_size if k == 0 else d * (getattr(m, "proj_size", 0) or m.hidden_size)
             one = kind(in_size, m.hidden_size, num_layers=1, bias=m.bias, batch_first=m.batch_first,
                        bidirectional=m.bidirectional, **opts)
             state = {}
@@ -116,9 +142,11 @@ class TorchRunner:
         d = 2 if m.bidirectional else 1
         torch = self.torch
 
+        base = next(c for c in type(m).__mro__ if c in (torch.nn.LSTM, torch.nn.GRU, torch.nn.RNN))
+
         def forward(input: Any, hx: Any = None) -> Any:
             if not self._recording:
-                return type(m).forward(m, input, hx)
+                return base.forward(m, input, hx)
             is_lstm = isinstance(m, torch.nn.LSTM)
             inp, seqs, hs, cs = input, [], [], []
             for k in range(m.num_layers):
@@ -150,7 +178,7 @@ class TorchRunner:
                 continue
             out = calls[call][2]
             m = self._mods[name]
-            d_all, h = (2 if m.bidirectional else 1), m.hidden_size
+            d_all, h = (2 if m.bidirectional else 1), getattr(m, "proj_size", 0) or m.hidden_size
             k, d = int(src.get("layer_index", p.stack_index)), p.direction_index
             if p.kind == "hidden_sequence":
                 seq = self._seqs[name][call][k] if name in self._stacked else out[0]
@@ -239,8 +267,10 @@ class TorchRunner:
         with self.torch.inference_mode():
             for name in self._stacked:
                 m = self._mods[name]
+                nn = self.torch.nn
+                base = next(c for c in type(m).__mro__ if c in (nn.LSTM, nn.GRU, nn.RNN))
                 for x, hx, out in self._calls.get(name, []):
-                    ref = type(m).forward(m, x, hx)
+                    ref = base.forward(m, x, hx)  # the recorded call's own inputs, without the stacking
                     for r, o in zip(flatten_outputs(ref), flatten_outputs(out), strict=True):
                         if r is None or o is None:  # a PackedSequence's absent sorted_indices
                             continue

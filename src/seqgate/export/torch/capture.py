@@ -32,6 +32,7 @@ from typing import Any
 
 from seqgate.errors import MappingError, Refusal, SeqgateError, Unsupported, UnsupportedModelError
 from seqgate.export.core.builder import GraphBuilder, np_to_onnx_type
+from seqgate.export.torch.asserts import SKIPPED, SkippedAsserts, assertion_outcome, skipped_metadata
 from seqgate.export.torch.declared import parse_inputs, range_metadata
 from seqgate.export.torch.inplace import inplace_problems
 from seqgate.export.torch.inputs import (
@@ -107,7 +108,8 @@ def export_torch_module(
 
     inputs_meta = {**renamed_metadata(padding_metadata(plan), onnx_names),
                    **range_metadata(plan.inputs, onnx_names), **structure_metadata(module)}
-    return b.build({**metadata, **inputs_meta})
+    skipped = skipped_metadata(gm.meta.get(SKIPPED, []))
+    return b.build({**metadata, **inputs_meta, **skipped})
 
 
 # ----- tracing ----------------------------------------------------------------------------
@@ -116,9 +118,10 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
     import torch.fx
 
     from seqgate.export.torch.packing import packing_leaves
+    from seqgate.export.torch.subclassed import base_calls_traced
 
     try:
-        with packing_leaves(module) as leaves:
+        with packing_leaves(module) as leaves, base_calls_traced(module):
             tracer = tracer_class()(autowrap_functions=leaves)
             tracer.record_stack_traces = True
             graph = tracer.trace(module, concrete_args=dict(concrete) or None)
@@ -128,6 +131,7 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
             if n.op == "call_function" and any(n.target is f for f in leaves):
                 n.meta.pop("is_wrapped", None)
         gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
+        gm.meta[SKIPPED] = list(tracer.skipped.lines)
     except SeqgateError:
         raise
     except Exception as e:
@@ -142,6 +146,14 @@ def tracer_class() -> type:
     from seqgate.export.torch.modules import module_mapping
 
     class Tracer(torch.fx.Tracer):
+        def __init__(self, *args: Any, **kwargs: Any) -> None:
+            super().__init__(*args, **kwargs)
+            self.skipped = SkippedAsserts()
+
+        def to_bool(self, obj: Any) -> bool:
+            held = assertion_outcome(self.skipped)  # an `assert` is traced past (asserts.py)
+            return super().to_bool(obj) if held is None else held
+
         def is_leaf_module(self, m: Any, qualname: str) -> bool:
             return super().is_leaf_module(m, qualname) or module_mapping(m) is not None
 

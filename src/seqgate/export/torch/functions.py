@@ -34,9 +34,11 @@ from seqgate.export.core.builder import GraphBuilder, np_to_onnx_type
 from seqgate.export.torch.values import (
     TV,
     DimV,
+    ShapeV,
     Table,
     TorchCall,
     dim_scalar,
+    shape_part,
     shape_vector,
     size_parts,
     want_int,
@@ -214,6 +216,8 @@ def binary(b: GraphBuilder, op: str, x: Any, y: Any) -> Any:
     """``x op y`` for tensors, Python numbers and dynamic sizes (module docstring)."""
     if _is_num(x) and _is_num(y):
         return _PY[op](x, y)
+    if op == "Add" and all(isinstance(v, ShapeV | tuple) for v in (x, y)):  # x.shape + (1,)
+        return tuple(_size_items(b, x) + _size_items(b, y))
     if not isinstance(x, TV) and not isinstance(y, TV):
         return _dim_binary(b, op, x, y)
     floats = any((isinstance(v, TV) and v.dtype.startswith("float")) or isinstance(v, float) for v in (x, y))
@@ -223,6 +227,10 @@ def binary(b: GraphBuilder, op: str, x: Any, y: Any) -> Any:
         q = b.op("Div", [xn, yn])
         return b.op("Floor", [q]) if dtype == "float32" else q
     return b.op(op, [xn, yn])
+
+
+def _size_items(b: GraphBuilder, v: ShapeV | tuple[Any, ...]) -> list[Any]:
+    return list(shape_part(b, v)) if isinstance(v, ShapeV) else list(v)
 
 
 def _dim_binary(b: GraphBuilder, op: str, x: Any, y: Any) -> DimV:
@@ -279,7 +287,8 @@ def _f_linear(b: GraphBuilder, call: TorchCall, a: dict[str, Any]) -> str:
 
 
 # ----- reductions ---------------------------------------------------------------------------
-def _axes(x: TV, dim: Any) -> list[int]:
+def axes_of(x: TV, dim: Any) -> list[int]:
+    """The non-negative axes a reduction's ``dim`` names (every axis for None or empty)."""
     if dim is None or dim == () or dim == []:
         return list(range(x.rank))
     dims = list(dim) if isinstance(dim, list | tuple) else [dim]
@@ -294,7 +303,7 @@ def _reduce(op: str) -> Any:
         name = _as_float(b, x) if op == "ReduceMean" else x.name
         if x.dtype == "bool" and op == "ReduceSum":  # torch sums a bool tensor as int64
             name = b.op("Cast", [x.name], to=np_to_onnx_type(np.int64))
-        return b.reduce(op, name, _axes(x, a["dim"]), keepdims=bool(a["keepdim"]))
+        return b.reduce(op, name, axes_of(x, a["dim"]), keepdims=bool(a["keepdim"]))
 
     return fn
 

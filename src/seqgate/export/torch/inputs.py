@@ -187,6 +187,8 @@ def _guess(gm: Any, ph: Any) -> _Guess | None:
     are mapped back through the inverse change (``x.unsqueeze(-1)`` into ``LSTM(1, H)`` gives
     ``x: [batch, time]``; ``x.transpose(1, 2)`` into ``Conv1d`` gives ``[batch, time, C]``).
     """
+    from seqgate.export.torch.subclassed import is_base_forward, module_call
+
     carry: dict[Any, Any] = {ph: lambda d: d}  # carried node → consumer dims ↦ placeholder dims
     for node in gm.graph.nodes:
         used = [a for a in _flat(node.args) + _flat(list(node.kwargs.values())) if a in carry]
@@ -198,10 +200,11 @@ def _guess(gm: Any, ph: Any) -> _Guess | None:
             return packed
         if packed:
             continue
-        if node.op == "call_module":
-            m = gm.get_submodule(node.target)
+        if node.op == "call_module" or is_base_forward(node):
+            m, margs, mkwargs = (gm.get_submodule(node.target), node.args, node.kwargs) \
+                if node.op == "call_module" else module_call(gm, node)
             cls = type(m).__name__
-            hit = _module_guess(m, node, carry)
+            hit = _module_guess(m, margs, mkwargs, carry)
             if hit is not None:
                 back = carry[used[0]](hit.dims)
                 if back is None:
@@ -280,17 +283,18 @@ def _inverse_layout(node: Any) -> Any:
     return None
 
 
-def _module_guess(m: Any, node: Any, carry: dict[Any, Any]) -> _Guess | None:
+def _module_guess(m: Any, args: tuple[Any, ...], kwargs: dict[str, Any],
+                  carry: dict[Any, Any]) -> _Guess | None:
     import torch.nn as nn
 
-    first = node.args[0] if node.args else node.kwargs.get("input")
+    first = args[0] if args else kwargs.get("input")
     if isinstance(m, nn.RNNBase):
         d = 2 if m.bidirectional else 1
         if _carried(first, carry):
             f = int(m.input_size)
             bf = carry.get(("packed", first), m.batch_first)  # a packed input has the packing's layout
             return _Guess(("batch", "time", f) if bf else ("time", "batch", f))
-        hx = node.args[1] if len(node.args) > 1 else node.kwargs.get("hx")
+        hx = args[1] if len(args) > 1 else kwargs.get("hx")
         # forward(x, hidden): hidden = (h0, c0)
         pair = 2 if isinstance(m, nn.LSTM) and _carried(hx, carry) else 0
         return _Guess((int(m.num_layers) * d, "batch", int(m.hidden_size)), parts=pair)

@@ -43,12 +43,17 @@ def has_cells(module: Any) -> bool:
 
 
 def user_cell_candidates(module: Any) -> list[Any]:
-    """Submodules written by the user whose ``forward`` takes an input and a state (≥ 2 parameters)."""
+    """Submodules written by the user whose ``forward`` takes an input and a state (≥ 2 parameters).
+
+    A subclass of nn.LSTM/GRU/RNN runs whole sequences, not one step: it is traced through
+    (``subclassed``), never a cell candidate."""
     import inspect
+
+    from torch import nn
 
     out = []
     for name, m in module.named_modules():
-        if not name or type(m).__module__.startswith("torch."):
+        if not name or type(m).__module__.startswith("torch.") or isinstance(m, nn.RNNBase):
             continue
         params = [p for p in inspect.signature(m.forward).parameters.values()
                   if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD)]
@@ -60,7 +65,7 @@ def user_cell_candidates(module: Any) -> list[Any]:
 def _proxy_class() -> type:
     """A proxy whose sizes can be read as Python numbers (the sample's)."""
     import torch.fx
-    from torch.fx.proxy import TraceError
+    from torch.fx.proxy import Attribute, TraceError
 
     from seqgate.export.torch.branches import record_number
 
@@ -82,6 +87,13 @@ def _proxy_class() -> type:
 
         def __iter__(self) -> Any:
             return iter([self[i] for i in range(len(self.tracer.value_of(self)))])  # type: ignore[attr-defined]
+
+        def __getattr__(self, k: str) -> Any:
+            return ValueAttribute(self, k)  # x.shape: len(x.shape) and `for d in x.shape` work too
+
+    class ValueAttribute(Attribute):
+        __len__ = ValueProxy.__len__
+        __iter__ = ValueProxy.__iter__
 
     return ValueProxy
 
@@ -147,6 +159,7 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
     ``computing`` is set while a sample value is evaluated, so module calls inside that
     evaluation run eagerly instead of being recorded.
     """
+    from seqgate.export.torch.asserts import assertion_outcome
     from seqgate.export.torch.branches import Decisions, decide
 
     proxy_class = _proxy_class()
@@ -160,7 +173,8 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
             self.decisions = Decisions()
 
         def to_bool(self, obj: Any) -> bool:
-            return decide(self, obj, self.decisions)
+            held = assertion_outcome(self.skipped)  # an `assert` is traced past (asserts.py)
+            return decide(self, obj, self.decisions) if held is None else held
 
         def proxy(self, node: Any) -> Any:
             return proxy_class(node, self)
@@ -223,35 +237,33 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     """
     from seqgate.export.torch.branches import compare
     from seqgate.export.torch.inputs import Plan
-    from seqgate.export.torch.loopfold import canonical, cell_loop_class, fold_loops
+    from seqgate.export.torch.loopfold import canonical
     from seqgate.export.torch.samples import sample_args, symbol_values
 
     specs = [_spec(n, d, (declared or {}).get(n)) for n, d in dims.items()]
     plan = Plan(params=params, concrete=concrete, inputs=specs)
     leaves = frozenset(id(m) for m in user_cells)
-    graphs: list[Any] = []
-    decided: list[Any] = []
     sizes_ab = symbol_values(specs)
-    for sizes, seed in zip(sizes_ab, (0, 1), strict=True):
-        args = dict(zip(params, sample_args(plan, sizes, seed), strict=True))
-        for _ in range(2):
-            gm, values, decisions = _trace_once(
-                module, make_value_tracer(base_tracer, args, leaves), concrete, label)
-            fold_loops(gm, values, lambda m, ls=leaves: isinstance(m, cell_classes()) or id(m) in ls, label)
-            left = {id(gm.get_submodule(n.target)) for n in gm.graph.nodes
-                    if n.op == "call_module" and id(gm.get_submodule(n.target)) in leaves
-                    and not isinstance(gm.get_submodule(n.target), cell_loop_class())}
-            if not left:
-                break
-            leaves = leaves - left
-        graphs.append(gm)
-        decided.append(decisions)
+    samples = [dict(zip(params, sample_args(plan, sizes, seed), strict=True))
+               for sizes, seed in zip(sizes_ab, (0, 1), strict=True)]
+    notes: list[dict[str, Any]] = [{}, {}]  # cells called per step but not folded, per sample
+    while True:  # both traces with the same leaves: the set only shrinks, so this ends
+        traced = [_folded_trace(module, base_tracer, concrete, args, leaves, label) for args in samples]
+        for note, t in zip(notes, traced, strict=True):
+            note.update(t[3])
+        settled = traced[0][2] & traced[1][2]
+        if settled == leaves:
+            break
+        leaves = settled
+    graphs = [t[0] for t in traced]
+    decided = [t[1] for t in traced]
     # without a cell loop to fold, a size read as a Python number must be the same at both sizes
     numbers = not user_cells and not has_cells(module)
     compare(decided[0], decided[1], *sizes_ab, dims, numbers, label)
     a, b = canonical(graphs[0]), canonical(graphs[1])
     if a != b:
-        raise UnsupportedModelError(label, [_difference(graphs[0], graphs[1], a, b)])
+        why = _unfolded_cell(type(module).__name__, notes)
+        raise UnsupportedModelError(label, [why or _difference(graphs[0], graphs[1], a, b)])
     return graphs[0]
 
 
@@ -264,17 +276,44 @@ def _spec(name: str, dims: tuple[int | str, ...], declared: Any) -> Any:
     return InputSpec(name, dims, declared.dtype, low=declared.low, high=declared.high)
 
 
+def _folded_trace(module: Any, base_tracer: type, concrete: dict[str, Any], args: dict[str, Any],
+                  leaves: frozenset[int], label: str) -> tuple[Any, Any, frozenset[int], dict[str, Any]]:
+    """Trace with ``leaves`` kept whole, fold cell loops; retrace inlining every user cell that
+    was not part of a folded loop until none is left. Returns the graph, its decisions, the leaves
+    it ended with (a shared block called twice stays an ordinary part of the graph) and, for each
+    cell called more than once but not folded, (calls, class, where its next state comes from)."""
+    from seqgate.export.torch.loopfold import cell_loop_class, fold_loops
+
+    notes: dict[str, tuple[int, str, str]] = {}
+    while True:
+        tracer = make_value_tracer(base_tracer, args, leaves)
+        gm, values, decisions = _trace_once(module, tracer, concrete, label)
+        fold_loops(gm, values, lambda m, ls=leaves: isinstance(m, cell_classes()) or id(m) in ls, label)
+        left = {id(gm.get_submodule(n.target)) for n in gm.graph.nodes
+                if n.op == "call_module" and id(gm.get_submodule(n.target)) in leaves
+                and not isinstance(gm.get_submodule(n.target), cell_loop_class())}
+        if not left:
+            return gm, decisions, leaves, notes
+        for target, calls in _calls_by_target(gm).items():
+            via = _unfolded_note(gm, calls) if len(calls) > 1 and id(gm.get_submodule(target)) in left else None
+            if via is not None:
+                notes[target] = (len(calls), type(gm.get_submodule(target)).__name__, via)
+        leaves = leaves - left
+
+
 def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
                 label: str) -> tuple[Any, dict[Any, Any], Any]:
     import torch.fx
 
+    from seqgate.export.torch.asserts import SKIPPED
     from seqgate.export.torch.branches import BranchError, DataDependent
+    from seqgate.export.torch.subclassed import base_calls_traced
     from seqgate.export.torch.untraceable import SampleRunFailed, run_failure, untraceable
 
     tracer = tracer_cls()
     tracer.record_stack_traces = True
     try:
-        with _factories_recorded(tracer):
+        with _factories_recorded(tracer), base_calls_traced(module):
             graph = tracer.trace(module, concrete_args=dict(concrete) or None)
     except DataDependent as e:
         raise BranchError(label, [e.unsupported]) from None
@@ -284,7 +323,9 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
         if run_failure(e):
             raise SampleRunFailed(label, [untraceable(module, e)], e) from None
         raise UnsupportedModelError(label, [untraceable(module, e)]) from None
-    return torch.fx.GraphModule(tracer.root, graph, type(module).__name__), tracer.values, tracer.decisions
+    gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
+    gm.meta[SKIPPED] = list(tracer.skipped.lines)
+    return gm, tracer.values, tracer.decisions
 
 
 @contextmanager
@@ -330,4 +371,62 @@ def _difference(ga: Any, gb: Any, a: list[Any], b: list[Any]) -> Unsupported:
     return Unsupported(f"{type(ga).__name__}.forward", what, hint)
 
 
+def _calls_by_target(gm: Any) -> dict[str, list[Any]]:
+    out: dict[str, list[Any]] = {}
+    for n in gm.graph.nodes:
+        if n.op == "call_module":
+            out.setdefault(str(n.target), []).append(n)
+    return out
 
+
+def _from_call(n: Any, call: Any) -> bool:
+    """Is ``n`` the call's output or an item of it (``out[0]``, ``out[1][0]``)?"""
+    import operator
+
+    while n is not call:
+        if not (hasattr(n, "op") and n.op == "call_function" and n.target is operator.getitem):
+            return False
+        n = n.args[0]
+    return True
+
+
+def _describe(n: Any, gm: Any) -> str:
+    """``target (Class) at file:line`` of the op that made ``n`` (items taken out of it skipped)."""
+    import operator
+
+    from seqgate.export.torch.values import source_line
+
+    while n.op == "call_function" and n.target is operator.getitem and hasattr(n.args[0], "op"):
+        n = n.args[0]
+
+    what = (f"{n.target} ({type(gm.get_submodule(n.target)).__name__})" if n.op == "call_module"
+            else str(getattr(n.target, "__name__", n.target)))
+    line = source_line(n)
+    return what + (f" at {line}" if line else "")
+
+
+def _unfolded_note(gm: Any, calls: list[Any]) -> str | None:
+    """Why a cell called once per step was not folded: where its next step's state comes from."""
+    import torch.fx
+
+    first, second = calls[0], calls[1]
+    foreign = [a for a in second.args[1:] if isinstance(a, torch.fx.Node) and not _from_call(a, first)]
+    return _describe(foreign[0], gm) if foreign else None
+
+
+def _unfolded_cell(root: str, notes: list[dict[str, tuple[int, str, str]]]) -> Unsupported | None:
+    """A cell called once per time step in both traces (a different number of calls) whose loop
+    was not folded into one op: name it and what its next step's state goes through."""
+    for target, (n_a, cls, via) in notes[0].items():
+        n_b = notes[1].get(target, (n_a, "", ""))[0]
+        if n_b == n_a:
+            continue
+        what = (f"{target} ({cls}) runs once per time step ({n_a} and {n_b} calls at the two sample "
+                f"lengths), but the state given to its next step is not its own output: it comes from "
+                f"{via}, so the loop is not `state = cell(x[:, t], state)` and cannot be one op over a "
+                f"dynamic time axis")
+        hint = ("give the cell its own outputs back as its next state: move what is applied to the state "
+                "between steps (a residual, a normalisation, stacking the layers' states) inside the cell's "
+                "forward (seqgate then exports the loop as one Scan), or fix the time size with --input")
+        return Unsupported(f"{root}.forward", what, hint)
+    return None

@@ -3,7 +3,8 @@
 Each mapping is ``fn(builder, call) -> raw result`` (ONNX value names in the structure the
 module returns; ``None`` for parts nobody reads). Equations:
 
-- RNN/GRU/LSTM: one native ONNX node per stacked layer k (layout 0, time-major):
+- RNN/GRU/LSTM: one native ONNX node per stacked layer k (layout 0, time-major; an LSTM with
+  ``proj_size > 0`` is one Scan per layer and direction instead, ``projected``):
   ``X_0 = x`` (transposed to ``[T, N, I]`` when ``batch_first``), ``Y_k [T, D, N, H]``,
   ``X_{k+1} = reshape(transpose(Y_k, (0, 2, 1, 3)), [T, N, D·H])``; the output is ``X_L``
   (transposed back when ``batch_first``); ``h_n = concat_k(Y_h,k)`` along axis 0, i.e.
@@ -36,8 +37,10 @@ from seqgate.export.core.builder import GraphBuilder
 from seqgate.export.core.recurrent import CellActivation, Packed, stack_directions, torch_weights
 from seqgate.export.core.rnn_nodes import ProbeSlot, RecurrentCall, emit_recurrent, register_probe_slots
 from seqgate.export.torch.functions import activation
+from seqgate.export.torch.projected import projected_lstm
 from seqgate.export.torch.shapes import flatten
-from seqgate.export.torch.values import TV, TorchCall, bind, want_tensor
+from seqgate.export.torch.subclassed import is_base_forward, recurrent_base, recurrent_base_forward
+from seqgate.export.torch.values import TV, Table, TorchCall, bind, want_tensor
 
 F32 = np.float32
 _KIND = {nn.LSTM: "lstm", nn.GRU: "gru", nn.RNN: "rnn"}
@@ -88,9 +91,6 @@ def _states(m: nn.RNNBase, kind: str, hx: Any) -> tuple[TV | None, TV | None]:
 
 
 def _check_rnn(m: nn.RNNBase, x: TV, states: tuple[TV | None, TV | None]) -> None:
-    if getattr(m, "proj_size", 0):
-        raise Refusal(f"proj_size={m.proj_size}",
-                      "an LSTM with a projection is not one ONNX LSTM op; use proj_size=0")
     if x.rank != 3:
         raise Refusal(f"input of rank {x.rank}",
                       "pass a batched 3-D input ([batch, time, features] or [time, batch, features])")
@@ -99,10 +99,14 @@ def _check_rnn(m: nn.RNNBase, x: TV, states: tuple[TV | None, TV | None]) -> Non
             raise Refusal(f"initial state of rank {s.rank}", "pass batched states [L·D, batch, H]")
 
 
-def _recurrent(b: GraphBuilder, call: TorchCall) -> Any:
+def recurrent_module(b: GraphBuilder, call: TorchCall) -> Any:
+    """An RNN/GRU/LSTM call (module docstring); for a subclass with its own ``forward``, the call
+    of the base class's ``forward`` (``subclassed``), whose arguments bind to the base's."""
     m = call.module
-    kind = _KIND[next(c for c in type(m).__mro__ if c in _KIND)]
-    a = _args(call)
+    base = next(c for c in type(m).__mro__ if c in _KIND)
+    kind = _KIND[base]
+    a = bind(base.forward, (m, *call.args), call.kwargs, f"{type(m).__name__}.forward")
+    a.pop("self", None)
     from seqgate.export.torch.packing import PackedV
 
     packed = a["input"] if isinstance(a["input"], PackedV) else None
@@ -119,15 +123,19 @@ def _recurrent(b: GraphBuilder, call: TorchCall) -> Any:
     hs: list[str] = []
     cs: list[str] = []
     prefix = call.name if call.call_index == 0 else f"{call.name}/call{call.call_index}"
+    if getattr(m, "proj_size", 0):
+        if packed is not None:
+            raise Refusal(f"proj_size={m.proj_size} on a packed sequence",
+                          "pass the padded tensor (a projected LSTM is exported as a Scan, without lengths)")
+        y, h, c = projected_lstm(b, m, inp, h0, c0, prefix, _source(call, base))
+        return ((b.transpose(y, [1, 0, 2]) if m.batch_first else y) if need_y else None, (h, c))
     for k in range(n_layers):
         last = k == n_layers - 1
         rc = RecurrentCall(
             kind=kind, hidden=hidden, direction="bidirectional" if d == 2 else "forward",
             packed=_pack_layer(m, kind, k), activations=_slots(m, kind), layer=call.name,
             stack_index=k, probe_prefix=f"{prefix}/l{k}",
-            source={"framework": "torch", "module": call.name, "module_type": _TYPE[kind],
-                    "layer_index": k, "num_layers": n_layers, "bidirectional": d == 2,
-                    "batch_first": bool(m.batch_first), "call_index": call.call_index},
+            source={**_source(call, base), "layer_index": k},
         )
         ih = _layer_slice(b, h0, k, d, n_layers)
         ic = _layer_slice(b, c0, k, d, n_layers)
@@ -147,6 +155,15 @@ def _recurrent(b: GraphBuilder, call: TorchCall) -> Any:
     if kind != "lstm":
         return (y, h)
     return (y, (h, _concat(b, cs) if need_c else None))
+
+
+def _source(call: TorchCall, base: type) -> dict[str, Any]:
+    """What the probes of a recurrent call record about their module (the runner reads it)."""
+    m = call.module
+    return {"framework": "torch", "module": call.name, "module_type": _TYPE[_KIND[base]],
+            "num_layers": int(m.num_layers), "bidirectional": bool(m.bidirectional),
+            "batch_first": bool(m.batch_first), "call_index": call.call_index,
+            **({"base_forward": True} if type(m).forward is not base.forward else {})}
 
 
 def _final_probes(b: GraphBuilder, rc: RecurrentCall, out: Any, d: int) -> None:
@@ -171,6 +188,28 @@ def _layer_slice(b: GraphBuilder, s: TV | None, k: int, d: int, n_layers: int) -
 
 def _concat(b: GraphBuilder, parts: list[str]) -> str:
     return parts[0] if len(parts) == 1 else b.op("Concat", parts, axis=0)
+
+
+def base_forward_call(b: GraphBuilder, call: TorchCall) -> Any:
+    """``recurrent_base_forward(module, ...)`` (``subclassed``): the base layer's call, counted per module."""
+    m = call.args[0] if call.args else None
+    if recurrent_base(m) is None:
+        raise Refusal("recurrent_base_forward of something that is not a recurrent module")
+    target = str(call.node.args[0].target)
+    index = 0
+    for n in call.node.graph.nodes:  # earlier base calls of the same module
+        if n is call.node:
+            break
+        if is_base_forward(n) and str(n.args[0].target) == target:
+            index += 1
+    inner = TorchCall(call.node, target, tuple(call.args[1:]), call.kwargs, call.meta, m, call.used,
+                      index, type(m).__name__, call.capture)
+    with b.layer(target, type(m).__name__):  # named after the module, as a leaf call would be
+        return recurrent_module(b, inner)
+
+
+BASE_CALLS = Table()  # merged in registry.py
+BASE_CALLS.functions[recurrent_base_forward] = base_forward_call
 
 
 # ----- other modules --------------------------------------------------------------------------
@@ -304,7 +343,7 @@ def _act(kind: str, params: Any = None) -> Any:
 _SELU = {"alpha": 1.6732632423543772848170429916717, "gamma": 1.0507009873554804934193349852946}
 
 MODULES: dict[type, Any] = {
-    nn.LSTM: _recurrent, nn.GRU: _recurrent, nn.RNN: _recurrent,
+    nn.LSTM: recurrent_module, nn.GRU: recurrent_module, nn.RNN: recurrent_module,
     nn.Linear: _linear, nn.Embedding: _embedding, nn.Conv1d: _conv1d,
     nn.LayerNorm: _layer_norm, nn.BatchNorm1d: _batch_norm,
     nn.Dropout: _identity, nn.Dropout1d: _identity, nn.Dropout2d: _identity, nn.Dropout3d: _identity,
