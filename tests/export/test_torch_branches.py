@@ -239,3 +239,24 @@ class RankFromShape(nn.Module):
 
 def test_len_of_a_shape_in_the_value_carrying_trace(rng: np.random.Generator) -> None:
     _check(randomize(RankFromShape()), None, [(1, 2, 3), (4, 9, 3)], rng)
+
+
+class EpsFromDtype(nn.Module):
+    """``torch.finfo(x.dtype).eps`` (a scale floor, as probabilistic forecasters write it) beside a
+    size branch, so the value-carrying trace runs; the dtype is the declared input's."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.lstm = nn.LSTM(3, 4, batch_first=True)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        if x.dim() == 2:
+            x = x.unsqueeze(-1)
+        y = self.lstm(x.to(x.dtype))[0]
+        return y.abs() + torch.finfo(y.dtype).eps
+
+
+def test_dtype_read_in_the_value_carrying_trace_is_the_samples(rng: np.random.Generator) -> None:
+    # reference: float32's machine epsilon is 2**-23 (IEEE-754 binary32, 23 fraction bits)
+    assert torch.finfo(torch.float32).eps == 2.0 ** -23
+    _check(randomize(EpsFromDtype()), None, [(1, 2, 3), (4, 9, 3)], rng)

@@ -62,8 +62,14 @@ def user_cell_candidates(module: Any) -> list[Any]:
     return out
 
 
+_FIXED_ATTRS = ("dtype", "device")
+
+
 def _proxy_class() -> type:
-    """A proxy whose sizes can be read as Python numbers (the sample's)."""
+    """A proxy whose sizes can be read as Python numbers (the sample's), and whose dtype and
+    device are the sample's (they follow from the declared input dtypes, so they are the same at
+    every size; ``torch.finfo(x.dtype).eps`` becomes a number)."""
+    import torch
     import torch.fx
     from torch.fx.proxy import Attribute, TraceError
 
@@ -89,6 +95,10 @@ def _proxy_class() -> type:
             return iter([self[i] for i in range(len(self.tracer.value_of(self)))])  # type: ignore[attr-defined]
 
         def __getattr__(self, k: str) -> Any:
+            if k in _FIXED_ATTRS:  # x.dtype, x.device: fixed for the export, read from the sample
+                v = getattr(self.tracer.value_of(self), k, None)  # type: ignore[attr-defined]
+                if isinstance(v, torch.dtype | torch.device):
+                    return v
             return ValueAttribute(self, k)  # x.shape: len(x.shape) and `for d in x.shape` work too
 
     class ValueAttribute(Attribute):
