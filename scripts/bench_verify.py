@@ -94,6 +94,7 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
     from seqgate.runtimes.factory import open_source_runner
     from seqgate.runtimes.onnx import OnnxRunner
     from seqgate.settings import Tolerances
+    from seqgate.settings.defaults import ORACLE
     from seqgate.sources.spec import parse_source
     from seqgate.util.progress import SILENT
     from seqgate.verify.checker import Comparer, output_dims, tensor_infos
@@ -125,6 +126,7 @@ def time_ratio(label: str, source: str, weights: str | None, onnx_path: Path, re
         r.run({"x": x[:BATCH]})
     specs = input_specs(model)
     comparer = Comparer(tensor_infos(model, probes), Tolerances(), set(), specs, output_dims(model))
+    comparer.window_scores = ORACLE  # as verify_model sets it: worst windows only for --oracle
     rec_obj = load_recording(rec, specs)
     best_bare, best_loop, best_cmp = float("inf"), float("inf"), float("inf")
     for _ in range(5):  # interleaved, best of 5: the machine is shared

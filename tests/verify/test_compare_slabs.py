@@ -26,24 +26,26 @@ def _pair(rng: np.random.Generator, shape: tuple[int, ...], bad_windows: tuple[i
     return np.ascontiguousarray(np.swapaxes(onx, 0, 1)).swapaxes(0, 1), src
 
 
-def _stream(onx: np.ndarray, src: np.ndarray, batch: int,
-            first: int = 0) -> tuple[TensorStats, list[np.ndarray]]:
-    st = TensorStats(ATOL, RTOL, time_indexed=True)
+def _stream(onx: np.ndarray, src: np.ndarray, batch: int, first: int = 0, scores: bool = True,
+            atol: float = ATOL, rtol: float = RTOL) -> tuple[TensorStats, list[np.ndarray]]:
+    st = TensorStats(atol, rtol, time_indexed=True, window_scores=scores)
     window_max = []
     for s in range(0, len(src), batch):
         st.update(onx[s:s + batch], src[s:s + batch], first + s)
-        assert st.window_max is not None
-        window_max.append(st.window_max.copy())
+        if scores:
+            assert st.window_max is not None
+            window_max.append(st.window_max.copy())
     return st, window_max
 
 
 @pytest.mark.parametrize("slab", [1, 700, 2000, 1 << 30])  # one window per slab .. the whole batch
 @pytest.mark.parametrize("bad", [(), (13,)])
+@pytest.mark.parametrize("scores", [True, False])
 def test_statistics_equal_numpy_on_the_whole_array(rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch,
-                                                   slab: int, bad: tuple[int, ...]) -> None:
+                                                   slab: int, bad: tuple[int, ...], scores: bool) -> None:
     monkeypatch.setattr(compare, "SLAB_ELEMENTS", slab)
     onx, src = _pair(rng, (45, 30, 1, 20), bad)
-    st, window_max = _stream(onx, src, 16)  # uneven last batch; a slab of 700 is 1 window + a part
+    st, window_max = _stream(onx, src, 16, scores=scores)  # uneven last batch; slab 700 = 1 window + a part
     a, b = onx.astype(np.float64), src.astype(np.float64)
     d = np.abs(a - b)
     m = st.metrics()
@@ -62,8 +64,9 @@ def test_statistics_equal_numpy_on_the_whole_array(rng: np.random.Generator, mon
     assert st.per_step_max_abs() == pytest.approx(d.max(axis=(0, 2, 3)).tolist(), rel=1e-6)
     w = np.unravel_index(np.argmax(d), d.shape)
     assert (m["worst"]["window"], m["worst"]["step"], m["worst"]["index"]) == (w[0], w[1], [w[2], w[3]])
-    ratio = (d / (ATOL + RTOL * np.abs(b))).reshape(45, -1).max(axis=1)
-    assert np.concatenate(window_max) == pytest.approx(ratio, rel=1e-6)
+    if scores:
+        ratio = (d / (ATOL + RTOL * np.abs(b))).reshape(45, -1).max(axis=1)
+        assert np.concatenate(window_max) == pytest.approx(ratio, rel=1e-6)
     assert st.first_bad_step() == (3 if bad else None)
 
 
@@ -94,3 +97,23 @@ def test_shards_merge_to_the_single_pass(rng: np.random.Generator, monkeypatch: 
     assert np.array_equal(merged.hist, whole.hist)
     assert merged.per_step_max_abs() == whole.per_step_max_abs()
     assert mm["mean_abs"] == pytest.approx(mw["mean_abs"], rel=1e-12)
+
+
+@pytest.mark.parametrize("atol, rtol, scale", [
+    (1e-5, 1e-5, 2e-6),  # |Δ|/atol proves every batch inside: the quotient is skipped
+    (1e-9, 1e-3, 3e-4),  # |Δ|/atol passes the limit but |Δ|/tol does not: the quotient decides
+    (1e-9, 1e-3, 3e-3),  # outside tolerance: the float64 path
+])
+def test_without_window_scores_the_statistics_are_the_same(rng: np.random.Generator, atol: float, rtol: float,
+                                                           scale: float) -> None:
+    src = rng.normal(size=(30, 8, 1, 6)).astype(np.float32)
+    onx = (src + rng.normal(scale=scale, size=src.shape) * np.abs(src)).astype(np.float32)
+    with_scores, _ = _stream(onx, src, 7, atol=atol, rtol=rtol)
+    without, _ = _stream(onx, src, 7, scores=False, atol=atol, rtol=rtol)
+    assert without.metrics() == with_scores.metrics()
+    assert np.array_equal(without.hist, with_scores.hist) and without.sum_abs == with_scores.sum_abs
+    if without.outside == 0:  # every batch on the float32 path: no window scores were made
+        assert without.window_max is None
+    # numpy.isclose's documented rule decides the count, whichever path a batch took
+    a, b = onx.astype(np.float64), src.astype(np.float64)
+    assert without.outside == int((~np.isclose(a, b, rtol=rtol, atol=atol)).sum())

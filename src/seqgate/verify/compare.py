@@ -109,6 +109,7 @@ class TensorStats:
     flip_windows: list[int] = field(default_factory=list)
     hist: np.ndarray[Any, Any] = field(default_factory=lambda: np.zeros(HIST_BINS, np.int64))
     window_max: np.ndarray[Any, Any] | None = None  # per window of the last batch (ratio to tol)
+    window_scores: bool = True  # keep window_max (verify's worst windows, read by the oracle only)
     _scratch: dict[str, np.ndarray[Any, Any]] = field(default_factory=dict, repr=False)
 
     def release(self) -> None:
@@ -149,7 +150,9 @@ class TensorStats:
         maxima — reuse data still in the core's cache, and ``|source|`` is taken once for both
         quotients. Every read-out is the same float32 operation as on the whole batch, and maxima
         and counts do not depend on the order, so the results do not depend on the slab size
-        (the sums are taken over the whole ``|Δ|`` afterwards).
+        (the sums are taken over the whole ``|Δ|`` afterwards). Without ``window_scores`` a slab's
+        ``|Δ|/tol`` is computed only when the bound ``max |Δ| / atol`` does not already prove it
+        below the screening limit (same decision, same statistics; ``window_max`` is None).
         """
         scan = self._scan_slabs(a, b)
         if scan is None:
@@ -187,30 +190,36 @@ class TensorStats:
             idx = self._scratch["slab_idx"] = np.empty(ratio.size, np.intp)
         rtol, atol, floor = np.float32(self.rtol), np.float32(self.atol), np.float32(REL_FLOOR)
         limit = 1.0 - FAST_MARGIN
-        wmax, rel = np.empty(n, np.float32), 0.0
+        wmax, rel = (np.empty(n, np.float32) if self.window_scores else None), 0.0
         counts: list[np.ndarray[Any, Any]] = []
         timed = self.time_indexed and a.ndim >= 2
         step_acc = None
         with np.errstate(invalid="ignore", over="ignore"):
             for s in range(0, n, k):
                 e = min(n, s + k)
-                ds, rs, bs, wm = d[s:e], ratio[:e - s], absb[:e - s], wmax[s:e]
+                ds, rs, bs = d[s:e], ratio[:e - s], absb[:e - s]
                 np.subtract(a[s:e], b[s:e], out=ds)
                 np.abs(ds, out=ds)
                 np.abs(b[s:e], out=bs)
-                np.multiply(bs, rtol, out=rs)
-                rs += atol
-                np.divide(ds, rs, out=rs)
-                np.max(rs.reshape(e - s, -1), axis=1, out=wm)
-                if not wm.max() < limit:  # also catches NaN
-                    return None
+                smax = ds.max(axis=0) if timed else None
+                # |Δ|/tol ≤ |Δ|/atol (tol ≥ atol after float32 rounding too: IEEE-754 rounding is
+                # monotonic); the 2⁻²⁰ covers the quotient's rounding. Below the limit, the exact
+                # screen would pass as well, so only window scores need the quotient then.
+                top = float(ds.max() if smax is None else smax.max())
+                if wmax is not None or not top / float(atol) * (1.0 + 2.0**-20) < limit:
+                    wm = wmax[s:e] if wmax is not None else np.empty(e - s, np.float32)
+                    np.multiply(bs, rtol, out=rs)
+                    rs += atol
+                    np.divide(ds, rs, out=rs)
+                    np.max(rs.reshape(e - s, -1), axis=1, out=wm)
+                    if not wm.max() < limit:  # also catches NaN
+                        return None
                 np.maximum(bs, floor, out=bs)
                 rel = max(rel, float(np.divide(ds, bs, out=bs).max()))
                 ix = idx[:ds.size]
                 np.right_shift(ds.reshape(-1).view(np.int32), HIST_SHIFT, out=ix)  # bincount's index type
                 counts.append(np.bincount(ix))
-                if timed:
-                    smax = ds.max(axis=0)
+                if smax is not None:
                     step_acc = smax if step_acc is None else np.maximum(step_acc, smax, out=step_acc)
         return d, wmax, rel, counts, step_acc
 
