@@ -111,9 +111,12 @@ def with_probe_outputs(model: onnx.ModelProto, probes: list[Probe]) -> onnx.Mode
 
 
 def to_canonical(probe: Probe, value: np.ndarray[Any, Any]) -> np.ndarray[Any, Any]:
-    """Select the probe's direction and permute to ``[N, T, 1, H]`` or ``[N, 1, H]``."""
+    """Select the probe's direction and permute to ``[N, T, 1, H]`` or ``[N, 1, H]`` (a view of
+    ``value``: no copy)."""
     axes = probe.axes
-    d = axes.index("D")
-    sel = np.take(value, [probe.direction_index], axis=d)
+    d, i = axes.index("D"), probe.direction_index
+    if not 0 <= i < value.shape[d]:  # a slice would silently give an empty array
+        raise IndexError(f"probe {probe.name}: direction {i} of a value with {value.shape[d]} directions")
+    sel = value[(slice(None),) * d + (slice(i, i + 1),)]
     target = "NTDH" if "T" in axes else "NDH"
     return np.transpose(sel, [axes.index(c) for c in target])

@@ -73,6 +73,7 @@ class Comparer:
         self.where = ("the ONNX file", "the source")  # (model label, source text) for messages
         self.observe: Any = None  # called (recording, first window, onnx outputs, source outputs) per batch
         self.side_by_side = True  # both runtimes at once (seqgate.verify.pipeline); False on one core
+        self.window_scores = True  # keep the worst windows (only the oracle reads them)
 
     def _find_batch_axis(self, name: str, shape: tuple[int, ...], n: int) -> int:
         """Outputs may hold the windows on another axis (PyTorch ``h_n`` is ``[L·D, N, H]``)."""
@@ -112,7 +113,7 @@ class Comparer:
             shape = self.to_batch_major(t.name, first[t.name]).shape
             timed = t.kind == "hidden_sequence" or (
                 t.kind == "output" and self._timed_output(t.name, shape, steps))
-            out[t.name] = TensorStats(a, r, timed, t.name in self.class_names)
+            out[t.name] = TensorStats(a, r, timed, t.name in self.class_names, window_scores=self.window_scores)
         return out
 
     def run_set(self, rec: Recording, onnx_runner: Any, src_runner: Any, batch: int,
@@ -146,7 +147,8 @@ class Comparer:
                 # its batch, [k·N, H]) has no per-window score; its statistics still count.
                 if st.window_max is not None and st.window_max.shape == score.shape:
                     score = np.maximum(score, st.window_max)
-            _keep_worst(worst, score, start, model_feeds)
+            if self.window_scores:
+                _keep_worst(worst, score, start, model_feeds)
             progress.advance(len(score), rec.label)
         for st in stats.values():
             st.release()

@@ -49,6 +49,7 @@ HIST_BINS = 1 << (31 - HIST_SHIFT)  # every non-negative float32 bit pattern, In
 HIST_REL_WIDTH = 1 / 64
 FAST_MARGIN = 1e-4  # float32 screening: a batch whose every |Δ|/tol is below 1 − this is inside
 MAX_FLIPS_LISTED = 50
+SLAB_ELEMENTS = 1 << 16  # a slab's work arrays (~256 KB each) stay in a core's cache between passes
 
 
 def within_tolerance(onnx_value: np.ndarray[Any, Any], source: np.ndarray[Any, Any],
@@ -108,6 +109,7 @@ class TensorStats:
     flip_windows: list[int] = field(default_factory=list)
     hist: np.ndarray[Any, Any] = field(default_factory=lambda: np.zeros(HIST_BINS, np.int64))
     window_max: np.ndarray[Any, Any] | None = None  # per window of the last batch (ratio to tol)
+    window_scores: bool = True  # keep window_max (verify's worst windows, read by the oracle only)
     _scratch: dict[str, np.ndarray[Any, Any]] = field(default_factory=dict, repr=False)
 
     def release(self) -> None:
@@ -141,18 +143,22 @@ class TensorStats:
             self._update_top1(a, b, first_window)
 
     def _fast(self, a: np.ndarray[Any, Any], b: np.ndarray[Any, Any], first_window: int) -> bool:
-        n = a.shape[0]
-        with np.errstate(invalid="ignore", over="ignore"):
-            d = np.subtract(a, b, out=self._buf("d", a.shape))
-            np.abs(d, out=d)
-            absb = np.abs(b, out=self._buf("absb", a.shape))
-            tol = np.multiply(absb, np.float32(self.rtol), out=self._buf("tol", a.shape))
-            tol += np.float32(self.atol)
-            ratio = np.divide(d, tol, out=tol)
-            wmax = ratio.reshape(n, -1).max(axis=1)
-        top = float(wmax.max())
-        if not math.isfinite(top) or top >= 1.0 - FAST_MARGIN:
+        """The float32 path of :meth:`update`; False (nothing recorded) when the batch needs float64.
+
+        The arrays are walked in slabs of whole windows (about ``SLAB_ELEMENTS`` each) so that a
+        slab's passes — ``|Δ|``, ``|Δ|/tol``, ``|Δ|/max(|source|, REL_FLOOR)``, its bins and per-step
+        maxima — reuse data still in the core's cache, and ``|source|`` is taken once for both
+        quotients. Every read-out is the same float32 operation as on the whole batch, and maxima
+        and counts do not depend on the order, so the results do not depend on the slab size
+        (the sums are taken over the whole ``|Δ|`` afterwards). Without ``window_scores`` a slab's
+        ``|Δ|/tol`` is computed only when the bound ``max |Δ| / atol`` does not already prove it
+        below the screening limit (same decision, same statistics; ``window_max`` is None).
+        """
+        scan = self._scan_slabs(a, b)
+        if scan is None:
             return False
+        d, wmax, rel, counts, step_acc = scan
+        n = d.shape[0]
         self.window_max = wmax
         self.windows += n
         self.count += d.size
@@ -160,23 +166,72 @@ class TensorStats:
         # float32 pairwise sum / BLAS dot: ~1e-6 relative, enough for a mean and an RMS
         self.sum_abs += float(flat.sum())
         self.sum_sq += float(np.dot(flat, flat))
-        self._update_worst_fast(d, a, b, first_window)
-        np.maximum(absb, np.float32(REL_FLOOR), out=absb)
-        self.max_rel = max(self.max_rel, float(np.divide(d, absb, out=absb).max()))
-        self._update_hist(d)
-        if self.time_indexed and d.ndim >= 2:
-            self._update_steps(d, None)
+        self.max_rel = max(self.max_rel, rel)
+        for c in counts:
+            self.hist[:c.size] += c
+        smax = None
+        if step_acc is not None:
+            smax = step_acc.reshape(step_acc.shape[0], -1).max(axis=1).astype(np.float64)
+        top = d.max() if smax is None else np.float32(smax.max())  # max is exact: same value either way
+        self._update_worst_fast(d, a, b, first_window, top)
+        if smax is not None:
+            self._add_steps(smax, np.zeros(smax.size, np.int64))
         return True
 
+    def _scan_slabs(self, a: np.ndarray[Any, Any], b: np.ndarray[Any, Any]) -> tuple[Any, ...] | None:
+        """``(|Δ|, per-window max |Δ|/tol, max relative error, bin counts per slab, per-step max |Δ|
+        or None)``, or None as soon as a slab holds a ratio ≥ ``1 − FAST_MARGIN`` or a non-finite one."""
+        n = a.shape[0]
+        k = max(1, min(n, SLAB_ELEMENTS // max(1, a.size // n)))  # windows per slab
+        d = self._buf("d", a.shape)
+        ratio, absb = self._buf("tol", (k, *a.shape[1:])), self._buf("absb", (k, *a.shape[1:]))
+        idx = self._scratch.get("slab_idx")
+        if idx is None or idx.size != ratio.size:
+            idx = self._scratch["slab_idx"] = np.empty(ratio.size, np.intp)
+        rtol, atol, floor = np.float32(self.rtol), np.float32(self.atol), np.float32(REL_FLOOR)
+        limit = 1.0 - FAST_MARGIN
+        wmax, rel = (np.empty(n, np.float32) if self.window_scores else None), 0.0
+        counts: list[np.ndarray[Any, Any]] = []
+        timed = self.time_indexed and a.ndim >= 2
+        step_acc = None
+        with np.errstate(invalid="ignore", over="ignore"):
+            for s in range(0, n, k):
+                e = min(n, s + k)
+                ds, rs, bs = d[s:e], ratio[:e - s], absb[:e - s]
+                np.subtract(a[s:e], b[s:e], out=ds)
+                np.abs(ds, out=ds)
+                np.abs(b[s:e], out=bs)
+                smax = ds.max(axis=0) if timed else None
+                # |Δ|/tol ≤ |Δ|/atol (tol ≥ atol after float32 rounding too: IEEE-754 rounding is
+                # monotonic); the 2⁻²⁰ covers the quotient's rounding. Below the limit, the exact
+                # screen would pass as well, so only window scores need the quotient then.
+                top = float(ds.max() if smax is None else smax.max())
+                if wmax is not None or not top / float(atol) * (1.0 + 2.0**-20) < limit:
+                    wm = wmax[s:e] if wmax is not None else np.empty(e - s, np.float32)
+                    np.multiply(bs, rtol, out=rs)
+                    rs += atol
+                    np.divide(ds, rs, out=rs)
+                    np.max(rs.reshape(e - s, -1), axis=1, out=wm)
+                    if not wm.max() < limit:  # also catches NaN
+                        return None
+                np.maximum(bs, floor, out=bs)
+                rel = max(rel, float(np.divide(ds, bs, out=bs).max()))
+                ix = idx[:ds.size]
+                np.right_shift(ds.reshape(-1).view(np.int32), HIST_SHIFT, out=ix)  # bincount's index type
+                counts.append(np.bincount(ix))
+                if smax is not None:
+                    step_acc = smax if step_acc is None else np.maximum(step_acc, smax, out=step_acc)
+        return d, wmax, rel, counts, step_acc
+
     def _update_worst_fast(self, d: np.ndarray[Any, Any], a: np.ndarray[Any, Any], b: np.ndarray[Any, Any],
-                           first_window: int) -> None:
-        """The largest |Δ| of a float32 batch, recomputed in float64 (same result as
-        :meth:`_update_worst` with ``exact=True``, searching only the windows that can hold it)."""
-        n = d.shape[0]
-        per_window = d.reshape(n, -1).max(axis=1)
-        top = per_window.max()
+                           first_window: int, top: Any) -> None:
+        """The largest |Δ| of a float32 batch (``top`` = its float32 maximum), recomputed in float64
+        (same result as :meth:`_update_worst` with ``exact=True``, searching only the windows that
+        can hold it)."""
         if self.worst is not None and float(top) * (1.0 + 2.0**-20) <= self.max_abs:
             return  # nothing in this batch can beat the maximum so far (float32 rounding margin)
+        n = d.shape[0]
+        per_window = d.reshape(n, -1).max(axis=1)
         rows = np.flatnonzero(per_window >= top * np.float32(1.0 - 2.0**-20))
         self._update_worst(d[rows], a[rows], b[rows], first_window, exact=True, rows=rows)
 
@@ -245,6 +300,10 @@ class TensorStats:
             sout = np.zeros(t, np.int64)
         else:
             sout = np.count_nonzero(bad.reshape(n, t, -1), axis=(0, 2)).astype(np.int64)
+        self._add_steps(smax, sout)
+
+    def _add_steps(self, smax: np.ndarray[Any, Any], sout: np.ndarray[Any, Any]) -> None:
+        """Fold one batch's per-step max |Δ| and count outside into the curves."""
         if self.step_max is None or self.step_outside is None:
             self.step_max, self.step_outside = smax, sout
             return

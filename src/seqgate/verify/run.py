@@ -243,6 +243,7 @@ def verify_model(
     onnx_runner, src_runner = _runners(model, src, probes, states, recs, specs, str(path))
     comparer = Comparer(infos, tol, _classes(model, task), specs, output_dims(model))
     comparer.where, comparer.observe = (str(path), src.text), observe
+    comparer.window_scores = oracle  # the worst windows are read by the oracle only
     results, ray_record = _compare_all(comparer, recs, onnx_runner, src_runner, path, src, opts, tol,
                                        progress or SILENT)
     oracle_out = _oracle(model, probes, infos, results, onnx_runner, src_runner, tol) if oracle else None
