@@ -12,11 +12,10 @@ the gate report dict (``schema: "seqgate.gate/1"``).
 
 from __future__ import annotations
 
-import base64
 import html
-import io
 from typing import Any
 
+from seqgate.report.charts import png_data_uri
 from seqgate.report.long_stream import long_stream_html
 from seqgate.report.mask_chart import mask_section
 from seqgate.report.profile_report import padded_label
@@ -55,15 +54,6 @@ def _mark(ok: bool | None) -> str:
     return '<span class="ok">pass</span>' if ok else '<span class="bad">fail</span>'
 
 
-def _png(fig: Any) -> str:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=110, bbox_inches="tight")
-    import matplotlib.pyplot as plt
-
-    plt.close(fig)
-    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
-
-
 def _pyplot() -> Any:
     import matplotlib
 
@@ -92,7 +82,7 @@ def drift_chart(tensors: list[dict[str, Any]], title: str) -> str | None:
     ax.set_title(title)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7, ncol=1 + len(curves) // 14, loc="upper left", bbox_to_anchor=(1.01, 1.0))
-    return _png(fig)
+    return png_data_uri(fig)
 
 
 def latency_chart(profile: dict[str, Any], percentile: int) -> str | None:
@@ -133,7 +123,7 @@ def latency_chart(profile: dict[str, Any], percentile: int) -> str | None:
     ax.set_ylabel(f"p{percentile} latency (ms)")
     ax.grid(alpha=0.3)
     ax.legend(fontsize=8)
-    return _png(fig)
+    return png_data_uri(fig)
 
 
 def _table(headers: list[str], rows: list[list[str]], numeric: set[int] | None = None) -> str:

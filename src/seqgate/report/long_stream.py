@@ -8,10 +8,10 @@ and the call boundaries of the first set as faint vertical lines.
 
 from __future__ import annotations
 
-import base64
 import html
-import io
 from typing import Any
+
+from seqgate.report.charts import finish_error_axes, new_axes, png_data_uri
 
 
 def long_stream_check_entry(section: dict[str, Any]) -> dict[str, Any]:
@@ -41,12 +41,7 @@ def long_stream_chart(section: dict[str, Any]) -> str | None:
     sets = [s for s in section.get("sets", []) if s.get("outputs_max_abs")]
     if not sets:
         return None
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    fig, ax = plt.subplots(figsize=(8.5, 3.4))
+    fig, ax = new_axes()
     for s in sets:
         xs = [i * s["step_bin"] for i in range(len(s["outputs_max_abs"]))]
         line = ax.plot(xs, _points(s["outputs_max_abs"]), lw=1.2, marker=".", ms=2,
@@ -55,18 +50,9 @@ def long_stream_chart(section: dict[str, Any]) -> str | None:
                 label=f"{s['label']} states")
     for k in range(1, sets[0]["calls"]):
         ax.axvline(k * sets[0]["chunk"], color="#999999", lw=0.4, alpha=0.4)
-    if section.get("atol"):
-        ax.axhline(float(section["atol"]), color="#8a1610", ls=":", lw=1, label=f"atol {section['atol']:g}")
-    ax.set_yscale("log")
-    ax.set_xlabel("step of the long stream")
-    ax.set_ylabel("max |Δ| vs source")
-    ax.set_title(f"long stream ({section.get('factor')}× the window): error growth per step")
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0))
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=110, bbox_inches="tight")
-    plt.close(fig)
-    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
+    finish_error_axes(ax, section.get("atol"), "step of the long stream", "max |Δ| vs source",
+                      f"long stream ({section.get('factor')}× the window): error growth per step")
+    return png_data_uri(fig)
 
 
 def long_stream_html(section: dict[str, Any] | None) -> str:

@@ -7,10 +7,10 @@ solid; against the source framework, dashed), log scale, with atol as a line.
 
 from __future__ import annotations
 
-import base64
 import html
-import io
 from typing import Any
+
+from seqgate.report.charts import finish_error_axes, new_axes, png_data_uri
 
 
 def streaming_check_entry(section: dict[str, Any]) -> dict[str, Any]:
@@ -34,12 +34,7 @@ def streaming_chart(section: dict[str, Any]) -> str | None:
     runs = [r for r in section.get("runs", []) if r.get("per_chunk_max_abs")]
     if not runs:
         return None
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    fig, ax = plt.subplots(figsize=(8.5, 3.4))
+    fig, ax = new_axes()
     for r in runs:
         xs = [min((k + 1) * r["chunk"], 10**9) for k in range(len(r["per_chunk_max_abs"]))]
         line = ax.plot(xs, [max(float(v), 1e-12) for v in r["per_chunk_max_abs"]], lw=1.2,
@@ -47,18 +42,9 @@ def streaming_chart(section: dict[str, Any]) -> str | None:
         if r.get("per_chunk_source_max_abs"):
             ax.plot(xs, [max(float(v), 1e-12) for v in r["per_chunk_source_max_abs"]], lw=1, ls="--",
                     color=line[0].get_color(), label=f"chunk {r['chunk']} vs source")
-    if section.get("atol"):
-        ax.axhline(float(section["atol"]), color="#8a1610", ls=":", lw=1, label=f"atol {section['atol']:g}")
-    ax.set_yscale("log")
-    ax.set_xlabel("steps streamed (end of call)")
-    ax.set_ylabel("max |Δ| after the call")
-    ax.set_title("streaming: drift along the stream")
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0))
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=110, bbox_inches="tight")
-    plt.close(fig)
-    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
+    finish_error_axes(ax, section.get("atol"), "steps streamed (end of call)", "max |Δ| after the call",
+                      "streaming: drift along the stream")
+    return png_data_uri(fig)
 
 
 def streaming_html(section: dict[str, Any] | None) -> str:
