@@ -172,3 +172,30 @@ def save(model: Any, path: Path) -> Path:
     with quiet_stderr():
         model.save(str(path))
     return path
+
+
+def leaky_tanh_cell_source(class_name: str, package: str) -> str:
+    """Source of a user file defining a custom Keras RNN cell ``h_t = tanh(x_t·K + 0.5·h_{t-1})``
+    registered under ``package`` (a cell no recogniser matches, so it exports as a ``Scan``)."""
+    return f'''
+import keras
+from keras import ops
+
+
+@keras.saving.register_keras_serializable(package="{package}")
+class {class_name}(keras.layers.Layer):
+    def __init__(self, units, **kw):
+        super().__init__(**kw)
+        self.units = units
+        self.state_size = units
+
+    def build(self, input_shape):
+        self.kernel = self.add_weight(shape=(input_shape[-1], self.units), name="kernel")
+
+    def call(self, inputs, states):
+        out = ops.tanh(ops.matmul(inputs, self.kernel) + 0.5 * states[0])
+        return out, [out]
+
+    def get_config(self):
+        return {{**super().get_config(), "units": self.units}}
+'''

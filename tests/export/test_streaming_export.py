@@ -200,28 +200,6 @@ def test_keras_stateful_stack_of_cells_streams_by_default(rng: np.random.Generat
     km.assert_matches([first[names[0]], second], expected, "stateful stack of cells")
 
 
-_SCAN_CELL = '''
-import keras
-from keras import ops
-
-
-@keras.saving.register_keras_serializable(package="seqgate_streaming_test")
-class HalfLeakCell(keras.layers.Layer):
-    def __init__(self, units, **kw):
-        super().__init__(**kw)
-        self.units = units
-        self.state_size = units
-
-    def build(self, input_shape):
-        self.kernel = self.add_weight(shape=(input_shape[-1], self.units), name="kernel")
-
-    def call(self, inputs, states):
-        out = ops.tanh(ops.matmul(inputs, self.kernel) + 0.5 * states[0])
-        return out, [out]
-
-    def get_config(self):
-        return {**super().get_config(), "units": self.units}
-'''
 
 
 def test_keras_stateful_scan_cell_refused_by_default_with_the_way_out(rng: np.random.Generator,
@@ -232,7 +210,7 @@ def test_keras_stateful_scan_cell_refused_by_default_with_the_way_out(rng: np.ra
     from seqgate.sources.keras import load_custom_code
 
     code = tmp_path / "leak_cells.py"
-    code.write_text(_SCAN_CELL, encoding="utf-8")
+    code.write_text(km.leaky_tanh_cell_source("HalfLeakCell", "seqgate_streaming_test"), encoding="utf-8")
     cell = load_custom_code(code).HalfLeakCell(3)
     k = km.keras()
     model = km.functional((None, 2), lambda x: k.layers.RNN(cell, stateful=True, return_sequences=True,

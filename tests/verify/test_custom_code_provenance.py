@@ -26,28 +26,7 @@ from seqgate.onnxfile.probes import read_metadata
 pytestmark = pytest.mark.filterwarnings("ignore:__array__ implementation:DeprecationWarning")
 runner = CliRunner()
 
-CELLS = '''
-import keras
-from keras import ops
-
-
-@keras.saving.register_keras_serializable(package="seqgate_provenance_test")
-class TinyCell(keras.layers.Layer):
-    def __init__(self, units, **kw):
-        super().__init__(**kw)
-        self.units = units
-        self.state_size = units
-
-    def build(self, input_shape):
-        self.kernel = self.add_weight(shape=(input_shape[-1], self.units), name="kernel")
-
-    def call(self, inputs, states):
-        out = ops.tanh(ops.matmul(inputs, self.kernel) + 0.5 * states[0])
-        return out, [out]
-
-    def get_config(self):
-        return {**super().get_config(), "units": self.units}
-'''
+CELLS = km.leaky_tanh_cell_source("TinyCell", "seqgate_provenance_test")
 
 
 def _invoke(*args: str) -> Any:
