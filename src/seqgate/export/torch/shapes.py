@@ -87,7 +87,8 @@ def index_items(idx: Any) -> list[Any]:
     return [idx]
 
 
-def _expand_index(x: TV, idx: Any) -> list[Any]:
+def expand_index(x: TV, idx: Any) -> list[Any]:
+    """The items of ``idx`` with ``...`` expanded to full slices; bool masks refused."""
     items = index_items(idx)
     for it in items:
         if isinstance(it, bool) or (isinstance(it, TV) and it.dtype == "bool"):
@@ -129,7 +130,7 @@ def _advanced(b: GraphBuilder, x: TV, items: list[Any]) -> tuple[int, TV] | None
 
 def index_tensor(b: GraphBuilder, x: TV, idx: Any) -> str:
     """``x[idx]`` (module docstring)."""
-    items = _expand_index(x, idx)
+    items = expand_index(x, idx)
     consumed = sum(1 for it in items if it is not None)
     items += [slice(None)] * (x.rank - consumed)
     adv = _advanced(b, x, items)
