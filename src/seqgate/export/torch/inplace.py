@@ -41,8 +41,9 @@ def inplace_problems(gm: Any) -> list[Unsupported]:
 
 def setitem_problems(gm: Any) -> list[Unsupported]:
     """``x[idx] = v`` is exported by rebinding ``x`` (``assign``), exact only when no other tensor
-    shares x's memory: x must not be a forward() input or a view of another tensor, and no view of
-    x taken before the assignment may be read after it."""
+    shares x's memory: x must not be a forward() input or a view of another tensor, no view of
+    x taken before the assignment may be read after it, and ``v`` must not be a view of x (torch
+    then reads parts it has already overwritten: ``y[:, 1:3] = y[:, :2]`` copies y[:, 0] twice)."""
     import operator
 
     order = {n: i for i, n in enumerate(gm.graph.nodes)}
@@ -52,6 +53,7 @@ def setitem_problems(gm: Any) -> list[Unsupported]:
             continue
         x = n.args[0]
         why = None
+        hint = "assign into a copy (y = x.clone(); y[idx] = v) and read y afterwards"
         if x.op == "placeholder":
             why = f"assigning into the forward() input {x.name!r} changes the caller's tensor"
         elif _is_view(gm, x):
@@ -61,11 +63,25 @@ def setitem_problems(gm: Any) -> list[Unsupported]:
                      and any(order[r] > order[n] for r in u.users)]
             if stale:
                 why = f"{stale[0].name}, a view of the assigned tensor taken before, is read after it"
+            elif _views_of(gm, n.args[2], x):
+                why = ("the assigned value is a view of the same tensor: torch copies it element by element "
+                       "while writing, so overlapping parts read values already overwritten")
+                hint = "assign a copy of the value (y[idx] = y[a:b].clone())"
         if why:
             line = source_line(n)
-            out.append(Unsupported(f"item assignment{' at ' + line if line else ''}", why,
-                                   "assign into a copy (y = x.clone(); y[idx] = v) and read y afterwards"))
+            out.append(Unsupported(f"item assignment{' at ' + line if line else ''}", why, hint))
     return out
+
+
+def _views_of(gm: Any, v: Any, x: Any) -> bool:
+    """Is ``v`` ``x`` itself or a chain of views of it?"""
+    while hasattr(v, "op"):
+        if v is x:
+            return True
+        if not (_is_view(gm, v) and v.args):
+            return False
+        v = v.args[0]
+    return False
 
 
 def _is_view(gm: Any, n: Any) -> bool:
