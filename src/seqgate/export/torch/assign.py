@@ -1,6 +1,7 @@
 """Item assignment ``x[idx] = v`` and ``torch.roll`` → ONNX, out of place.
 
-``TABLE`` is merged by ``registry``. fx proxies get a ``__setitem__`` (:func:`record_setitem`)
+Imported only once torch is loaded (by ``registry``, which merges its ``TABLE``, and by the
+tracers). fx proxies get a ``__setitem__`` (:func:`record_setitem`)
 that records ``operator.setitem(x, idx, v)``; its mapping returns :class:`Assigned`, and the
 capture's walk rebinds ``x`` to the new value, so every later reader of ``x`` sees the update
 (``inplace.setitem_problems`` refuses the cases where another tensor would share the change).

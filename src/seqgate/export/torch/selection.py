@@ -1,6 +1,6 @@
 """Elementwise choice → ONNX: ``torch.where``, ``masked_fill``, ``clamp``/``clamp_min``/``clamp_max``.
 
-``TABLE`` is merged by ``registry``. Rules:
+Imported only once torch is loaded (by ``registry``, which merges its ``TABLE``). Rules:
 
 - Operands may be tensors or Python numbers; they broadcast (ONNX ``Where``/``Max``/``Min`` use
   numpy-style multidirectional broadcasting, as torch does). The result dtype follows torch's
