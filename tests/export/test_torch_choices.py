@@ -80,6 +80,20 @@ def test_case_matches_torch(name: str) -> None:
     _check(CASES[name])
 
 
+@pytest.mark.parametrize("name", ["where_broadcast", "where_int_scalar_float", "clamp_tensors",
+                                  "clamp_lo_above_hi", "list_of_slices_neg", "int_then_tensor",
+                                  "tensor_index_2d"])
+def test_case_through_the_onnx_reference(name: str) -> None:
+    # onnx.reference runs the operator specs (Where-16, Clip-13, Max/Min-13, Slice-13, Gather-13,
+    # Cast-13) as NumPy code: a second reading of the exported graph beside ONNX Runtime.
+    from onnx.reference import ReferenceEvaluator
+
+    m = randomize(Fn(CASES[name]), seed=1)
+    model = export(m, inputs=["x:batch,time,6"])
+    feeds = {"x": rand(np.random.default_rng(4), 2, 5, 6)}
+    worst(torch_outputs(m, feeds), ReferenceEvaluator(model).run(None, feeds))
+
+
 def test_torch_places_a_tensor_index_after_the_ints() -> None:
     # Hand-worked: torch applies x[0] first, so x[0, :, [1, 2]] of a [2, 3, 4] tensor is [3, 2]
     # (numpy's rule would give [2, 3]); the exported graph must agree with torch, not numpy.
