@@ -161,51 +161,51 @@ def test_assignment_in_a_forward_with_a_cell_loop() -> None:
 
 
 class _Bad(tnn.Module):
-    def __init__(self, fn: Callable[[torch.Tensor], Any]) -> None:
+    def __init__(self, fn: Callable[..., Any]) -> None:
         super().__init__()
         self.fn = fn
 
     def forward(self, x: torch.Tensor) -> Any:
-        return self.fn(x)
+        return self.fn(self, x)
 
 
-def _into_input(x: torch.Tensor) -> torch.Tensor:
+def _into_input(m: tnn.Module, x: torch.Tensor) -> torch.Tensor:
     x[:, 0] = 0.0
     return x * 2
 
 
-def _into_view(x: torch.Tensor) -> torch.Tensor:
+def _into_view(m: tnn.Module, x: torch.Tensor) -> torch.Tensor:
     y = x * 1.0
     y[:, :2][:, 0] = 0.0
     return y
 
 
-def _stale_view(x: torch.Tensor) -> Any:
+def _stale_view(m: tnn.Module, x: torch.Tensor) -> Any:
     y = x * 1.0
     first = y[:, 0]
     y[:, 0] = 3.0
     return y, first * 1.0
 
 
-def _overlapping(x: torch.Tensor) -> torch.Tensor:
+def _overlapping(m: tnn.Module, x: torch.Tensor) -> torch.Tensor:
     y = x * 1.0
     y[:, 1:3] = y[:, :2]  # torch reads y[:, 1] after writing it (measured: y[:, 2] gets y[:, 0])
     return y
 
 
-def _data_index(x: torch.Tensor) -> torch.Tensor:
+def _data_index(m: tnn.Module, x: torch.Tensor) -> torch.Tensor:
     y = x * 1.0
     y[:, :, (x[0, 0, :2] > 0).long()] = 0.0
     return y
 
 
-def _step_two(x: torch.Tensor) -> torch.Tensor:
+def _step_two(m: tnn.Module, x: torch.Tensor) -> torch.Tensor:
     y = x * 1.0
     y[:, ::2] = 0.0
     return y
 
 
-def _twice_named(x: torch.Tensor) -> torch.Tensor:
+def _twice_named(m: tnn.Module, x: torch.Tensor) -> torch.Tensor:
     y = x * 1.0
     y[..., [1, -3]] = 0.0
     return y

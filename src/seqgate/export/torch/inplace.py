@@ -41,9 +41,9 @@ def inplace_problems(gm: Any) -> list[Unsupported]:
 
 def setitem_problems(gm: Any) -> list[Unsupported]:
     """``x[idx] = v`` is exported by rebinding ``x`` (``assign``), exact only when no other tensor
-    shares x's memory: x must not be a forward() input or a view of another tensor, no view of
-    x taken before the assignment may be read after it, and ``v`` must not be a view of x (torch
-    then reads parts it has already overwritten: ``y[:, 1:3] = y[:, :2]`` copies y[:, 0] twice)."""
+    shares x's memory: x must not be a forward() input or a view of another tensor, no view of x
+    taken before the assignment may be read after it, and ``v`` must not be a view of x (torch then
+    reads parts it has already overwritten: ``y[:, 1:3] = y[:, :2]`` copies y[:, 0] twice)."""
     import operator
 
     order = {n: i for i, n in enumerate(gm.graph.nodes)}
