@@ -157,6 +157,11 @@ class GraphBuilder:
             self._by_content[key] = name
         return name
 
+    def constant_value(self, name: str) -> np.ndarray[Any, Any] | None:
+        """The array of initializer ``name``, or None when ``name`` is computed by the graph."""
+        init = self._inits.get(name)
+        return None if init is None else numpy_helper.to_array(init)
+
     def ints(self, values: Sequence[int], hint: str = "shape") -> str:
         """An int64 1-D constant (shapes, axes, indices)."""
         return self.const(np.asarray(values, dtype=np.int64), hint)

@@ -53,7 +53,7 @@ from seqgate.export.torch.structured import (
     structure_metadata,
 )
 from seqgate.export.torch.untraceable import SampleRunFailed, untraceable
-from seqgate.export.torch.values import TV, UNKNOWN, TorchCall, source_line
+from seqgate.export.torch.values import TV, UNKNOWN, Assigned, TorchCall, source_line
 from seqgate.sources.spec import Source
 from seqgate.util.outputs import flatten_with_paths
 
@@ -143,7 +143,11 @@ def tracer_class() -> type:
     """The fx tracer: modules with a mapping (``module_mapping``) are leaves."""
     import torch.fx
 
+    from seqgate.export.torch.assign import record_setitem
     from seqgate.export.torch.modules import module_mapping
+
+    class AssignableProxy(torch.fx.Proxy):
+        __setitem__ = record_setitem  # x[idx] = v is recorded (fx's own Proxy refuses it)
 
     class Tracer(torch.fx.Tracer):
         def __init__(self, *args: Any, **kwargs: Any) -> None:
@@ -153,6 +157,9 @@ def tracer_class() -> type:
         def to_bool(self, obj: Any) -> bool:
             held = assertion_outcome(self.skipped)  # an `assert` is traced past (asserts.py)
             return super().to_bool(obj) if held is None else held
+
+        def proxy(self, node: Any) -> Any:
+            return AssignableProxy(node, self)
 
         def is_leaf_module(self, m: Any, qualname: str) -> bool:
             return super().is_leaf_module(m, qualname) or module_mapping(m) is not None
@@ -263,7 +270,12 @@ class _Walk:
             if node.op == "output":
                 result = self._resolve(node.args[0])
                 break
-            self.values[node.name] = self._visit(node)
+            value = self._visit(node)
+            if isinstance(value, Assigned):  # x[idx] = v: later readers of x read the new value
+                old = self.values[node.args[0].name]
+                self.values[node.args[0].name] = TV(value.value, old.shape, old.dtype)
+                value = None
+            self.values[node.name] = value
         return result
 
     def _placeholder(self, name: str, ph: Any, specs: dict[str, Any], plan: Plan) -> Any:

@@ -158,17 +158,6 @@ TABLE.add(F.alpha_dropout, F.feature_alpha_dropout,
          sig=lambda input, p=0.5, training=False, inplace=False: None)(_dropout)
 
 
-@TABLE.add(torch.clamp, torch.clip, "Tensor.clamp", "Tensor.clip", sig=lambda input, min=None, max=None: None)
-def _clamp(b: GraphBuilder, call: TorchCall, a: dict[str, Any]) -> str:
-    x = want_tensor(a["input"], "input")
-    bounds = []
-    for v in (a["min"], a["max"]):
-        if isinstance(v, TV):
-            raise Refusal("clamp with tensor bounds", "use numbers for min/max")
-        bounds.append("" if v is None else b.scalar(v, "bound", dtype=np.dtype(x.dtype).type))
-    return b.op("Clip", [x.name, *bounds])
-
-
 @TABLE.add(F.pad, sig=lambda input, pad, mode="constant", value=None: None)
 def _pad(b: GraphBuilder, call: TorchCall, a: dict[str, Any]) -> str:
     """F.pad: pairs (left, right) from the last dim backwards → ONNX pads [begins…, ends…]."""

@@ -73,9 +73,12 @@ def _proxy_class() -> type:
     import torch.fx
     from torch.fx.proxy import Attribute, TraceError
 
+    from seqgate.export.torch.assign import record_setitem
     from seqgate.export.torch.branches import record_number
 
     class ValueProxy(torch.fx.Proxy):
+        __setitem__ = record_setitem  # x[idx] = v: recorded, and applied to the sample value too
+
         def __index__(self) -> int:
             v = self.tracer.value_of(self)  # type: ignore[attr-defined]
             if isinstance(v, int) and not isinstance(v, bool):

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from seqgate.export.torch import functions, modules, packing, shapes, statistics
+from seqgate.export.torch import assign, functions, modules, packing, selection, shapes, statistics
 from seqgate.export.torch.modules import module_mapping
 from seqgate.export.torch.values import Table
 
@@ -26,6 +26,7 @@ def _merge(*tables: Table) -> tuple[dict[Any, Any], dict[str, Any]]:
     return funcs, methods
 
 
-FUNCTIONS, METHODS = _merge(functions.TABLE, shapes.TABLE, packing.TABLE, modules.BASE_CALLS, statistics.TABLE)
+FUNCTIONS, METHODS = _merge(functions.TABLE, shapes.TABLE, packing.TABLE, modules.BASE_CALLS, statistics.TABLE,
+                            selection.TABLE, assign.TABLE)
 
 __all__ = ["FUNCTIONS", "METHODS", "module_mapping"]

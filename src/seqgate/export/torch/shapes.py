@@ -4,7 +4,11 @@ Rules:
 - Indexing ``x[...]`` with ints, negative ints, slices (step > 0), ``None`` and ``...``:
   one Slice for every int/slice (int ``i`` is ``[i, i+1)``, ``-1`` is ``[-1, end)``), then
   Squeeze of the int axes, then Unsqueeze for ``None``. A single int with nothing else is one
-  Gather. Tensor indices are refused.
+  Gather. A list holding slices is several indices (``x[[slice(None), slice(-3, None)]]``, as
+  torch reads it). One int tensor or list of ints (``x[..., idx]``) is applied after the ints
+  and slices, as torch does (``x[0, :, [1, 2]]`` has shape ``[3, 2]`` for ``x`` of shape
+  ``[2, 3, 4]``; numpy would give ``[2, 3]``): one Gather on the axis it lands on. Bool masks
+  and several tensor indices are refused.
 - ``x.shape`` / ``x.size()`` are read lazily; a static dim is a Python int, a dynamic one is
   ``Shape(x, start=d, end=d+1)``; sizes feeding ``view``/``reshape``/``expand`` and
   ``torch.zeros`` are concatenated into one int64 shape vector, so the graph stays dynamic.
@@ -71,13 +75,25 @@ def _shape_index(b: GraphBuilder, s: ShapeV, idx: Any) -> Any:
     raise Refusal(f"indexing a shape with {idx!r}")
 
 
-def _expand_index(x: TV, idx: Any) -> list[Any]:
-    items = list(idx) if isinstance(idx, tuple) else [idx]
+def index_items(idx: Any) -> list[Any]:
+    """The items of an index as torch reads them: a tuple, or a short list holding a slice, ``None``,
+    ``...``, a tensor or a sequence (torch's legacy rule, kept with a deprecation warning), is
+    several indices; anything else (a list of ints included) is one."""
+    if isinstance(idx, tuple):
+        return list(idx)
+    if isinstance(idx, list) and len(idx) < 32 and any(
+            isinstance(it, slice | TV | list | tuple) or it is None or it is Ellipsis for it in idx):
+        return list(idx)
+    return [idx]
+
+
+def expand_index(x: TV, idx: Any) -> list[Any]:
+    """The items of ``idx`` with ``...`` expanded to full slices; bool masks refused."""
+    items = index_items(idx)
     for it in items:
-        if isinstance(it, TV):
-            raise Refusal("indexing with a tensor", "use integer indices and slices, or torch.gather")
-        if isinstance(it, bool):
-            raise Refusal("indexing with a bool")
+        if isinstance(it, bool) or (isinstance(it, TV) and it.dtype == "bool"):
+            raise Refusal("indexing with a bool mask", "the result's size would depend on the data; use "
+                          "torch.where to choose values instead")
     real = sum(1 for it in items if it is not None and it is not Ellipsis)
     if real > x.rank:
         raise Refusal(f"{real} indices for a tensor of rank {x.rank}")
@@ -89,11 +105,40 @@ def _expand_index(x: TV, idx: Any) -> list[Any]:
     return items
 
 
+def _advanced(b: GraphBuilder, x: TV, items: list[Any]) -> tuple[int, TV] | None:
+    """The one tensor (or list-of-ints) index among ``items``: its item position and index tensor."""
+    found = [k for k, it in enumerate(items) if isinstance(it, TV | list | tuple)]
+    if not found:
+        return None
+    if len(found) > 1:
+        raise Refusal("indexing with more than one tensor or list index",
+                      "index one axis at a time (x[:, i][:, :, j]), or use torch.gather")
+    if None in items:
+        raise Refusal("a tensor index together with None", "unsqueeze separately")
+    k = found[0]
+    it = items[k]
+    if isinstance(it, TV):
+        if it.dtype not in ("int64", "int32"):
+            raise Refusal(f"indexing with a {it.dtype} tensor", "use an int64 index tensor")
+        return k, it
+    ints = [want_int(v, "a list index") for v in it]
+    axis = sum(1 for v in items[:k] if v is not None)
+    for i in ints:
+        _check_bound(x, axis, i)
+    return k, TV(b.ints(ints, "index"), (len(ints),), "int64")
+
+
 def index_tensor(b: GraphBuilder, x: TV, idx: Any) -> str:
     """``x[idx]`` (module docstring)."""
-    items = _expand_index(x, idx)
+    items = expand_index(x, idx)
     consumed = sum(1 for it in items if it is not None)
     items += [slice(None)] * (x.rank - consumed)
+    adv = _advanced(b, x, items)
+    if adv is not None:  # torch applies ints and slices first, then the one tensor index (Gather)
+        k, index = adv
+        basic = index_tensor(b, x, (*items[:k], slice(None), *items[k + 1:]))
+        out_axis = sum(1 for it in items[:k] if not isinstance(it, int))
+        return b.op("Gather", [basic, index.name], axis=out_axis)
     ints = [it for it in items if isinstance(it, int) or isinstance(it, DimV)]
     full = [it for it in items if isinstance(it, slice) and it == slice(None)]
     if len(ints) == 1 and isinstance(ints[0], int) and len(ints) + len(full) == len(items):

@@ -72,6 +72,13 @@ class Opaque:
     what: str
 
 
+@dataclass(frozen=True)
+class Assigned:
+    """What ``x[idx] = v`` maps to: the ONNX value ``x`` holds afterwards (the walk rebinds x)."""
+
+    value: str
+
+
 class _Unknown:
     def __repr__(self) -> str:
         return "UNKNOWN"
