@@ -111,6 +111,27 @@ def test_initializers_sorted_and_build_deterministic() -> None:
     assert make() == make()
 
 
+def test_constants_nothing_reads_are_dropped_but_sub_graph_reads_kept() -> None:
+    """A constant read by no node is not written (ONNX Runtime would warn "Removing initializer");
+    one read only inside a Scan body (by its outer-scope name, ONNX IR: sub-graphs may reference
+    outer values) is kept, and the model still runs: y = x + 1 for every step."""
+    from onnx import helper
+
+    b = GraphBuilder(17, "g", "keras")
+    x = b.input("x", FLOAT, [3, 2])
+    b.const(np.zeros((4,), np.float32), "unused")
+    one = b.const(np.ones((2,), np.float32), "one")
+    body = helper.make_graph(
+        [helper.make_node("Add", ["xt", one], ["yt"])], "body",
+        [helper.make_tensor_value_info("xt", FLOAT, [2])], [helper.make_tensor_value_info("yt", FLOAT, [2])])
+    y = b.op("Scan", [x], body=body, num_scan_inputs=1)
+    b.output(y, "y", FLOAT, [3, 2])
+    m = b.build({"seqgate.version": "test"})
+    assert [i.name for i in m.graph.initializer] == [one]
+    xs = np.arange(6, dtype=np.float32).reshape(3, 2)
+    np.testing.assert_array_equal(km.session(m).run(None, {"x": xs})[0], xs + 1)
+
+
 # ----- standalone activations vs the formulas -------------------------------------------------
 SELU_ALPHA, SELU_SCALE = 1.6732632423543772, 1.0507009873554805  # Klambauer et al. (2017), from memory
 

@@ -310,7 +310,8 @@ class GraphBuilder:
     def build(self, metadata: dict[str, str], check: bool = True) -> onnx.ModelProto:
         """Assemble, check and shape-infer the model. ``metadata`` goes to metadata_props."""
         outputs = self._bind_outputs()
-        inits = [self._inits[k] for k in sorted(self._inits)]
+        read = names_read(self._nodes) | {o.name for o in outputs}
+        inits = [self._inits[k] for k in sorted(self._inits) if k in read]  # unread constants dropped
         graph = helper.make_graph(self._nodes, self.graph_name, self._inputs, outputs, inits)
         model = helper.make_model(
             graph,
@@ -331,6 +332,17 @@ class GraphBuilder:
             onnx.checker.check_model(model, full_check=True)
             onnx.shape_inference.infer_shapes(model, check_type=True, strict_mode=True)
         return model
+
+
+def names_read(nodes: list[onnx.NodeProto]) -> set[str]:
+    """Every value name a node reads, in sub-graphs too (a ``Scan`` body reads outer values by name)."""
+    out: set[str] = set()
+    for n in nodes:
+        out.update(i for i in n.input if i)
+        for a in n.attribute:
+            for g in ([a.g] if a.type == onnx.AttributeProto.GRAPH else list(a.graphs)):
+                out |= names_read(list(g.node)) | {o.name for o in g.output}
+    return out
 
 
 def _ir_version_for(opset: int) -> int:
