@@ -45,6 +45,7 @@ from seqgate.export.torch.inputs import (
     output_dims,
     record_runs,
 )
+from seqgate.export.torch.mutation import state_kept
 from seqgate.export.torch.structured import (
     flat_forward,
     refuse_annotated,
@@ -82,9 +83,14 @@ def export_torch_module(
     inputs: list[str] | None = None,
     label: str | None = None,
 ) -> Any:
-    """Build the ONNX ModelProto of a loaded module (put in ``eval()`` mode here)."""
+    """The ONNX ModelProto of a loaded module (``eval()`` mode; writes to its tensors refused)."""
     module.eval()
     label = label or type(module).__name__
+    with state_kept(module, label):
+        return _export(module, opset, metadata, inputs, label)
+
+
+def _export(module: Any, opset: int, metadata: dict[str, str], inputs: list[str] | None, label: str) -> Any:
     declared = parse_inputs(inputs)
     module, onnx_names = flat_forward(module, declared, label)  # --input PARAM.KEY: structured.py
     idents = {v: k for k, v in onnx_names.items()}
