@@ -150,6 +150,17 @@ def test_category_ids_and_bool_mask(rng: np.random.Generator) -> None:
     worst(torch_outputs(m, feeds), run_onnx(model, feeds))
 
 
+def test_float_ids_failure_hints_at_declaring_the_dtype() -> None:
+    # PyTorch's own refusal of float indices in an Embedding, mapped to a hint naming --input's dtype
+    from seqgate.export.torch.untraceable import untraceable
+
+    emb = nn.Embedding(5, 2)
+    with pytest.raises(RuntimeError) as e:
+        emb(torch.zeros(3))
+    why = untraceable(emb, e.value)
+    assert "declare its dtype and value range, --input NAME:DIM,...:int64=0..N-1" in why.line()
+
+
 def test_packing_lengths_declared_int32(rng: np.random.Generator) -> None:
     m = randomize(Packed())
     model = export(m, ["lengths:batch:int32=1..time"])

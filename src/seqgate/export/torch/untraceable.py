@@ -47,6 +47,9 @@ def _trace_hint(msg: str, code: str) -> str:
         return ("a tensor size is turned into a Python int (int(x.size(1)), range(x.size(0)), "
                 "a Python loop over time); keep sizes as x.size(d) values passed to view/reshape, "
                 "and let the recurrent module loop over time")
+    if "indices" in msg and ("Long" in msg or "Int" in msg):
+        return ("an input used as an index (an Embedding's ids, a gather index) was sampled as float32; "
+                "declare its dtype and value range, --input NAME:DIM,...:int64=0..N-1")
     return "rewrite that line with tensor operations on the forward() inputs"
 
 
