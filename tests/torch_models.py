@@ -187,3 +187,31 @@ def build():
     torch.manual_seed(0)
     return Net()
 '''
+
+
+def linear_then(fn: Any) -> Any:
+    """A module: ``Linear(6, 6)`` front end (fixes the feature size), then ``fn`` of its output,
+    traced as part of forward — the harness for one function or indexing case."""
+    from torch import nn
+
+    class LinearThen(nn.Module):
+        def __init__(self) -> None:
+            super().__init__()
+            self.fn = fn
+            self.lin = nn.Linear(6, 6)
+
+        def forward(self, x: Any) -> Any:
+            return self.fn(self.lin(x))
+
+    return LinearThen()
+
+
+def check_linear_then(fn: Any, rng: np.random.Generator) -> Any:
+    """Export ``linear_then(fn)`` (seeded weights, ``x:batch,time,6``) and compare it with PyTorch at
+    batch 1 × 4 steps and 3 × 9 steps; the ONNX model."""
+    m = randomize(linear_then(fn), seed=1)
+    model = export(m, inputs=["x:batch,time,6"])
+    for n, t in ((1, 4), (3, 9)):
+        feeds = {"x": rand(rng, n, t, 6)}
+        worst(torch_outputs(m, feeds), run_onnx(model, feeds))
+    return model

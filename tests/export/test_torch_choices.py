@@ -16,31 +16,13 @@ import torch
 from torch import nn as tnn
 
 from seqgate.errors import UnsupportedModelError
-from torch_models import export, rand, randomize, run_onnx, torch_outputs, worst
+from torch_models import check_linear_then, export, linear_then, rand, randomize, run_onnx, torch_outputs, worst
 
 torch.set_num_threads(1)
 
 
-class Fn(tnn.Module):
-    """Linear front end (fixes the feature size), then ``fn`` of the result and the raw input."""
-
-    def __init__(self, fn: Callable[..., Any]) -> None:
-        super().__init__()
-        self.fn = fn
-        self.lin = tnn.Linear(6, 6)
-
-    def forward(self, x: torch.Tensor) -> Any:
-        return self.fn(self.lin(x))
-
-
 def _check(fn: Callable[..., Any]) -> Any:
-    rng = np.random.default_rng(3)
-    m = randomize(Fn(fn), seed=1)
-    model = export(m, inputs=["x:batch,time,6"])
-    for n, t in ((1, 4), (3, 9)):
-        feeds = {"x": rand(rng, n, t, 6)}
-        worst(torch_outputs(m, feeds), run_onnx(model, feeds))
-    return model
+    return check_linear_then(fn, np.random.default_rng(3))
 
 
 _IDX = torch.tensor([4, 0, -1])
@@ -88,7 +70,7 @@ def test_case_through_the_onnx_reference(name: str) -> None:
     # Cast-13) as NumPy code: a second reading of the exported graph beside ONNX Runtime.
     from onnx.reference import ReferenceEvaluator
 
-    m = randomize(Fn(CASES[name]), seed=1)
+    m = randomize(linear_then(CASES[name]), seed=1)
     model = export(m, inputs=["x:batch,time,6"])
     feeds = {"x": rand(np.random.default_rng(4), 2, 5, 6)}
     worst(torch_outputs(m, feeds), ReferenceEvaluator(model).run(None, feeds))
@@ -99,7 +81,7 @@ def test_torch_places_a_tensor_index_after_the_ints() -> None:
     # (numpy's rule would give [2, 3]); the exported graph must agree with torch, not numpy.
     x = torch.arange(24.0).reshape(2, 3, 4)
     assert tuple(x[0, :, [1, 2]].shape) == (3, 2)
-    m = Fn(lambda y: y[0, :, [1, 2]])
+    m = linear_then(lambda y: y[0, :, [1, 2]])
     model = export(m, inputs=["x:2,time,6"])
     got = run_onnx(model, {"x": np.ones((2, 3, 6), np.float32)})[0]
     assert got.shape == (3, 2)
@@ -127,13 +109,13 @@ def test_nan_propagates_like_torch_and_the_onnx_reference() -> None:
 
 def test_clamp_refusals_name_the_problem() -> None:
     with pytest.raises(UnsupportedModelError, match="NaN bound"):
-        export(randomize(Fn(lambda y: y.clamp(min=float("nan")))), inputs=["x:batch,time,6"])
+        export(randomize(linear_then(lambda y: y.clamp(min=float("nan")))), inputs=["x:batch,time,6"])
     with pytest.raises(UnsupportedModelError, match="one argument"):
-        export(randomize(Fn(lambda y: torch.where(y > 0)[0])), inputs=["x:batch,time,6"])
+        export(randomize(linear_then(lambda y: torch.where(y > 0)[0])), inputs=["x:batch,time,6"])
 
 
 def test_index_refusals_name_the_problem() -> None:
     with pytest.raises(UnsupportedModelError, match="bool mask"):
-        export(randomize(Fn(lambda y: y[y > 0])), inputs=["x:batch,time,6"])
+        export(randomize(linear_then(lambda y: y[y > 0])), inputs=["x:batch,time,6"])
     with pytest.raises(UnsupportedModelError, match="more than one tensor"):
-        export(randomize(Fn(lambda y: y[:, [0, 1], [1, 2]])), inputs=["x:batch,time,6"])
+        export(randomize(linear_then(lambda y: y[:, [0, 1], [1, 2]])), inputs=["x:batch,time,6"])

@@ -16,30 +16,13 @@ import torch.nn.functional as F
 from torch import nn as tnn
 
 from seqgate.errors import UnsupportedModelError
-from torch_models import export, rand, randomize, run_onnx, torch_outputs, worst
+from torch_models import check_linear_then, export, linear_then, rand, randomize, run_onnx, torch_outputs, worst
 
 torch.set_num_threads(1)
 
 
-class Fn(tnn.Module):
-    """Linear front end (fixes the feature size), then ``fn`` traced as part of forward."""
-
-    def __init__(self, fn: Callable[..., Any]) -> None:
-        super().__init__()
-        self.fn = fn
-        self.lin = tnn.Linear(6, 6)
-
-    def forward(self, x: torch.Tensor) -> Any:
-        return self.fn(self.lin(x))
-
-
 def _check3(fn: Callable[..., Any], rng: np.random.Generator) -> Any:
-    m = randomize(Fn(fn), seed=1)
-    model = export(m, inputs=["x:batch,time,6"])
-    for n, t in ((1, 4), (3, 9)):
-        feeds = {"x": rand(rng, n, t, 6)}
-        worst(torch_outputs(m, feeds), run_onnx(model, feeds))
-    return model
+    return check_linear_then(fn, rng)
 
 
 def _split_mul(y: torch.Tensor) -> torch.Tensor:
@@ -165,13 +148,13 @@ def test_every_unsupported_node_is_listed_with_its_line() -> None:
 
 def test_squeeze_of_dynamic_dim_is_refused() -> None:
     with pytest.raises(UnsupportedModelError, match="squeeze of dim 0"):
-        export(Fn(lambda y: y.squeeze()), inputs=["x:batch,time,6"])
+        export(linear_then(lambda y: y.squeeze()), inputs=["x:batch,time,6"])
 
 
 def test_bool_mask_index_is_refused() -> None:
     # a one-axis int tensor index is exported (tests/export/test_torch_choices.py); a mask is not
     with pytest.raises(UnsupportedModelError, match="bool mask"):
-        export(Fn(lambda y: y[y > 0]), inputs=["x:batch,6"])
+        export(linear_then(lambda y: y[y > 0]), inputs=["x:batch,6"])
 
 
 class TutorialLSTM(tnn.Module):
@@ -205,7 +188,7 @@ def test_tutorial_pattern_with_zero_states(rng: np.random.Generator) -> None:
 def test_zeros_with_traced_leading_size_exports_with_a_dynamic_batch(rng: np.random.Generator) -> None:
     # fx alone refuses torch.zeros(size, 6); the value-carrying capture records it with the size
     # kept dynamic (proved by tracing at two batch sizes), so it exports
-    m = Fn(lambda y: torch.zeros(y.size(0), 6) + y)
+    m = linear_then(lambda y: torch.zeros(y.size(0), 6) + y)
     model = export(m, inputs=["x:batch,6"])
     for n in (1, 5):
         feeds = {"x": rand(rng, n, 6)}
