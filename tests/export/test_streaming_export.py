@@ -274,3 +274,13 @@ def test_summary_output_is_marked_latest(rng: np.random.Generator) -> None:
     for i, value in enumerate(got["head"]):
         end = min(3 * (i + 1), 10)
         km.assert_matches([value], km.keras_outputs(model, [x[:, :end]]), f"prefix {end}")
+
+
+def test_torch_time_major_refused_for_streaming_saying_why() -> None:
+    """nn.LSTM(batch_first=False) on a [time, batch, features] input: the ordinary export works;
+    streaming (which cuts along axis 1) is refused naming the time-major layout and the fix."""
+    nn = tm.nn()
+    module = tm.randomize(nn.Recurrent("lstm", input_size=3, hidden=5, num_layers=2, batch_first=False), seed=4)
+    ordinary = tm.export(module, ["x:time,batch,3"])
+    with pytest.raises(UnsupportedModelError, match=r"time-major input.*batch_first=True"):
+        make_streaming(ordinary, "time-major")

@@ -184,6 +184,10 @@ def _recurrent(node: onnx.NodeProto, ins: list[Kind]) -> list[Kind]:
     if len(node.input) > 4 and node.input[4]:
         raise _Bad("has sequence_lens (masking or padded batches): which steps count depends on the "
                    "whole window")
+    if ins[0] == Step(-2):  # the input's axis 1 (streamed as time) reaches the node as its batch axis
+        raise _Bad("reads a time-major input ([time, batch, features], PyTorch's batch_first=False); "
+                   "streaming cuts inputs along axis 1 — make the model batch-first (batch_first=True "
+                   "and a [batch, time, features] input) to stream it")
     if ins[0] != Step(-3):
         raise _Bad("does not read its input along the time axis")
     if any(k is not None for k in ins[5:]):
