@@ -215,3 +215,30 @@ def check_linear_then(fn: Any, rng: np.random.Generator) -> Any:
         feeds = {"x": rand(rng, n, t, 6)}
         worst(torch_outputs(m, feeds), run_onnx(model, feeds))
     return model
+
+
+def cli_export_verify(tmp_path: Any, factory_source: str) -> set[str]:
+    """Write ``factory_source`` (a module file whose ``make()`` builds the model) to ``net.py``,
+    save ``make()``'s weights, run ``seqgate export`` and ``seqgate verify --synthetic`` on them
+    through the CLI (each must exit 0), and return the names of the tensors verify compared."""
+    import json
+    import textwrap
+
+    import torch
+    from typer.testing import CliRunner
+
+    from seqgate.cli.app import app
+
+    py, weights = tmp_path / "net.py", tmp_path / "w.pt"
+    py.write_text(textwrap.dedent(factory_source))
+    ns: dict[str, Any] = {}
+    exec(compile(py.read_text(), str(py), "exec"), ns)
+    torch.save(ns["make"]().state_dict(), weights)
+    runner = CliRunner()
+    out, rep = tmp_path / "n.onnx", tmp_path / "r.json"
+    r = runner.invoke(app, ["export", f"{py}:make", "--weights", str(weights), "-o", str(out)])
+    assert r.exit_code == 0, r.output
+    r = runner.invoke(app, ["verify", str(out), "--source", f"{py}:make", "--weights", str(weights),
+                            "--synthetic", "--quiet", "--report", str(rep)])
+    assert r.exit_code == 0, r.output
+    return {t["name"] for t in json.loads(rep.read_text())["tensors"]}

@@ -14,20 +14,11 @@ from typing import Any
 import numpy as np
 import onnx
 import pytest
-from typer.testing import CliRunner
 
 import keras_models as km
-from seqgate.cli.app import app
+from cli_helpers import invoke as _invoke
 
 pytestmark = pytest.mark.filterwarnings("ignore:__array__ implementation:DeprecationWarning")
-runner = CliRunner()
-
-
-def _invoke(*args: str) -> Any:
-    r = runner.invoke(app, list(args))
-    assert "Traceback" not in r.output, r.output
-    assert r.exception is None or isinstance(r.exception, SystemExit), repr(r.exception)
-    return r
 
 
 @pytest.fixture(scope="module")

@@ -14,13 +14,11 @@ from typing import Any
 import numpy as np
 import pytest
 import torch
-from typer.testing import CliRunner
 
-from seqgate.cli.app import app
+from cli_helpers import invoke as _invoke
 from seqgate.export.torch.declared import parse_one
 
 torch.set_num_threads(1)
-runner = CliRunner()
 README = Path(__file__).resolve().parents[2] / "README.md"
 
 NETS = '''
@@ -87,13 +85,6 @@ def guessed():
 
 FAST = ["--warmup", "1", "--min-runs", "3", "--min-time", "0", "--seq-lens", "2,6", "--batch-sizes", "1",
         "--threads", "1"]
-
-
-def _invoke(*args: str) -> Any:
-    r = runner.invoke(app, list(args))
-    assert "Traceback" not in r.output, r.output
-    assert r.exception is None or isinstance(r.exception, SystemExit), repr(r.exception)
-    return r
 
 
 @pytest.fixture(scope="module")

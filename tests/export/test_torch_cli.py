@@ -10,29 +10,19 @@ from __future__ import annotations
 import importlib.metadata
 import textwrap
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 import onnx
 import pytest
 import torch
-from typer.testing import CliRunner
 
-from seqgate.cli.app import app
+from cli_helpers import invoke as _invoke
 from seqgate.onnxfile.probes import read_metadata
 from seqgate.sources.spec import parse_source
 from seqgate.sources.torch import load_torch, load_torch_with_info
 from torch_models import FACTORY_FILE, run_onnx, torch_outputs, worst
 
 torch.set_num_threads(1)
-runner = CliRunner()
-
-
-def _invoke(*args: str) -> Any:
-    r = runner.invoke(app, list(args))
-    assert "Traceback" not in r.output, r.output
-    assert r.exception is None or isinstance(r.exception, SystemExit), repr(r.exception)
-    return r
 
 
 def _write(tmp: Path, name: str, body: str) -> Path:

@@ -9,8 +9,6 @@ states at the base call (an independent run of the module in PyTorch).
 
 from __future__ import annotations
 
-import json
-import textwrap
 from pathlib import Path
 from typing import Any
 
@@ -19,12 +17,10 @@ import pytest
 import torch
 from torch import nn
 from torch.nn.utils.rnn import pack_padded_sequence, pad_packed_sequence
-from typer.testing import CliRunner
 
-from seqgate.cli.app import app
 from seqgate.errors import UnsupportedModelError
 from seqgate.onnxfile.probes import read_probe_map
-from torch_models import export, rand, randomize, run_onnx, torch_outputs, worst
+from torch_models import cli_export_verify, export, rand, randomize, run_onnx, torch_outputs, worst
 from torch_reference import run_module
 
 
@@ -191,20 +187,7 @@ def make():
 
 
 def test_cli_verify_reads_the_states_of_the_base_call(tmp_path: Path) -> None:
-    py = tmp_path / "net.py"
-    py.write_text(textwrap.dedent(FACTORY))
-    ns: dict[str, Any] = {}
-    exec(compile(py.read_text(), str(py), "exec"), ns)
-    torch.save(ns["make"]().state_dict(), tmp_path / "w.pt")
-    runner = CliRunner()
-    out = tmp_path / "n.onnx"
-    r = runner.invoke(app, ["export", f"{py}:make", "--weights", str(tmp_path / "w.pt"), "-o", str(out)])
-    assert r.exit_code == 0, r.output
-    rep = tmp_path / "r.json"
-    r = runner.invoke(app, ["verify", str(out), "--source", f"{py}:make", "--weights", str(tmp_path / "w.pt"),
-                            "--synthetic", "--quiet", "--report", str(rep)])
-    assert r.exit_code == 0, r.output
-    names = {t["name"] for t in json.loads(rep.read_text())["tensors"]}
+    names = cli_export_verify(tmp_path, FACTORY)
     for k in (0, 1):
         for d in ("forward", "reverse"):
             assert f"enc/l{k}/{d}/hidden_sequence" in names and f"enc/l{k}/{d}/cell_final" in names, names

@@ -13,15 +13,12 @@ import subprocess
 import sys
 import textwrap
 from pathlib import Path
-from typing import Any
 
 import pytest
-from typer.testing import CliRunner
 
-from seqgate.cli.app import app
+from cli_helpers import invoke as _invoke
 from torch_models import FACTORY_FILE
 
-runner = CliRunner()
 REPO = Path(__file__).resolve().parents[2]
 
 EXTRA = """
@@ -37,13 +34,6 @@ later = functools.partial(build)
 class NotAModule:
     pass
 """
-
-
-def _invoke(*args: str) -> Any:
-    r = runner.invoke(app, list(args))
-    assert "Traceback" not in r.output, r.output
-    assert r.exception is None or isinstance(r.exception, SystemExit), repr(r.exception)
-    return r
 
 
 @pytest.fixture

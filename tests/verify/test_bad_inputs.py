@@ -15,20 +15,11 @@ from typing import Any
 
 import numpy as np
 import pytest
-from typer.testing import CliRunner
 
-from seqgate.cli.app import app
+from cli_helpers import invoke as _invoke
 from torch_models import FACTORY_FILE
 
-runner = CliRunner()
 DEMO = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
-
-
-def _invoke(*args: str) -> Any:
-    r = runner.invoke(app, list(args))
-    assert "Traceback" not in r.output, r.output
-    assert r.exception is None or isinstance(r.exception, SystemExit), repr(r.exception)
-    return r
 
 
 # ----- windows -----------------------------------------------------------------------------

@@ -18,24 +18,15 @@ from typing import Any
 import onnx
 import pytest
 import torch
-from typer.testing import CliRunner
 
-from seqgate.cli.app import app
+from cli_helpers import invoke as _invoke
 from seqgate.onnxfile.probes import read_metadata
 from seqgate.sources.spec import parse_source
 from seqgate.sources.torch import load_torch
 from torch_models import FACTORY_FILE
 
 torch.set_num_threads(1)
-runner = CliRunner()
 DEMO = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
-
-
-def _invoke(*args: str) -> Any:
-    r = runner.invoke(app, list(args))
-    assert "Traceback" not in r.output, r.output
-    assert r.exception is None or isinstance(r.exception, SystemExit), repr(r.exception)
-    return r
 
 
 def _sha(p: Path) -> str:
