@@ -151,11 +151,7 @@ def _lstm_as(alg: Algebra, x: str, states: list[str], outs: list[Any], hi: int, 
     prods = [alg.value(e) for e in c_new.extra]
     if not all(isinstance(p, Prod) for p in prods):
         raise Mismatch("the new cell state is not a sum of two products")
-    keep = [p for p in prods if c in p.args]
-    if len(keep) != 1:
-        raise Mismatch("the previous cell state does not enter the new one through exactly one product")
-    forget = _other(alg, keep[0], c, "the previous cell state is not weighted by one forget gate")
-    (feed,) = [p for p in prods if p is not keep[0]]
+    forget, feed = _weighted_state(alg, prods, c, "cell state", "forget gate")
     if len(feed.args) != 2:
         raise Mismatch("the cell input is not a product of two gates")
     if not isinstance(h_new, Prod) or len(h_new.args) != 2:
@@ -230,15 +226,22 @@ def _other(alg: Algebra, prod: Prod, name: str, what: str) -> str:
     return rest[0]
 
 
+def _weighted_state(alg: Algebra, prods: list[Any], state: str, what: str, gate: str) -> tuple[str, Any]:
+    """Of two products, the one holding the previous ``state`` and its other factor (the gate),
+    and the other product: ``gate ⊙ state + other``."""
+    keep = [p for p in prods if state in p.args]
+    if len(keep) != 1:
+        raise Mismatch(f"the previous {what} does not enter the new one through exactly one product")
+    weight = _other(alg, keep[0], state, f"the previous {what} is not weighted by one {gate}")
+    (other,) = [p for p in prods if p is not keep[0]]
+    return weight, other
+
+
 def _gru(alg: Algebra, x: str, h: str, out: Sum) -> NativeCell:
     prods = [alg.value(e) for e in out.extra]
     if not all(isinstance(p, Prod) and len(p.args) == 2 for p in prods):
         raise Mismatch("the new state is not (1 − z) ⊙ n + z ⊙ h")
-    keep = [p for p in prods if h in p.args]
-    if len(keep) != 1:
-        raise Mismatch("the previous state does not enter the new one through exactly one product")
-    z_name = _other(alg, keep[0], h, "the previous state is not weighted by one gate z")
-    (mix,) = [p for p in prods if p is not keep[0]]
+    z_name, mix = _weighted_state(alg, prods, h, "state", "gate z")
     one_minus = [a for a in mix.args if alg.is_one_minus(a, z_name)]
     if len(one_minus) != 1:
         raise Mismatch("the candidate is not weighted by 1 − z (z must weight the previous state)")
