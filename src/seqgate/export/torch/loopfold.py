@@ -205,7 +205,7 @@ def fold_loops(gm: Any, values: dict[Any, Any], is_cell: Any, label: str) -> Non
                 continue
             before = calls.index(chain.calls[0])
             after = len(calls) - 1 - calls.index(chain.calls[-1])
-            _rewrite(gm, target, chain, steps[0][:2], (before, after))  # type: ignore[index]
+            _rewrite(gm, target, chain, steps[0][:2], (before, after), values)  # type: ignore[index]
     if problems:
         raise UnsupportedModelError(label, problems)
     gm.graph.lint()
@@ -297,7 +297,10 @@ def _blocker(chain: _Chain) -> str | None:
     return None
 
 
-def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls: tuple[int, int]) -> None:
+def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls: tuple[int, int],
+             values: dict[Any, Any]) -> None:
+    """Replace the chain by the loop leaf; the leaf's items take the sample values of what they
+    replace, so a later loop over the collected sequence (a second layer) is recognised too."""
     x, axis = x_axis
     c0, last = chain.calls[0], chain.calls[-1]
     init: list[Any] = []
@@ -314,7 +317,9 @@ def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls
         loop.meta = dict(c0.meta)
         seq = g.call_function(operator.getitem, (loop, 0))
         fin = g.call_function(operator.getitem, (loop, 1))
+    values[fin] = values.get(last)
     if isinstance(col, tuple):
+        values[seq] = values.get(col[0])
         col[0].replace_all_uses_with(seq)
         g.erase_node(col[0])
         for u in col[3]:
