@@ -105,10 +105,8 @@ def cell_step(b: GraphBuilder, call: TorchCall) -> Any:
 def _check_loop_form(m: Any, kind: str) -> None:
     """The carried state must be the cell's own (h, c) / h, and the collected output h."""
     h_path = (0,) if kind == "lstm" else ()
-    later = [(("path", ()),)]  # the whole previous output: `state = cell(x[:, t], state)`
-    if kind == "lstm":
-        later.append(((("path", (0,)), ("path", (1,))),))
-    if m.template["later"] not in later:
+    later = ((("path", (0,)), ("path", (1,))),) if kind == "lstm" else (("path", ()),)
+    if m.template["later"] != later:
         raise Refusal(f"the loop passes {_TYPE[kind]} a state other than its own previous output "
                       f"({'(h, c)' if kind == 'lstm' else 'h'})", "pass the previous step's state unchanged")
     if m.seq_path is not None and m.seq_path != h_path:

@@ -305,7 +305,7 @@ def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls
     c0, last = chain.calls[0], chain.calls[-1]
     init: list[Any] = []
     template0 = _leaves(_state_args(c0), init)
-    template = _template(template0, chain)
+    template = _template(template0, chain, values.get(c0))
     col = _collector(chain)
     seq_path, seq_dim = (col[1], col[2]) if isinstance(col, tuple) else (None, 0)
     cls = cell_loop_class()
@@ -330,8 +330,10 @@ def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls
     g.eliminate_dead_code()
 
 
-def _template(template0: Any, chain: _Chain) -> Any:
-    """Step-0 argument structure with ("init", j) leaves, checked against later steps' paths."""
+def _template(template0: Any, chain: _Chain, out0: Any) -> Any:
+    """Step-0 argument structure with ("init", j) leaves, and later steps' with ("path", p) leaves;
+    a path to a tuple of the output (``state = cell(x[:, t], state)`` with ``(h, c)`` returned) is
+    spelled out item by item from the sample output ``out0``, so every carried leaf is a tensor."""
     def conv(t: Any) -> Any:
         if isinstance(t, tuple) and len(t) == 2 and t[0] == "leaf":
             return ("init", t[1])
@@ -341,12 +343,21 @@ def _template(template0: Any, chain: _Chain) -> Any:
 
     def later(t: Any) -> Any:
         if isinstance(t, tuple) and len(t) == 2 and t[0] == "leaf":
-            return ("path", chain.paths[t[1]])
+            return _spelled(chain.paths[t[1]], out0)
         if isinstance(t, list | tuple):
             return type(t)(later(x) for x in t)
         return t
 
     return {"first": conv(template0), "later": later(chain.template_args)}
+
+
+def _spelled(path: Path, out: Any) -> Any:
+    v = out
+    for i in path:
+        v = v[i] if isinstance(v, tuple | list) and i < len(v) else None
+    if isinstance(v, tuple | list):
+        return type(v)(_spelled((*path, i), out) for i in range(len(v)))
+    return ("path", path)
 
 
 def _erase_tree(g: Any, n: Any) -> None:

@@ -326,7 +326,7 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
     tracer = tracer_cls()
     tracer.record_stack_traces = True
     try:
-        with _factories_recorded(tracer), base_calls_traced(module):
+        with factories_recorded(tracer), base_calls_traced(module):
             graph = tracer.trace(module, concrete_args=dict(concrete) or None)
     except DataDependent as e:
         raise BranchError(label, [e.unsupported]) from None
@@ -342,7 +342,7 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
 
 
 @contextmanager
-def _factories_recorded(tracer: Any) -> Iterator[None]:
+def factories_recorded(tracer: Any) -> Iterator[None]:
     """``torch.zeros(x.size(0), H)`` is recorded as a node (its size stays dynamic) instead of
     reading the sample's batch size; the function object in the node is the original."""
     import torch
@@ -353,7 +353,7 @@ def _factories_recorded(tracer: Any) -> Iterator[None]:
     def wrap(orig: Any) -> Any:
         def factory(*size: Any, **kwargs: Any) -> Any:
             flat = list(size[0]) if len(size) == 1 and isinstance(size[0], list | tuple) else list(size)
-            if tracer.computing or not any(isinstance(s, torch.fx.Proxy) for s in flat):
+            if getattr(tracer, "computing", False) or not any(isinstance(s, torch.fx.Proxy) for s in flat):
                 return orig(*size, **kwargs)
             return tracer.create_proxy("call_function", orig, tuple(size), kwargs)
         return factory
