@@ -18,7 +18,7 @@ from onnx.reference import ReferenceEvaluator
 from torch import nn
 
 from seqgate.errors import UnsupportedModelError
-from torch_models import export, randomize, run_onnx, torch_outputs, worst
+from torch_models import cli_export_verify, export, randomize, run_onnx, torch_outputs, worst
 
 torch.set_num_threads(1)
 IN, H = 3, 5
@@ -325,3 +325,61 @@ def test_a_first_state_that_cannot_be_traced_is_refused_naming_the_cell() -> Non
         export(randomize(PairOfNones()))
     assert e.value.exit_code == 3
     assert "first call of cell passes 'state'" in str(e.value), str(e.value)
+
+
+FACTORY = """
+import torch
+from torch import nn
+
+
+class Start(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.input_size = 3
+        self.ih = nn.Linear(3, 20)
+        self.hh = nn.Linear(5, 20, bias=False)
+        self.h0 = nn.Parameter(torch.rand(1, 5) - 0.5)
+        self.w0 = nn.Linear(3, 5)
+
+    def forward(self, x, state=None):
+        if state is None:
+            state = (self.h0.expand(x.size(0), -1), torch.tanh(self.w0(x)))
+        h, c = state
+        i, f, g, o = (self.ih(x) + self.hh(h)).chunk(4, 1)
+        c = torch.sigmoid(f) * c + torch.sigmoid(i) * torch.tanh(g)
+        return torch.sigmoid(o) * torch.tanh(c), c
+
+
+class Net(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.enc = Start()
+        self.dec = nn.GRUCell(5, 4)
+        self.fc = nn.Linear(4, 2)
+
+    def forward(self, x):
+        state = None
+        outs = []
+        for t in range(x.size(1)):
+            state = self.enc(x[:, t], state)
+            outs.append(state[0])
+        y = torch.stack(outs, 1)
+        h = None
+        hs = []
+        for t in range(y.size(1)):
+            h = self.dec(y[:, t], h)
+            hs.append(h)
+        return self.fc(torch.stack(hs, 1))
+
+
+def make():
+    torch.manual_seed(0)
+    return Net().eval()
+"""
+
+
+def test_cli_export_and_verify_compare_every_step_of_both_loops(tmp_path: Any) -> None:
+    # seqgate verify --synthetic compares each probe with the PyTorch module's own cell calls
+    names = cli_export_verify(tmp_path, FACTORY)
+    want = {f"{cell}/forward/{kind}" for cell in ("enc", "dec") for kind in ("hidden_sequence", "hidden_final")}
+    assert want | {"enc/forward/cell_final"} <= names, names

@@ -246,7 +246,9 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     """The folded GraphModule (module docstring: trace twice, fold, prove the graphs equal).
 
     ``user_cells`` are traced as leaves; one that is not part of a folded loop is traced again
-    inlined (a shared block called twice stays an ordinary part of the graph).
+    inlined (a shared block called twice stays an ordinary part of the graph). Beside a built-in
+    cell, every user cell candidate is such a leaf too (a user cell's loop feeding an
+    ``nn.GRUCell`` loop).
     """
     from seqgate.export.torch.branches import compare
     from seqgate.export.torch.inputs import Plan
@@ -255,7 +257,7 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
 
     specs = [_spec(n, d, (declared or {}).get(n)) for n, d in dims.items()]
     plan = Plan(params=params, concrete=concrete, inputs=specs)
-    leaves = frozenset(id(m) for m in user_cells)
+    leaves = frozenset(id(m) for m in (user_cell_candidates(module) if has_cells(module) else user_cells))
     sizes_ab = symbol_values(specs)
     samples = [dict(zip(params, sample_args(plan, sizes, seed), strict=True))
                for sizes, seed in zip(sizes_ab, (0, 1), strict=True)]
