@@ -383,3 +383,9 @@ def test_cli_export_and_verify_compare_every_step_of_both_loops(tmp_path: Any) -
     names = cli_export_verify(tmp_path, FACTORY)
     want = {f"{cell}/forward/{kind}" for cell in ("enc", "dec") for kind in ("hidden_sequence", "hidden_final")}
     assert want | {"enc/forward/cell_final"} <= names, names
+
+
+def test_two_exports_of_a_peeled_loop_are_byte_identical() -> None:
+    # project rule (DEVELOPERS.md): deterministic output, names from the builder's scopes
+    m = randomize(UserLoop(LearnedStartLSTM()), seed=8)
+    assert export(m).SerializeToString() == export(m).SerializeToString()
