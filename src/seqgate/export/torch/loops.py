@@ -178,8 +178,8 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
     proxy_class = _proxy_class()
 
     class ValueTracer(_SampleValues, base):  # type: ignore[misc, valid-type]
-        def __init__(self) -> None:
-            super().__init__()
+        def __init__(self, **kwargs: Any) -> None:
+            super().__init__(**kwargs)
             self.inputs = inputs
             self.values: dict[Any, Any] = {}
             self.computing = False
@@ -320,14 +320,16 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
 
     from seqgate.export.torch.asserts import SKIPPED
     from seqgate.export.torch.branches import BranchError, DataDependent
+    from seqgate.export.torch.packing import packing_leaves, unwrapped
     from seqgate.export.torch.subclassed import base_calls_traced
     from seqgate.export.torch.untraceable import SampleRunFailed, run_failure, untraceable
 
-    tracer = tracer_cls()
-    tracer.record_stack_traces = True
     try:
-        with _factories_recorded(tracer), base_calls_traced(module):
-            graph = tracer.trace(module, concrete_args=dict(concrete) or None)
+        with packing_leaves(module) as leaves, base_calls_traced(module):
+            tracer = tracer_cls(autowrap_functions=leaves)
+            tracer.record_stack_traces = True
+            with _factories_recorded(tracer):
+                graph = unwrapped(tracer.trace(module, concrete_args=dict(concrete) or None), leaves)
     except DataDependent as e:
         raise BranchError(label, [e.unsupported]) from None
     except SeqgateError:
