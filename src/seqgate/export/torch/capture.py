@@ -110,11 +110,12 @@ def _export(module: Any, opset: int, metadata: dict[str, str], inputs: list[str]
     if walk.problems:  # a refused step inside an unrolled loop is reported once, not once per step
         raise UnsupportedModelError(label, list(dict.fromkeys(walk.problems)))
     _declare_outputs(b, result, metas.get(_output_node(gm).name), plan, sa, sb, label)
+    from seqgate.export.torch.branches import RANGED, ranged_metadata
     from seqgate.export.torch.packing import padding_metadata
 
     inputs_meta = {**renamed_metadata(padding_metadata(plan), onnx_names),
                    **range_metadata(plan.inputs, onnx_names), **structure_metadata(module)}
-    skipped = skipped_metadata(gm.meta.get(SKIPPED, []))
+    skipped = {**skipped_metadata(gm.meta.get(SKIPPED, [])), **ranged_metadata(gm.meta.get(RANGED, []))}
     return b.build({**metadata, **inputs_meta, **skipped})
 
 
