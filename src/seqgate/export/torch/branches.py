@@ -240,6 +240,6 @@ def ranged_note(entry: dict[str, Any]) -> str:
     """One line for ``seqgate export``: the branch, its outcome and the ranges that decided it."""
     why = [f"{k} in {v}" for k, v in entry.get("ranges", {}).items()]
     why += [f"{d} >= 1" for d in entry.get("dims", []) if d not in entry.get("ranges", {})]
-    return (f"branch decided by the declared value ranges ({', '.join(why) or 'fixed sizes'}: "
-            f"{entry['outcome']} for every input in them; the ONNX file is right only inside them): "
-            f"{entry['where']}")
+    return (f"branch decided by the declared value ranges ({', '.join(why) or 'fixed sizes'}: the value "
+            f"it tests is {entry['outcome']} for every input in them; the ONNX file is right only inside "
+            f"them): {entry['where']}")
