@@ -338,7 +338,6 @@ def _window_sets(model: Any, specs: list[InputSpec], windows: list[str | Path], 
     from seqgate.onnxfile.input_meta import read_ranges
     from seqgate.verify.padded_steps import add_padding_counts
     from seqgate.verify.synthetic import read_padding, require_steps, synthetic_sets
-
     from seqgate.verify.value_ranges import check_value_ranges
 
     padding, ranges = read_padding(model), read_ranges(model)

@@ -238,8 +238,12 @@ def read_ranged(model: Any) -> list[dict[str, Any]]:
 
 def ranged_note(entry: dict[str, Any]) -> str:
     """One line for ``seqgate export``: the branch, its outcome and the ranges that decided it."""
-    why = [f"{k} in {v}" for k, v in entry.get("ranges", {}).items()]
-    why += [f"{d} >= 1" for d in entry.get("dims", []) if d not in entry.get("ranges", {})]
+    from seqgate.util.dims import split_dim
+
+    ranges = entry.get("ranges", {})
+    named = {split_dim(b)[0] for v in ranges.values() for b in v.split("..")}  # said by the range
+    why = [f"{k} in {v}" for k, v in ranges.items()]
+    why += [f"{d} >= 1" for d in entry.get("dims", []) if split_dim(d)[0] not in named]
     return (f"branch decided by the declared value ranges ({', '.join(why) or 'fixed sizes'}: the value "
             f"it tests is {entry['outcome']} for every input in them; the ONNX file is right only inside "
             f"them): {entry['where']}")
