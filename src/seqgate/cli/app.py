@@ -85,9 +85,12 @@ def export(
         typer.echo(f"streaming: {len(states)} state inputs ({', '.join(states)}); feed each *_out back "
                    f"as its *_in on the next call (metadata seqgate.streaming)")
     from seqgate.export.torch.asserts import read_skipped
+    from seqgate.export.torch.branches import ranged_note, read_ranged
 
     for line in read_skipped(res.model):
         typer.echo(f"note: assert on traced values taken to hold (the ONNX file does not check it): {line}")
+    for entry in read_ranged(res.model):
+        typer.echo(f"note: {ranged_note(entry)}")
     if untrained:
         typer.echo("note: UNTRAINED model (--untrained): exported with the factory's initial parameters.")
 

@@ -338,13 +338,16 @@ def _window_sets(model: Any, specs: list[InputSpec], windows: list[str | Path], 
     from seqgate.onnxfile.input_meta import read_ranges
     from seqgate.verify.padded_steps import add_padding_counts
     from seqgate.verify.synthetic import read_padding, require_steps, synthetic_sets
+    from seqgate.verify.value_ranges import check_value_ranges
 
-    padding = read_padding(model)
+    padding, ranges = read_padding(model), read_ranges(model)
     recs = [load_recording(w, specs) for w in windows]
+    for rec in recs:  # the graph is right only inside the declared value ranges
+        check_value_ranges(rec, specs, ranges)
     add_padding_counts(recs, padding)
     if synthetic:
         stats = feature_stats(recs[0], batch_size) if recs else None
-        recs += synthetic_sets(specs, stats, seed, padding=padding, ranges=read_ranges(model))
+        recs += synthetic_sets(specs, stats, seed, padding=padding, ranges=ranges)
     require_steps(specs, recs)  # a verification of one step would pass without testing recurrence
     return recs
 

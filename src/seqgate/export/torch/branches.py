@@ -11,7 +11,12 @@ Contract:
 - ``bool(v)`` on a traced value is decided by :func:`decide`. The fx nodes behind ``v`` are
   followed back to their *size reads* (``x.size(d)``, ``x.shape[d]``, ``x.dim()``,
   ``x.numel()``). Reaching a tensor's data instead (``if x.sum() > 0``) is refused (exit 3):
-  that choice changes with the numbers, so no single graph is right.
+  that choice changes with the numbers, so no single graph is right — unless the declared value
+  ranges of the inputs (``--input lengths:batch:int64=1..time``) prove the outcome for every
+  input in them (``rangeproof``, ``intervals``): ``if lengths.max() == 0`` is then False for
+  every valid input and is decided so, recorded in ``Decisions.ranged`` (written to
+  ``seqgate.range_decided_branches``, printed by ``seqgate export``) and compared across the
+  two traces like any other decision.
 - Each decision is recorded with the sizes it read; sizes turned into Python numbers
   (``int(x.size(2))``, ``len(x)``) are recorded too (:func:`record_number`).
 - The forward is traced at two sample sizes (``loops.loop_trace``). :func:`compare` refuses
@@ -24,16 +29,12 @@ Contract:
 
 from __future__ import annotations
 
-import operator
 import traceback
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from seqgate.errors import Unsupported, UnsupportedModelError
-
-_SIZE_METHODS = ("size", "dim", "numel", "nelement", "ndimension")
-_SIZE_ATTRS = ("shape", "ndim")
 
 
 class BranchError(UnsupportedModelError):
@@ -42,9 +43,11 @@ class BranchError(UnsupportedModelError):
 
 @dataclass
 class Decisions:
-    """What one trace decided: ``(where, kind, value, sizes read)`` in trace order."""
+    """What one trace decided: ``(where, kind, value, sizes read)`` in trace order, and the
+    branches on tensor data that the declared value ranges decided (``ranged``)."""
 
     records: list[tuple[str, str, Any, tuple[Any, ...]]] = field(default_factory=list)
+    ranged: list[dict[str, Any]] = field(default_factory=list)  # branches the value ranges decided
 
 
 class DataDependent(Exception):
@@ -67,21 +70,11 @@ def user_line() -> str:
     return f"{Path(f.filename).name}:{f.lineno}: `{(f.line or '').strip()}`"
 
 
-def _size_read(n: Any) -> bool:
-    """Is ``n`` a read of a tensor's sizes (``x.size(d)``, ``x.shape``, ``x.shape[d]``)?"""
-    if n.op == "call_method" and n.target in _SIZE_METHODS:
-        return True
-    if n.op == "call_function" and n.target is getattr and len(n.args) > 1:
-        return n.args[1] in _SIZE_ATTRS
-    if n.op == "call_function" and n.target is operator.getitem and n.args:
-        first = n.args[0]
-        return hasattr(first, "op") and _size_read(first)
-    return False
-
-
 def sizes_behind(node: Any, values: dict[Any, Any]) -> tuple[Any, ...] | None:
     """The size values ``node`` is computed from, or None when it reads tensor data."""
     import torch
+
+    from seqgate.export.torch.rangeproof import size_read
 
     sizes: list[Any] = []
     stack, seen = [node], set()
@@ -90,7 +83,7 @@ def sizes_behind(node: Any, values: dict[Any, Any]) -> tuple[Any, ...] | None:
         if n in seen:
             continue
         seen.add(n)
-        if _size_read(n):
+        if size_read(n):
             # x.shape[1] is met before x.shape: only the element read counts, not the whole
             # shape (which holds the batch size)
             sizes.append(_plain(values.get(n)))
@@ -108,18 +101,53 @@ def _plain(v: Any) -> Any:
 
 
 def decide(tracer: Any, proxy: Any, decisions: Decisions) -> bool:
-    """``bool(proxy)`` from its sample value, recorded; refuses a choice made on tensor data."""
+    """``bool(proxy)`` from its sample value when it reads only sizes, from the declared value
+    ranges when they prove it (``rangeproof``), recorded; refuses any other choice on tensor data."""
     where = user_line()
     sizes = sizes_behind(proxy.node, tracer.values)
     if sizes is None:
-        raise DataDependent(Unsupported(
-            where, "a Python if/while/assert (control flow) decides on tensor data, so the graph "
-                   "would change with the numbers",
-            "express the choice with tensor operations (torch.where, masks), or decide on a "
-            "constructor argument"))
+        return _by_range(tracer, proxy, decisions, where)
     value = bool(tracer.values[proxy.node])
     decisions.records.append((where, "branch", value, sizes))
     return value
+
+
+def _by_range(tracer: Any, proxy: Any, decisions: Decisions, where: str) -> bool:
+    """A branch on tensor data decided for every input in the declared domain, or refused."""
+    from seqgate.errors import InternalError
+    from seqgate.export.torch.rangeproof import prove
+
+    proof, attempt = prove(proxy.node, tracer.values, tracer.domain)
+    if proof is None:
+        raise DataDependent(Unsupported(where, DATA_BRANCH, data_hint(attempt, tracer.domain)))
+    if bool(tracer.values[proxy.node]) != proof.value:
+        raise InternalError(f"{where}: the declared value ranges prove this branch {proof.value}, but the "
+                            f"sample run took it as {not proof.value}; this is a bug in seqgate.")
+    decisions.records.append((where, "branch", proof.value, proof.sizes))
+    entry = {"where": where, "outcome": proof.value, "ranges": proof.ranges, "dims": proof.dims}
+    if entry not in decisions.ranged:
+        decisions.ranged.append(entry)
+    return proof.value
+
+
+DATA_BRANCH = ("a Python if/while/assert (control flow) decides on tensor data, so the graph would "
+               "change with the numbers")
+
+
+def data_hint(attempt: Any, domain: Any) -> str:
+    """What to do about a data branch: tensor operations, or a declared range that decides it."""
+    hint = ("express the choice with tensor operations (torch.where, masks), or decide on a "
+            "constructor argument")
+    if attempt.unranged:
+        name = attempt.unranged[0]
+        dims = ",".join(str(d) for d in domain.dims.get(name, ("batch",)))
+        hint += (f"; if it only guards inputs that never occur, declare the value range of {name} "
+                 f"(--input {name}:{dims}:int64=LOW..HIGH) so that seqgate can prove the outcome for "
+                 f"every input in it")
+    elif attempt.ranges:
+        shown = ", ".join(f"{k} in {v}" for k, v in attempt.ranges.items())
+        hint += f"; the declared value ranges ({shown}) do not decide it"
+    return hint
 
 
 def record_number(decisions: Decisions, value: Any) -> None:
@@ -183,3 +211,39 @@ def fix_hint(symbol: str | None, dims: dict[str, tuple[int | str, ...]]) -> str:
     fixed = ",".join("24" if x == symbol else str(x) for x in d)
     return (f"fix {symbol} for the export with --input {name}:{fixed} (24 standing for the size "
             f"you export for), or decide on a constructor argument instead")
+
+
+RANGED_KEY = "seqgate.range_decided_branches"
+RANGED = "seqgate_range_decided"  # key of the list in a traced GraphModule's ``meta``
+
+
+def ranged_metadata(entries: list[dict[str, Any]]) -> dict[str, str]:
+    """``{RANGED_KEY: JSON list}`` of the branches the value ranges decided (each ``{"where":
+    "file.py:LINE: `code`", "outcome": bool, "ranges": {input: "LOW..HIGH"}, "dims": [dim, ...]}``,
+    dims being the dynamic dims taken as at least 1), else nothing."""
+    import json
+
+    return {RANGED_KEY: json.dumps(entries)} if entries else {}
+
+
+def read_ranged(model: Any) -> list[dict[str, Any]]:
+    """The range-decided branches an exported ModelProto records (empty when none)."""
+    import json
+
+    for p in model.metadata_props:
+        if p.key == RANGED_KEY:
+            return [dict(x) for x in json.loads(p.value)]
+    return []
+
+
+def ranged_note(entry: dict[str, Any]) -> str:
+    """One line for ``seqgate export``: the branch, its outcome and the ranges that decided it."""
+    from seqgate.util.dims import split_dim
+
+    ranges = entry.get("ranges", {})
+    named = {split_dim(b)[0] for v in ranges.values() for b in v.split("..")}  # said by the range
+    why = [f"{k} in {v}" for k, v in ranges.items()]
+    why += [f"{d} >= 1" for d in entry.get("dims", []) if split_dim(d)[0] not in named]
+    return (f"branch decided by the declared value ranges ({', '.join(why) or 'fixed sizes'}: the value "
+            f"it tests is {entry['outcome']} for every input in them; the ONNX file is right only inside "
+            f"them): {entry['where']}")

@@ -110,11 +110,12 @@ def _export(module: Any, opset: int, metadata: dict[str, str], inputs: list[str]
     if walk.problems:  # a refused step inside an unrolled loop is reported once, not once per step
         raise UnsupportedModelError(label, list(dict.fromkeys(walk.problems)))
     _declare_outputs(b, result, metas.get(_output_node(gm).name), plan, sa, sb, label)
+    from seqgate.export.torch.branches import RANGED, ranged_metadata
     from seqgate.export.torch.packing import padding_metadata
 
     inputs_meta = {**renamed_metadata(padding_metadata(plan), onnx_names),
                    **range_metadata(plan.inputs, onnx_names), **structure_metadata(module)}
-    skipped = skipped_metadata(gm.meta.get(SKIPPED, []))
+    skipped = {**skipped_metadata(gm.meta.get(SKIPPED, [])), **ranged_metadata(gm.meta.get(RANGED, []))}
     return b.build({**metadata, **inputs_meta, **skipped})
 
 
@@ -123,19 +124,14 @@ def trace(module: Any, concrete: dict[str, Any], label: str) -> Any:
     """``torch.fx`` GraphModule of ``module`` with asserts on fixed defaults and dead code removed."""
     import torch.fx
 
-    from seqgate.export.torch.packing import packing_leaves
+    from seqgate.export.torch.packing import packing_leaves, unwrapped
     from seqgate.export.torch.subclassed import base_calls_traced
 
     try:
         with packing_leaves(module) as leaves, base_calls_traced(module):
             tracer = tracer_class()(autowrap_functions=leaves)
             tracer.record_stack_traces = True
-            graph = tracer.trace(module, concrete_args=dict(concrete) or None)
-        for n in graph.nodes:
-            # fx would emit a process-wide wrap("torch.nn.utils.rnn.…") into the generated code,
-            # which breaks every later trace (KeyError); this graph is never traced again
-            if n.op == "call_function" and any(n.target is f for f in leaves):
-                n.meta.pop("is_wrapped", None)
+            graph = unwrapped(tracer.trace(module, concrete_args=dict(concrete) or None), leaves)
         gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
         gm.meta[SKIPPED] = list(tracer.skipped.lines)
     except SeqgateError:

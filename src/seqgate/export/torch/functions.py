@@ -440,6 +440,8 @@ TABLE.add(torch.ones, sig=_factory)(_fill_entry(1.0))
           pin_memory=False, requires_grad=False: None)
 def _full(b: GraphBuilder, call: TorchCall, a: dict[str, Any]) -> str:
     v = a["fill_value"]
+    if not isinstance(v, int | float):
+        raise Refusal("fill_value is not a number fixed at export time (a size of a dynamic dim, or a tensor)")
     dtype = a["dtype"] or (torch.int64 if isinstance(v, int) and not isinstance(v, bool) else torch.float32)
     return _filled(b, shape_vector(b, size_parts(b, [a["size"]])), float(v), dtype)
 

@@ -166,24 +166,30 @@ class _SampleValues:
         return None
 
 
-def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int] = frozenset()) -> Any:
+def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int] = frozenset(),
+                      domain: Any = None) -> Any:
     """A tracer class derived from ``base`` (capture's leaf rules) that carries sample values.
+
+    ``domain`` (``intervals.Domain``: declared value ranges and dims) lets a branch on tensor data
+    be decided when the ranges prove its outcome (``branches.decide``).
 
     ``computing`` is set while a sample value is evaluated, so module calls inside that
     evaluation run eagerly instead of being recorded.
     """
     from seqgate.export.torch.asserts import assertion_outcome
     from seqgate.export.torch.branches import Decisions, decide
+    from seqgate.export.torch.intervals import Domain
 
     proxy_class = _proxy_class()
 
     class ValueTracer(_SampleValues, base):  # type: ignore[misc, valid-type]
-        def __init__(self) -> None:
-            super().__init__()
+        def __init__(self, **kwargs: Any) -> None:
+            super().__init__(**kwargs)
             self.inputs = inputs
             self.values: dict[Any, Any] = {}
             self.computing = False
             self.decisions = Decisions()
+            self.domain = domain or Domain()
 
         def to_bool(self, obj: Any) -> bool:
             held = assertion_outcome(self.skipped)  # an `assert` is traced past (asserts.py)
@@ -252,10 +258,12 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     """
     from seqgate.export.torch.branches import compare
     from seqgate.export.torch.inputs import Plan
+    from seqgate.export.torch.intervals import Domain
     from seqgate.export.torch.loopfold import canonical
     from seqgate.export.torch.samples import sample_args, symbol_values
 
     specs = [_spec(n, d, (declared or {}).get(n)) for n, d in dims.items()]
+    domain = Domain({s.name: (s.low, s.high) for s in specs if getattr(s, "low", None) is not None}, dict(dims))
     plan = Plan(params=params, concrete=concrete, inputs=specs)
     leaves = frozenset(id(m) for m in (user_cell_candidates(module) if has_cells(module) else user_cells))
     sizes_ab = symbol_values(specs)
@@ -263,7 +271,7 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
                for sizes, seed in zip(sizes_ab, (0, 1), strict=True)]
     notes: list[dict[str, Any]] = [{}, {}]  # cells called per step but not folded, per sample
     while True:  # both traces with the same leaves: the set only shrinks, so this ends
-        traced = [_folded_trace(module, base_tracer, concrete, args, leaves, label) for args in samples]
+        traced = [_folded_trace(module, base_tracer, concrete, args, leaves, label, domain) for args in samples]
         for note, t in zip(notes, traced, strict=True):
             note.update(t[3])
         settled = traced[0][2] & traced[1][2]
@@ -292,7 +300,8 @@ def _spec(name: str, dims: tuple[int | str, ...], declared: Any) -> Any:
 
 
 def _folded_trace(module: Any, base_tracer: type, concrete: dict[str, Any], args: dict[str, Any],
-                  leaves: frozenset[int], label: str) -> tuple[Any, Any, frozenset[int], dict[str, Any]]:
+                  leaves: frozenset[int], label: str,
+                  domain: Any = None) -> tuple[Any, Any, frozenset[int], dict[str, Any]]:
     """Trace with ``leaves`` kept whole, fold cell loops; retrace inlining every user cell that
     was not part of a folded loop until none is left. Returns the graph, its decisions, the leaves
     it ended with (a shared block called twice stays an ordinary part of the graph) and, for each
@@ -301,7 +310,7 @@ def _folded_trace(module: Any, base_tracer: type, concrete: dict[str, Any], args
 
     notes: dict[str, tuple[int, str, str]] = {}
     while True:
-        tracer = make_value_tracer(base_tracer, args, leaves)
+        tracer = make_value_tracer(base_tracer, args, leaves, domain)
         gm, values, decisions = _trace_once(module, tracer, concrete, label)
         fold_loops(gm, values, lambda m, ls=leaves: isinstance(m, cell_classes()) or id(m) in ls, label)
         left = {id(gm.get_submodule(n.target)) for n in gm.graph.nodes
@@ -321,15 +330,17 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
     import torch.fx
 
     from seqgate.export.torch.asserts import SKIPPED
-    from seqgate.export.torch.branches import BranchError, DataDependent
+    from seqgate.export.torch.branches import RANGED, BranchError, DataDependent
+    from seqgate.export.torch.packing import packing_leaves, unwrapped
     from seqgate.export.torch.subclassed import base_calls_traced
     from seqgate.export.torch.untraceable import SampleRunFailed, run_failure, untraceable
 
-    tracer = tracer_cls()
-    tracer.record_stack_traces = True
     try:
-        with factories_recorded(tracer), base_calls_traced(module):
-            graph = tracer.trace(module, concrete_args=dict(concrete) or None)
+        with packing_leaves(module) as leaves, base_calls_traced(module):
+            tracer = tracer_cls(autowrap_functions=leaves)
+            tracer.record_stack_traces = True
+            with factories_recorded(tracer):
+                graph = unwrapped(tracer.trace(module, concrete_args=dict(concrete) or None), leaves)
     except DataDependent as e:
         raise BranchError(label, [e.unsupported]) from None
     except SeqgateError:
@@ -340,21 +351,25 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
         raise UnsupportedModelError(label, [untraceable(module, e)]) from None
     gm = torch.fx.GraphModule(tracer.root, graph, type(module).__name__)
     gm.meta[SKIPPED] = list(tracer.skipped.lines)
+    gm.meta[RANGED] = list(tracer.decisions.ranged)
     return gm, tracer.values, tracer.decisions
 
 
 @contextmanager
 def factories_recorded(tracer: Any) -> Iterator[None]:
-    """``torch.zeros(x.size(0), H)`` is recorded as a node (its size stays dynamic) instead of
-    reading the sample's batch size; the function object in the node is the original."""
+    """``torch.zeros(x.size(0), H)`` (and ``ones``, and ``full((x.size(0),), v)``) is recorded as a
+    node (its size stays dynamic) instead of reading the sample's batch size; the function object
+    in the node is the original."""
     import torch
     import torch.fx
 
-    saved = {name: getattr(torch, name) for name in ("zeros", "ones")}
+    saved = {name: getattr(torch, name) for name in ("zeros", "ones", "full")}
 
     def wrap(orig: Any) -> Any:
         def factory(*size: Any, **kwargs: Any) -> Any:
             flat = list(size[0]) if len(size) == 1 and isinstance(size[0], list | tuple) else list(size)
+            if orig is saved["full"] and size:  # full(size, fill_value): the size, then the fill
+                flat = [*(size[0] if isinstance(size[0], list | tuple) else [size[0]]), *size[1:]]
             if getattr(tracer, "computing", False) or not any(isinstance(s, torch.fx.Proxy) for s in flat):
                 return orig(*size, **kwargs)
             return tracer.create_proxy("call_function", orig, tuple(size), kwargs)

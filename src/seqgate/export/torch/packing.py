@@ -90,6 +90,16 @@ def packing_leaves(root: Any = None) -> Iterator[tuple[Any, ...]]:
             cell.cell_contents = by_wrapper[id(cell.cell_contents)]
 
 
+def unwrapped(graph: Any, leaves: tuple[Any, ...]) -> Any:
+    """``graph`` without fx's ``is_wrapped`` mark on the packing calls: fx would emit a
+    process-wide ``wrap("torch.nn.utils.rnn.…")`` into the generated code, which breaks every
+    later trace (KeyError); a traced graph is never traced again."""
+    for n in graph.nodes:
+        if n.op == "call_function" and any(n.target is f for f in leaves):
+            n.meta.pop("is_wrapped", None)
+    return graph
+
+
 def _closure_cells(root: Any) -> list[Any]:
     """Closure cells of every submodule's ``forward`` that hold one of :data:`LEAVES`."""
     if root is None:
