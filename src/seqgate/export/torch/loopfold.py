@@ -205,7 +205,7 @@ def fold_loops(gm: Any, values: dict[Any, Any], is_cell: Any, label: str) -> Non
                 continue
             before = calls.index(chain.calls[0])
             after = len(calls) - 1 - calls.index(chain.calls[-1])
-            _rewrite(gm, target, chain, steps[0][:2], (before, after))  # type: ignore[index]
+            _rewrite(gm, target, chain, steps[0][:2], (before, after), values)  # type: ignore[index]
     if problems:
         raise UnsupportedModelError(label, problems)
     gm.graph.lint()
@@ -297,12 +297,15 @@ def _blocker(chain: _Chain) -> str | None:
     return None
 
 
-def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls: tuple[int, int]) -> None:
+def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls: tuple[int, int],
+             values: dict[Any, Any]) -> None:
+    """Replace the chain by the loop leaf; the leaf's items take the sample values of what they
+    replace, so a later loop over the collected sequence (a second layer) is recognised too."""
     x, axis = x_axis
     c0, last = chain.calls[0], chain.calls[-1]
     init: list[Any] = []
     template0 = _leaves(_state_args(c0), init)
-    template = _template(template0, chain)
+    template = _template(template0, chain, values.get(c0))
     col = _collector(chain)
     seq_path, seq_dim = (col[1], col[2]) if isinstance(col, tuple) else (None, 0)
     cls = cell_loop_class()
@@ -314,7 +317,9 @@ def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls
         loop.meta = dict(c0.meta)
         seq = g.call_function(operator.getitem, (loop, 0))
         fin = g.call_function(operator.getitem, (loop, 1))
+    values[fin] = values.get(last)
     if isinstance(col, tuple):
+        values[seq] = values.get(col[0])
         col[0].replace_all_uses_with(seq)
         g.erase_node(col[0])
         for u in col[3]:
@@ -325,8 +330,10 @@ def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls
     g.eliminate_dead_code()
 
 
-def _template(template0: Any, chain: _Chain) -> Any:
-    """Step-0 argument structure with ("init", j) leaves, checked against later steps' paths."""
+def _template(template0: Any, chain: _Chain, out0: Any) -> Any:
+    """Step-0 argument structure with ("init", j) leaves, and later steps' with ("path", p) leaves;
+    a path to a tuple of the output (``state = cell(x[:, t], state)`` with ``(h, c)`` returned) is
+    spelled out item by item from the sample output ``out0``, so every carried leaf is a tensor."""
     def conv(t: Any) -> Any:
         if isinstance(t, tuple) and len(t) == 2 and t[0] == "leaf":
             return ("init", t[1])
@@ -336,12 +343,21 @@ def _template(template0: Any, chain: _Chain) -> Any:
 
     def later(t: Any) -> Any:
         if isinstance(t, tuple) and len(t) == 2 and t[0] == "leaf":
-            return ("path", chain.paths[t[1]])
+            return _spelled(chain.paths[t[1]], out0)
         if isinstance(t, list | tuple):
             return type(t)(later(x) for x in t)
         return t
 
     return {"first": conv(template0), "later": later(chain.template_args)}
+
+
+def _spelled(path: Path, out: Any) -> Any:
+    v = out
+    for i in path:
+        v = v[i] if isinstance(v, tuple | list) and i < len(v) else None
+    if isinstance(v, tuple | list):
+        return type(v)(_spelled((*path, i), out) for i in range(len(v)))
+    return ("path", path)
 
 
 def _erase_tree(g: Any, n: Any) -> None:

@@ -252,7 +252,9 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     """The folded GraphModule (module docstring: trace twice, fold, prove the graphs equal).
 
     ``user_cells`` are traced as leaves; one that is not part of a folded loop is traced again
-    inlined (a shared block called twice stays an ordinary part of the graph).
+    inlined (a shared block called twice stays an ordinary part of the graph). Beside a built-in
+    cell, every user cell candidate is such a leaf too (a user cell's loop feeding an
+    ``nn.GRUCell`` loop).
     """
     from seqgate.export.torch.branches import compare
     from seqgate.export.torch.inputs import Plan
@@ -263,7 +265,7 @@ def loop_trace(module: Any, base_tracer: type, concrete: dict[str, Any], params:
     specs = [_spec(n, d, (declared or {}).get(n)) for n, d in dims.items()]
     domain = Domain({s.name: (s.low, s.high) for s in specs if getattr(s, "low", None) is not None}, dict(dims))
     plan = Plan(params=params, concrete=concrete, inputs=specs)
-    leaves = frozenset(id(m) for m in user_cells)
+    leaves = frozenset(id(m) for m in (user_cell_candidates(module) if has_cells(module) else user_cells))
     sizes_ab = symbol_values(specs)
     samples = [dict(zip(params, sample_args(plan, sizes, seed), strict=True))
                for sizes, seed in zip(sizes_ab, (0, 1), strict=True)]
@@ -337,7 +339,7 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
         with packing_leaves(module) as leaves, base_calls_traced(module):
             tracer = tracer_cls(autowrap_functions=leaves)
             tracer.record_stack_traces = True
-            with _factories_recorded(tracer):
+            with factories_recorded(tracer):
                 graph = unwrapped(tracer.trace(module, concrete_args=dict(concrete) or None), leaves)
     except DataDependent as e:
         raise BranchError(label, [e.unsupported]) from None
@@ -354,7 +356,7 @@ def _trace_once(module: Any, tracer_cls: type, concrete: dict[str, Any],
 
 
 @contextmanager
-def _factories_recorded(tracer: Any) -> Iterator[None]:
+def factories_recorded(tracer: Any) -> Iterator[None]:
     """``torch.zeros(x.size(0), H)`` (and ``ones``, and ``full((x.size(0),), v)``) is recorded as a
     node (its size stays dynamic) instead of reading the sample's batch size; the function object
     in the node is the original."""
@@ -368,7 +370,7 @@ def _factories_recorded(tracer: Any) -> Iterator[None]:
             flat = list(size[0]) if len(size) == 1 and isinstance(size[0], list | tuple) else list(size)
             if orig is saved["full"] and size:  # full(size, fill_value): the size, then the fill
                 flat = [*(size[0] if isinstance(size[0], list | tuple) else [size[0]]), *size[1:]]
-            if tracer.computing or not any(isinstance(s, torch.fx.Proxy) for s in flat):
+            if getattr(tracer, "computing", False) or not any(isinstance(s, torch.fx.Proxy) for s in flat):
                 return orig(*size, **kwargs)
             return tracer.create_proxy("call_function", orig, tuple(size), kwargs)
         return factory

@@ -10,15 +10,20 @@ time axis whose body is the cell's own step:
 - the cell's ``forward`` is traced with ``torch.fx`` (Linear etc. as leaves) and mapped by the
   same tables as any forward, into a separate graph: the Scan body;
 - carried values: the leaves of the cell's output (``(h, c)`` → h, c; ``h`` → h); every leaf
-  must be passed back as state (the loop's paths), and step 0 must receive explicit initial
-  states of the same structure (a cell that starts from ``None`` is refused);
+  must be passed back as state (the loop's paths);
+- step 0 with explicit initial states of the same structure starts the loop from them; a first
+  call that differs (``state = None`` first, ``None if t == 0 else (h, c)``, fewer arguments) is
+  *peeled* (:func:`peeled_loop`, ``firststep``): the cell traced for step 0's own arguments on
+  ``X[:, 0]``, then ``If(T > 1)`` the loop above over ``X[:, 1:]`` from its outputs (the first
+  output concatenated before the loop's sequence), else the first step alone — exact whatever
+  the cell does without a state (zeros, a learned state, ``tanh(W x_0)``);
 - scan input: X along the loop's axis (``scan_input_axes``); scan output: the collected leaf
   (or the first leaf when nothing is collected) stacked on the collector's dim;
 - probes (``runtimes.torch_cells``): ``<cell>/forward/hidden_sequence`` (collected leaf per step),
   ``hidden_final`` and, for a second carried leaf, ``cell_final``.
 
 Equation: ``S_0 = init``; ``S_t = cell(X[:, t], S_{t−1})``, ``Y[:, t] = S_t[h]`` — what the
-Python loop computes, op for op.
+Python loop computes, op for op (peeled: ``S_1 = cell(X[:, 0], <first call's arguments>)``).
 """
 
 from __future__ import annotations
@@ -45,48 +50,105 @@ def _paths(template: Any, out: list[tuple[Any, Path]], at: Path = ()) -> None:
             _paths(t, out, (*at, i))
 
 
-def _carried(m: Any) -> list[tuple[Path, Path, int]]:
-    """(output path, argument position, init index) of each carried leaf, in output order."""
+def _carried(m: Any) -> tuple[list[tuple[Path, Path, int]], bool]:
+    """(output path, argument position, init index) of each carried leaf, in output order, and
+    whether the first call must be peeled (it does not get an initial state for every carried
+    leaf: no state, or other arguments; the init index is then unused)."""
     later: list[tuple[Any, Path]] = []
     first: list[tuple[Any, Path]] = []
     _paths(m.template["later"], later)
     _paths(m.template["first"], first)
     init_at = {pos: leaf[1] for leaf, pos in first if leaf[0] == "init"}
-    carried = []
-    for leaf, pos in later:
-        if pos not in init_at:
-            raise Refusal(f"the first call of {m.cell_name} gets no initial state where later steps get "
-                          "the previous state", "pass explicit initial states (zeros) to the first call")
-        carried.append((leaf[1], pos, init_at[pos]))
-    return sorted(carried)
+    peel = any(pos not in init_at for _, pos in later) or _shape(m.template["first"]) != _shape(
+        m.template["later"])
+    return sorted((leaf[1], pos, -1 if peel else init_at[pos]) for leaf, pos in later), peel
 
 
-def user_cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
-    """Emit the Scan (module docstring); returns (collected sequence, last output structure)."""
-    m = call.module
-    x = want_tensor(call.args[0], "input")
-    init = list(call.args[1:])
-    carried = _carried(m)
-    states = [want_tensor(init[j], "initial state") for _, _, j in carried]
-    if x.rank != 3 or any(s.rank != 2 for s in states):
-        raise Refusal("a user cell over tensors other than [batch, time, I] with [batch, H] states")
-    out_paths = [p for p, _, _ in carried]
+def _shape(template: Any) -> Any:
+    """The argument structure with every state leaf alike (``None`` and constants kept)."""
+    if isinstance(template, tuple) and len(template) == 2 and template[0] in ("init", "path"):
+        return "state"
+    if isinstance(template, list | tuple):
+        return (type(template).__name__, *[_shape(t) for t in template])
+    return repr(template)
+
+
+def _seq_index(m: Any, out_paths: list[Path]) -> int:
     seq_path = m.seq_path if m.seq_path is not None else out_paths[0]
     if seq_path not in out_paths:
         raise Refusal("the loop collects a value that is not carried state")
-    body = _body(b, call.capture, m, x, states, carried, out_paths.index(seq_path))
+    return out_paths.index(seq_path)
+
+
+def user_cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
+    """Emit the Scan or native node (module docstring); returns (collected sequence, last output
+    structure). A first call that differs from later calls is peeled (:func:`peeled_loop`)."""
+    m = call.module
+    x = want_tensor(call.args[0], "input")
+    carried, peel = _carried(m)
+    if x.rank != 3:
+        raise Refusal("a user cell over tensors other than [batch, time, I] with [batch, H] states")
+    if peel:
+        return peeled_loop(b, call, carried)
+    init = list(call.args[1:])
+    states = [want_tensor(init[j], "initial state") for _, _, j in carried]
+    if any(s.rank != 2 for s in states):
+        raise Refusal("a user cell over tensors other than [batch, time, I] with [batch, H] states")
+    out_paths = [p for p, _, _ in carried]
+    seq_index = _seq_index(m, out_paths)
+    seq, finals, form = _loop(b, call.capture, m, x, states, carried, seq_index)
+    _probes(b, m, seq, finals, out_paths, out_paths[seq_index], form)
+    return (seq if m.seq_path is not None else None, _structure(out_paths, finals))
+
+
+def _loop(b: GraphBuilder, capture: Any, m: Any, x: TV, states: list[TV], carried: list[tuple[Path, Path, int]],
+          seq_index: int) -> tuple[str, list[str], str]:
+    """The loop over ``x``'s time axis from ``states``: ONE native node when ``core.cellmatch``
+    proves the step, else a Scan. (collected sequence, final states in carried order, native form
+    or "")."""
+    body = _body(b, capture, m, x, states, carried, seq_index)
     cell, _ = match_step(body, len(carried))
-    if cell is not None and cell.h_state == out_paths.index(seq_path):
+    if cell is not None and cell.h_state == seq_index:
         seq, finals = _native(b, m, x, states, cell)
-        _probes(b, m, seq, finals, out_paths, seq_path, cell.form)
-        return (seq if m.seq_path is not None else None, _structure(out_paths, finals))
+        return seq, finals, cell.form
     finals = [b.fresh("state") for _ in carried]
     seq = b.fresh("sequence")
     b.node("Scan", [s.name for s in states] + [x.name], [*finals, seq], body=body,
            num_scan_inputs=1, scan_input_axes=[m.axis], scan_output_axes=[m.seq_dim])
-    _probes(b, m, seq, finals, out_paths, seq_path)
-    last = _structure(out_paths, finals)
-    return (seq if m.seq_path is not None else None, last)
+    return seq, finals, ""
+
+
+def peeled_loop(b: GraphBuilder, call: TorchCall, carried: list[tuple[Path, Path, int]]) -> Any:
+    """The first step traced for its own arguments (``firststep``), then the loop over steps
+    1..T−1 from its outputs: ``If(T > 1)`` runs that loop and concatenates the first step's output
+    before the loop's sequence, else (T = 1) returns the first step alone. Exact for any first call."""
+    import numpy as np
+
+    from seqgate.export.torch.firststep import branch_graph, first_step
+
+    m = call.module
+    x = want_tensor(call.args[0], "input")
+    out_paths = [p for p, _, _ in carried]
+    seq_index = _seq_index(m, out_paths)
+    x0 = b.op("Gather", [x.name, b.scalar(0, "step0", np.int64)], axis=m.axis)
+    first = first_step(b, call.capture, m, TV(x0, (x.shape[0], x.shape[2]), x.dtype), list(call.args[1:]),
+                       out_paths)
+    rest = GraphBuilder(b.opset, f"{m.cell_name}_rest", "torch")
+    x_shape = tuple(None if i == m.axis else d for i, d in enumerate(x.shape))
+    x_rest = TV(rest.slice(x.name, [1], [int(np.iinfo(np.int64).max)], [m.axis]), x_shape, x.dtype)
+    seq, finals, form = _loop(rest, call.capture, m, x_rest, first, carried, seq_index)
+    head = rest.unsqueeze(first[seq_index].name, [m.seq_dim])
+    whole = rest.op("Concat", [head, seq], axis=m.seq_dim)
+    then = branch_graph(rest, [(whole, 3), *[(f, 2) for f in finals]], f"{m.cell_name}/rest/")
+    one = GraphBuilder(b.opset, f"{m.cell_name}_one_step", "torch")
+    outs = [(one.unsqueeze(first[seq_index].name, [m.seq_dim]), 3)]
+    outs += [(one.op("Identity", [f.name]), 2) for f in first]
+    other = branch_graph(one, outs, f"{m.cell_name}/one_step/")
+    steps = b.op("Gather", [b.op("Shape", [x.name]), b.scalar(m.axis, "time_axis", np.int64)], axis=0)
+    more = b.op("Greater", [steps, b.scalar(1, "one", np.int64)])
+    seq_all, *last = b.node("If", [more], 1 + len(carried), then_branch=then, else_branch=other)
+    _probes(b, m, seq_all, last, out_paths, out_paths[seq_index], form, peeled=True)
+    return (seq_all if m.seq_path is not None else None, _structure(out_paths, last))
 
 
 def _native(b: GraphBuilder, m: Any, x: TV, states: list[TV], cell: NativeCell) -> tuple[str, list[str]]:
@@ -124,19 +186,12 @@ def _structure(paths: list[Path], names: list[str]) -> Any:
 def _body(b: GraphBuilder, capture: Any, m: Any, x: TV, states: list[TV],
           carried: list[tuple[Path, Path, int]], seq_index: int) -> Any:
     """The Scan body: the cell's traced forward, walked into its own graph by ``capture.walk``."""
+    from seqgate.export.torch.firststep import trace_cell
     from seqgate.export.torch.inputs import InputSpec, forward_params, record_runs
 
     label = f"{m.cell_name} ({type(m.cell).__name__})"
     plan = forward_params(m.cell, {}, label)
-    tracer = capture.tracer_class()()
-    try:
-        import torch.fx
-
-        gm = capture.clean(torch.fx.GraphModule(m.cell, tracer.trace(m.cell), type(m.cell).__name__), label)
-    except Refusal:
-        raise
-    except Exception as e:
-        raise Refusal(f"the cell's forward cannot be traced ({type(e).__name__})") from None
+    gm = trace_cell(capture, m.cell, {}, label)
     if len(plan.params) < 2:
         raise Refusal("a cell whose forward takes no state argument")
     plan.concrete = {}
@@ -191,11 +246,13 @@ def _finish_body(sub: GraphBuilder, result: Any, specs: list[Any], carried: list
 
 
 def _probes(b: GraphBuilder, m: Any, seq: str, finals: list[str], paths: list[Path],
-            seq_path: Path, form: str = "") -> None:
+            seq_path: Path, form: str = "", peeled: bool = False) -> None:
     """Per-step and final state probes on the Scan's (or the native node's) outputs (Unsqueeze
     adds the direction axis); ``form`` names the recognised native form, "" for a Scan."""
     src = {"framework": "torch", "module": m.cell_name, "module_type": type(m.cell).__name__,
            "cell_calls": list(m.calls), "h_path": list(seq_path), "exported_as": form or "Scan"}
+    if peeled:
+        src["first_step"] = "peeled"
     others = [p for p in paths if p != seq_path]
     if others:
         src["c_path"] = list(others[0])
