@@ -76,10 +76,12 @@ def _first_plan(m: Any, x0: TV, init: list[Any], label: str) -> tuple[Any, dict[
             concrete[name] = t
         elif leaves and all(j is not None for j in leaves):
             states = [init[j] for j in leaves]  # type: ignore[index]
-            if any(not isinstance(s, TV) or s.rank != 2 or s.shape[1] is None for s in states):
-                raise Refusal(f"the first call of {m.cell_name} passes {name!r} other than [batch, H] tensors")
+            dims = _state_dims(states)
+            if dims is None:
+                raise Refusal(f"the first call of {m.cell_name} passes {name!r} other than tensors of one "
+                              "shape with one dynamic (batch) dim, such as [batch, H] or [1, batch, H]")
             parts = len(leaves) if isinstance(t, tuple | list) else 0
-            spec = InputSpec(name, ("batch", int(states[0].shape[1])), parts=parts)  # type: ignore[arg-type]
+            spec = InputSpec(name, dims, parts=parts)
             specs.append(spec)
             feeds.update(zip(spec.onnx_names, [s.name for s in states], strict=True))
         else:
@@ -88,6 +90,17 @@ def _first_plan(m: Any, x0: TV, init: list[Any], label: str) -> tuple[Any, dict[
     plan.concrete = concrete
     plan.inputs = specs
     return plan, feeds
+
+
+def _state_dims(states: list[Any]) -> tuple[int | str, ...] | None:
+    """The trace dims of first-call states: their shared shape with its one dynamic dim as batch
+    (``[batch, H]``, or ``[1, batch, H]`` that the cell squeezes); None when they have no such shape."""
+    if not states or any(not isinstance(s, TV) or s.shape != states[0].shape for s in states):
+        return None
+    shape = states[0].shape
+    if sum(d is None for d in shape) != 1:
+        return None
+    return tuple("batch" if d is None else int(d) for d in shape)
 
 
 def first_step(b: GraphBuilder, capture: Any, m: Any, x0: TV, init: list[Any],

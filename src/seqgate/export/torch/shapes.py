@@ -27,6 +27,7 @@ import builtins
 import operator
 from typing import Any
 
+import numpy as np
 import torch
 
 from seqgate.errors import Refusal
@@ -238,7 +239,7 @@ def _getattr(b: GraphBuilder, call: TorchCall, a: dict[str, Any]) -> Any:
     if name == "data":
         return x
     if name == "T":
-        return b.transpose(x.name, list(range(x.rank))[::-1])
+        return transposed(b, x.name, list(range(x.rank))[::-1])
     if name == "mT" and x.rank >= 2:
         return _transpose(b, x, -1, -2)
     raise Refusal(f"tensor attribute {name!r}")
@@ -292,17 +293,35 @@ def _flatten(b: GraphBuilder, call: TorchCall, a: dict[str, Any]) -> str:
     return flatten(b, want_tensor(a["input"]), want_int(a["start_dim"]), want_int(a["end_dim"]))
 
 
+def transposed(b: GraphBuilder, name: str, perm: list[int]) -> str:
+    """``Transpose``; of a constant (a weight: ``x @ self.w.t()``) the transposed constant itself,
+    so that recognisers of recurrent steps (``core.cellmatch``) see the weight."""
+    value = b.constant_value(name)
+    if value is not None:
+        return b.const(np.transpose(value, perm), f"{name}_t")
+    return b.transpose(name, perm)
+
+
 def _transpose(b: GraphBuilder, x: TV, d0: int, d1: int) -> str:
     perm = list(range(x.rank))
     i, j = x.axis(d0), x.axis(d1)
     perm[i], perm[j] = perm[j], perm[i]
-    return b.transpose(x.name, perm)
+    return transposed(b, x.name, perm)
 
 
 @TABLE.add(torch.transpose, "Tensor.transpose", torch.swapaxes, "Tensor.swapaxes", torch.swapdims,
           "Tensor.swapdims", sig=lambda input, dim0, dim1: None)
 def _transpose_entry(b: GraphBuilder, call: TorchCall, a: dict[str, Any]) -> str:
     return _transpose(b, want_tensor(a["input"]), want_int(a["dim0"]), want_int(a["dim1"]))
+
+
+@TABLE.add(torch.t, "Tensor.t", sig=lambda input: None)
+def _t(b: GraphBuilder, call: TorchCall, a: dict[str, Any]) -> str:
+    """``x.t()`` (torch docs: a 0-D or 1-D tensor is returned as is; a 2-D one transposed)."""
+    x = want_tensor(a["input"])
+    if x.rank > 2:
+        raise Refusal(f"t() of a rank-{x.rank} tensor (PyTorch accepts at most 2 dims)")
+    return b.op("Identity", [x.name]) if x.rank < 2 else transposed(b, x.name, [1, 0])
 
 
 @TABLE.add("Tensor.permute", sig=lambda input, *dims: None)
@@ -320,7 +339,7 @@ def _permute_to(b: GraphBuilder, x: TV, dims: list[Any]) -> str:
     perm = [x.axis(want_int(d, "a permutation entry")) for d in dims]
     if sorted(perm) != list(range(x.rank)):
         raise Refusal(f"permutation {dims} of a rank-{x.rank} tensor")
-    return b.transpose(x.name, perm)
+    return transposed(b, x.name, perm)
 
 
 @TABLE.add(torch.squeeze, "Tensor.squeeze", sig=lambda input, dim=None: None)

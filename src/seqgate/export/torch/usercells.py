@@ -74,10 +74,14 @@ def _shape(template: Any) -> Any:
 
 
 def _seq_index(m: Any, out_paths: list[Path]) -> int:
+    """Index of the collected value among the carried states, or -1 when the loop collects another
+    output of the cell (``out, (h, c) = cell(x_t, (h, c))``: the step output at ``m.seq_path``)."""
     seq_path = m.seq_path if m.seq_path is not None else out_paths[0]
-    if seq_path not in out_paths:
-        raise Refusal("the loop collects a value that is not carried state")
-    return out_paths.index(seq_path)
+    return out_paths.index(seq_path) if seq_path in out_paths else -1
+
+
+def _seq_path(m: Any, out_paths: list[Path], seq_index: int) -> Path:
+    return out_paths[seq_index] if seq_index >= 0 else m.seq_path
 
 
 def user_cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
@@ -88,34 +92,52 @@ def user_cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
     carried, peel = _carried(m)
     if x.rank != 3:
         raise Refusal("a user cell over tensors other than [batch, time, I] with [batch, H] states")
+    init = list(call.args[1:])
+    if not peel and any(want_tensor(init[j], "initial state").rank != 2 for _, _, j in carried):
+        # e.g. an initial state [1, batch, H] that the cell squeezes, where later steps get [batch, H]
+        peel, carried = True, [(p, pos, -1) for p, pos, _ in carried]
     if peel:
         return peeled_loop(b, call, carried)
-    init = list(call.args[1:])
     states = [want_tensor(init[j], "initial state") for _, _, j in carried]
-    if any(s.rank != 2 for s in states):
-        raise Refusal("a user cell over tensors other than [batch, time, I] with [batch, H] states")
     out_paths = [p for p, _, _ in carried]
     seq_index = _seq_index(m, out_paths)
-    seq, finals, form = _loop(b, call.capture, m, x, states, carried, seq_index)
-    _probes(b, m, seq, finals, out_paths, out_paths[seq_index], form)
-    return (seq if m.seq_path is not None else None, _structure(out_paths, finals))
+    seq, finals, form, same = _loop(b, call.capture, m, x, states, carried, seq_index)
+    return _finish_loop(b, m, seq, finals, out_paths, same, form, False)
+
+
+def _finish_loop(b: GraphBuilder, m: Any, seq: str, finals: list[str], out_paths: list[Path], same: int,
+                 form: str, peeled: bool) -> Any:
+    """Probes, then (collected sequence, the cell's last output structure). A collected output
+    that is another tensor than the carried states ends as its last step."""
+    import numpy as np
+
+    seq_path = _seq_path(m, out_paths, same)
+    paths, names = list(out_paths), list(finals)
+    if seq_path not in paths:
+        paths.append(seq_path)
+        names.append(b.op("Gather", [seq, b.scalar(-1, "last_step", np.int64)], axis=m.seq_dim))
+    elif m.seq_path is not None and m.seq_path not in paths:  # ``return h, (h, c)``: out is h
+        paths.append(m.seq_path)
+        names.append(finals[same])
+    _probes(b, m, (seq, names[paths.index(seq_path)]), finals, out_paths, seq_path, form, peeled)
+    return (seq if m.seq_path is not None else None, _structure(paths, names))
 
 
 def _loop(b: GraphBuilder, capture: Any, m: Any, x: TV, states: list[TV], carried: list[tuple[Path, Path, int]],
-          seq_index: int) -> tuple[str, list[str], str]:
+          seq_index: int) -> tuple[str, list[str], str, int]:
     """The loop over ``x``'s time axis from ``states``: ONE native node when ``core.cellmatch``
     proves the step, else a Scan. (collected sequence, final states in carried order, native form
-    or "")."""
-    body = _body(b, capture, m, x, states, carried, seq_index)
+    or "", index of the carried state the collected value is or -1)."""
+    body, same = _body(b, capture, m, x, states, carried, seq_index)
     cell, _ = match_step(body, len(carried))
-    if cell is not None and cell.h_state == seq_index:
+    if cell is not None and cell.h_state == same:
         seq, finals = _native(b, m, x, states, cell)
-        return seq, finals, cell.form
+        return seq, finals, cell.form, same
     finals = [b.fresh("state") for _ in carried]
     seq = b.fresh("sequence")
     b.node("Scan", [s.name for s in states] + [x.name], [*finals, seq], body=body,
            num_scan_inputs=1, scan_input_axes=[m.axis], scan_output_axes=[m.seq_dim])
-    return seq, finals, ""
+    return seq, finals, "", same
 
 
 def peeled_loop(b: GraphBuilder, call: TorchCall, carried: list[tuple[Path, Path, int]]) -> Any:
@@ -132,23 +154,23 @@ def peeled_loop(b: GraphBuilder, call: TorchCall, carried: list[tuple[Path, Path
     seq_index = _seq_index(m, out_paths)
     x0 = b.op("Gather", [x.name, b.scalar(0, "step0", np.int64)], axis=m.axis)
     first = first_step(b, call.capture, m, TV(x0, (x.shape[0], x.shape[2]), x.dtype), list(call.args[1:]),
-                       out_paths)
+                       [*out_paths, _seq_path(m, out_paths, seq_index)])
+    first, first_out = first[:-1], first[-1]
     rest = GraphBuilder(b.opset, f"{m.cell_name}_rest", "torch")
     x_shape = tuple(None if i == m.axis else d for i, d in enumerate(x.shape))
     x_rest = TV(rest.slice(x.name, [1], [int(np.iinfo(np.int64).max)], [m.axis]), x_shape, x.dtype)
-    seq, finals, form = _loop(rest, call.capture, m, x_rest, first, carried, seq_index)
-    head = rest.unsqueeze(first[seq_index].name, [m.seq_dim])
+    seq, finals, form, same = _loop(rest, call.capture, m, x_rest, first, carried, seq_index)
+    head = rest.unsqueeze(first_out.name, [m.seq_dim])
     whole = rest.op("Concat", [head, seq], axis=m.seq_dim)
     then = branch_graph(rest, [(whole, 3), *[(f, 2) for f in finals]], f"{m.cell_name}/rest/")
     one = GraphBuilder(b.opset, f"{m.cell_name}_one_step", "torch")
-    outs = [(one.unsqueeze(first[seq_index].name, [m.seq_dim]), 3)]
+    outs = [(one.unsqueeze(first_out.name, [m.seq_dim]), 3)]
     outs += [(one.op("Identity", [f.name]), 2) for f in first]
     other = branch_graph(one, outs, f"{m.cell_name}/one_step/")
     steps = b.op("Gather", [b.op("Shape", [x.name]), b.scalar(m.axis, "time_axis", np.int64)], axis=0)
     more = b.op("Greater", [steps, b.scalar(1, "one", np.int64)])
     seq_all, *last = b.node("If", [more], 1 + len(carried), then_branch=then, else_branch=other)
-    _probes(b, m, seq_all, last, out_paths, out_paths[seq_index], form, peeled=True)
-    return (seq_all if m.seq_path is not None else None, _structure(out_paths, last))
+    return _finish_loop(b, m, seq_all, last, out_paths, same, form, True)
 
 
 def _native(b: GraphBuilder, m: Any, x: TV, states: list[TV], cell: NativeCell) -> tuple[str, list[str]]:
@@ -215,23 +237,32 @@ def _body(b: GraphBuilder, capture: Any, m: Any, x: TV, states: list[TV],
     result = walk.run(plan)
     if walk.problems:
         raise Refusal("; ".join(p.line() for p in dict.fromkeys(walk.problems)))
-    return _finish_body(sub, result, specs, carried, seq_index, m.cell_name)
+    return _finish_body(sub, result, specs, carried, (seq_index, m.seq_path), m.cell_name)
+
+
+def _leaf(result: Any, path: Path) -> TV:
+    v = result
+    for i in path:
+        v = v[i]
+    if not isinstance(v, TV):
+        raise Refusal("the cell returns something other than tensors")
+    return v
 
 
 def _finish_body(sub: GraphBuilder, result: Any, specs: list[Any], carried: list[tuple[Path, Path, int]],
-                 seq_index: int, prefix: str) -> Any:
-    """Declare body outputs (new states, then the scan output) and order the inputs as Scan wants."""
-    outs = []
-    for out_path, _, _ in carried:
-        v = result
-        for i in out_path:
-            v = v[i]
-        if not isinstance(v, TV):
-            raise Refusal("the cell returns something other than tensors")
-        outs.append(v)
+                 collected: tuple[int, Path | None], prefix: str) -> tuple[Any, int]:
+    """Declare body outputs (new states, then the scan output) and order the inputs as Scan wants.
+    Returns the body and the index of the carried state the scan output is (-1: another tensor).
+    ``collected`` = (index among the carried states or -1, the collected path of the cell's output)."""
+    outs = [_leaf(result, out_path) for out_path, _, _ in carried]
     for k, v in enumerate(outs):
         sub.output(v.name, f"state_out_{k}", FLOAT, [None] * v.rank)
-    seq_src = outs[seq_index]
+    seq_index, seq_path = collected
+    if seq_index < 0 and seq_path is not None:  # the same tensor as a carried state (out is h)?
+        seq_src = _leaf(result, seq_path)
+        seq_index = next((k for k, v in enumerate(outs) if v.name == seq_src.name), -1)
+    else:
+        seq_src = outs[seq_index]
     sub.output(seq_src.name, "step_out", FLOAT, [None] * seq_src.rank)
     graph = sub.build({}, check=False).graph
     names = [n for s in specs for n in s.onnx_names]
@@ -242,24 +273,27 @@ def _finish_body(sub: GraphBuilder, result: Any, specs: list[Any], carried: list
     order = [*state_inputs, names[0]]
     order_inputs(graph, order)
     prefix_names(graph, f"{prefix}/step/")
-    return graph
+    return graph, seq_index
 
 
-def _probes(b: GraphBuilder, m: Any, seq: str, finals: list[str], paths: list[Path],
+def _probes(b: GraphBuilder, m: Any, collected: tuple[str, str], finals: list[str], paths: list[Path],
             seq_path: Path, form: str = "", peeled: bool = False) -> None:
     """Per-step and final state probes on the Scan's (or the native node's) outputs (Unsqueeze
-    adds the direction axis); ``form`` names the recognised native form, "" for a Scan."""
+    adds the direction axis); ``collected`` = (collected sequence, its last step); ``form`` names the
+    recognised native form, "" for a Scan."""
+    seq, seq_final = collected
     src = {"framework": "torch", "module": m.cell_name, "module_type": type(m.cell).__name__,
            "cell_calls": list(m.calls), "h_path": list(seq_path), "exported_as": form or "Scan"}
     if peeled:
         src["first_step"] = "peeled"
-    others = [p for p in paths if p != seq_path]
+    # a collected output that is no carried state: its last step is the final, no cell state named
+    others = [p for p in paths if p != seq_path] if seq_path in paths else []
     if others:
         src["c_path"] = list(others[0])
     seq_axis = 2 if m.seq_dim == 1 else 1
     y = b.unsqueeze(seq, [seq_axis])
     kinds = [("hidden_sequence", y, "NTDH" if m.seq_dim == 1 else "TNDH", b.last_node_name)]
-    h = b.unsqueeze(finals[paths.index(seq_path)], [1])
+    h = b.unsqueeze(seq_final, [1])
     kinds.append(("hidden_final", h, "NDH", b.last_node_name))
     if others:
         c = b.unsqueeze(finals[paths.index(others[0])], [1])
