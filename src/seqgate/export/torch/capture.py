@@ -34,6 +34,7 @@ from seqgate.errors import MappingError, Refusal, SeqgateError, Unsupported, Uns
 from seqgate.export.core.builder import GraphBuilder, np_to_onnx_type
 from seqgate.export.torch.asserts import SKIPPED, SkippedAsserts, assertion_outcome, skipped_metadata
 from seqgate.export.torch.declared import parse_inputs, range_metadata
+from seqgate.export.torch.eagercheck import check_same_outputs
 from seqgate.export.torch.inplace import inplace_problems
 from seqgate.export.torch.inputs import (
     GuessedShapeError,
@@ -46,6 +47,7 @@ from seqgate.export.torch.inputs import (
     record_runs,
 )
 from seqgate.export.torch.mutation import state_kept
+from seqgate.export.torch.samples import sample_args
 from seqgate.export.torch.structured import (
     flat_forward,
     refuse_annotated,
@@ -104,6 +106,7 @@ def _export(module: Any, opset: int, metadata: dict[str, str], inputs: list[str]
     refuse_read_as_structure(module, gm, plan.params, plan.concrete, label)
     infer_inputs(gm, plan, user, label)
     metas, sa, sb = record_runs(gm, plan, label)
+    check_same_outputs(module, gm, sample_args(plan, sa, 0), label)
     b = GraphBuilder(opset, graph_name=type(module).__name__, framework="torch")
     walk = _Walk(b, gm, metas)
     result = walk.run(plan)

@@ -148,6 +148,20 @@ class _SampleValues:
             self.computing = False
         return p
 
+    def as_items(self, p: Any) -> Any:
+        """A proxy whose sample value is a plain tuple (nn.LSTM's ``(out, (h, c))``) as a tuple of
+        its items' proxies, nested alike, so that ``isinstance(h, tuple)`` and ``len(h)`` in the
+        forward see what eager code sees."""
+        import operator
+
+        import torch.fx
+
+        if not isinstance(p, torch.fx.Proxy) or type(self.values.get(p.node)) is not tuple:
+            return p
+        n = len(self.values[p.node])
+        return tuple(self.as_items(self.create_proxy("call_function", operator.getitem, (p, i), {}))
+                     for i in range(n))
+
     def _evaluate(self, kind: str, target: Any, args: Any, kwargs: Any) -> Any:
         if kind == "placeholder":
             return self.inputs.get(target)
@@ -204,7 +218,7 @@ def make_value_tracer(base: type, inputs: dict[str, Any], leaves: frozenset[int]
         def call_module(self, m: Any, forward: Any, args: Any, kwargs: Any) -> Any:
             if self.computing:
                 return forward(*args, **kwargs)
-            return super().call_module(m, forward, args, kwargs)
+            return self.as_items(super().call_module(m, forward, args, kwargs))
 
         def getattr(self, attr: str, attr_val: Any, parameter_proxy_cache: dict[str, Any]) -> Any:
             if self.computing:

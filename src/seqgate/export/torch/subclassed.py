@@ -71,7 +71,9 @@ def base_calls_traced(root: Any) -> Iterator[None]:
             return recurrent_base_forward(self, *args, **kwargs)
         tracer = p.tracer
         mod = tracer.create_proxy("get_attr", names[id(self)], (), {})
-        return tracer.create_proxy("call_function", recurrent_base_forward, (mod, *args), kwargs)
+        out = tracer.create_proxy("call_function", recurrent_base_forward, (mod, *args), kwargs)
+        as_items = getattr(tracer, "as_items", None)  # the value-carrying trace: (out, (h, c)) as a tuple
+        return out if as_items is None else as_items(out)
 
     try:
         for m in root.modules():
