@@ -242,3 +242,14 @@ def cli_export_verify(tmp_path: Any, factory_source: str) -> set[str]:
                             "--synthetic", "--quiet", "--report", str(rep)])
     assert r.exit_code == 0, r.output
     return {t["name"] for t in json.loads(rep.read_text())["tensors"]}
+
+
+def op_types(graph: Any) -> list[str]:
+    """Op types of ``graph`` and of every sub-graph in it (If branches, Scan bodies)."""
+    out = []
+    for n in graph.node:
+        out.append(n.op_type)
+        for a in n.attribute:
+            if a.type == a.GRAPH:
+                out.extend(op_types(a.g))
+    return out

@@ -4,6 +4,8 @@ statements of test files into other bytecode."""
 
 from __future__ import annotations
 
+import textwrap
+
 import torch
 from torch import nn
 from torch.nn.utils.rnn import pack_padded_sequence, pad_packed_sequence
@@ -74,3 +76,24 @@ class MeanBranch(nn.Module):
         if lengths.float().mean() < 0.5:
             return x.new_zeros(x.size(0), 4)
         return self.gru(x)[0][:, -1]
+
+
+# A factory file for CLI tests: a branch that declared lengths in 1..time decide (line 11: the `if`)
+RANGE_GUARDED_NET_SOURCE = textwrap.dedent('''
+    import torch
+    from torch import nn
+
+    class Net(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.gru = nn.GRU(3, 4, batch_first=True)
+
+        def forward(self, x, lengths):
+            if lengths.max() <= 0:
+                return x[:, -1, :1].expand(-1, 4)
+            return self.gru(x)[0][:, -1] * lengths.unsqueeze(-1)
+
+    def build():
+        torch.manual_seed(5)
+        return Net()
+''')

@@ -18,7 +18,7 @@ from onnx.reference import ReferenceEvaluator
 from torch import nn
 
 from seqgate.errors import UnsupportedModelError
-from torch_models import cli_export_verify, export, randomize, run_onnx, torch_outputs, worst
+from torch_models import cli_export_verify, export, op_types, randomize, run_onnx, torch_outputs, worst
 
 torch.set_num_threads(1)
 IN, H = 3, 5
@@ -29,17 +29,6 @@ CELLS = {"lstm": nn.LSTMCell, "gru": nn.GRUCell, "rnn": nn.RNNCell}
 def _x(n: int, t: int, seed: int = 0, time_major: bool = False) -> np.ndarray:
     x = np.random.default_rng(seed + 10 * t + n).normal(size=(n, t, IN)).astype(np.float32)
     return np.ascontiguousarray(x.transpose(1, 0, 2)) if time_major else x
-
-
-def _ops(graph: Any) -> list[str]:
-    """Op types of ``graph`` and of every sub-graph in it (If branches, Scan bodies)."""
-    out = []
-    for n in graph.node:
-        out.append(n.op_type)
-        for a in n.attribute:
-            if a.type == a.GRAPH:
-                out.extend(_ops(a.g))
-    return out
 
 
 def _same_as_torch(m: nn.Module, model: Any, reference: bool = False, time_major: bool = False) -> None:
@@ -79,7 +68,7 @@ class BuiltinLoop(nn.Module):
 def test_builtin_cell_without_a_first_state_is_one_native_node(kind: str, form: str) -> None:
     m = randomize(BuiltinLoop(kind, form), seed=1)
     model = export(m)
-    ops = _ops(model.graph)
+    ops = op_types(model.graph)
     assert ops.count(kind.upper()) == 1 and not {"If", "Scan", "Loop"} & set(ops), ops
     # onnx.reference knows LSTM/GRU and a Tanh RNN (FACTS.md), all used here with default activations
     _same_as_torch(m, model, reference=True)
@@ -103,7 +92,7 @@ class HcUnpacked(nn.Module):
 def test_lstm_cell_with_h_c_unpacked_and_none_at_step_zero() -> None:
     m = randomize(HcUnpacked(), seed=2)
     model = export(m)
-    assert _ops(model.graph).count("LSTM") == 1
+    assert op_types(model.graph).count("LSTM") == 1
     _same_as_torch(m, model)
 
 
@@ -130,7 +119,7 @@ class StackedLayers(nn.Module):
 def test_stacked_two_layer_loops_from_a_list_of_none_states(kind: str) -> None:
     m = randomize(StackedLayers(kind), seed=3)
     model = export(m)
-    assert _ops(model.graph).count(kind.upper()) == 2
+    assert op_types(model.graph).count(kind.upper()) == 2
     _same_as_torch(m, model)
 
 
@@ -233,7 +222,7 @@ def _peeled(model: Any, loop_op: str) -> None:
     """One If at the top; its T > 1 branch holds the loop as ``loop_op``."""
     top = [n.op_type for n in model.graph.node]
     assert top.count("If") == 1 and not {"LSTM", "GRU", "RNN", "Scan"} & set(top), top
-    assert _ops(model.graph).count(loop_op) == 1, _ops(model.graph)
+    assert op_types(model.graph).count(loop_op) == 1, op_types(model.graph)
 
 
 def test_user_lstm_cell_starting_from_zeros_loops_as_a_native_lstm() -> None:

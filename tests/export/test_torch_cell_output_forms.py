@@ -21,7 +21,7 @@ import torch
 from onnx.reference import ReferenceEvaluator
 from torch import nn
 
-from torch_models import export, randomize, run_onnx, torch_outputs, worst
+from torch_models import export, op_types, randomize, run_onnx, torch_outputs, worst
 
 torch.set_num_threads(1)
 IN, H = 3, 4
@@ -72,16 +72,6 @@ class PairLoop(nn.Module):
         return torch.stack(outs, 1), hidden[1]
 
 
-def _ops(graph: Any) -> list[str]:
-    out = []
-    for n in graph.node:
-        out.append(n.op_type)
-        for a in n.attribute:
-            if a.type == a.GRAPH:
-                out.extend(_ops(a.g))
-    return out
-
-
 def _same_as_torch(m: nn.Module, model: Any, reference: bool = True) -> None:
     for n, t in LENGTHS:
         x = np.random.default_rng(10 * t + n).normal(size=(n, t, IN)).astype(np.float32)
@@ -94,7 +84,7 @@ def _same_as_torch(m: nn.Module, model: Any, reference: bool = True) -> None:
 def test_output_that_is_the_carried_h_gives_the_native_lstm() -> None:
     m = randomize(PairLoop(False), seed=3).eval()
     model = export(m, inputs=["x:batch,time,3"])
-    ops = _ops(model.graph)
+    ops = op_types(model.graph)
     assert ops.count("LSTM") == 1 and not {"Scan", "If"} & set(ops), ops  # the step is the LSTM
     _same_as_torch(m, model)
 
@@ -102,14 +92,14 @@ def test_output_that_is_the_carried_h_gives_the_native_lstm() -> None:
 def test_first_state_of_another_shape_is_peeled() -> None:
     m = randomize(PairLoop(True), seed=3).eval()
     model = export(m, inputs=["x:batch,time,3"])
-    assert "If" in _ops(model.graph)  # step 0 on its own, steps 1.. in the If's branch
+    assert "If" in op_types(model.graph)  # step 0 on its own, steps 1.. in the If's branch
     _same_as_torch(m, model, reference=False)
 
 
 def test_output_other_than_a_state_is_collected_by_the_scan() -> None:
     m = randomize(PairLoop(True, scale=2.0), seed=4).eval()
     model = export(m, inputs=["x:batch,time,3"])
-    ops = _ops(model.graph)
+    ops = op_types(model.graph)
     assert "Scan" in ops and "LSTM" not in ops, ops
     _same_as_torch(m, model, reference=False)
     # the collected output really is 2·h: a copy that collected h instead would be half of it

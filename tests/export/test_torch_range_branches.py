@@ -8,7 +8,6 @@ range; the refusals are pinned by the line they name.
 
 from __future__ import annotations
 
-import textwrap
 from pathlib import Path
 
 import numpy as np
@@ -19,7 +18,13 @@ from seqgate.cli.app import app
 from seqgate.errors import UnsupportedModelError
 from seqgate.export.torch.branches import RANGED_KEY, read_ranged
 from torch_models import export, rand, randomize, run_onnx, torch_outputs, worst
-from torch_range_models import CombinedConditions, FullOfSize, LengthsGuardedLSTM, MeanBranch
+from torch_range_models import (
+    RANGE_GUARDED_NET_SOURCE,
+    CombinedConditions,
+    FullOfSize,
+    LengthsGuardedLSTM,
+    MeanBranch,
+)
 
 LENGTHS = ["x:batch,time,3", "lengths:batch:int64=1..time"]
 
@@ -92,26 +97,11 @@ def test_no_range_decided_branch_no_metadata_key() -> None:
 
 def test_cli_export_prints_each_range_decided_branch(tmp_path: Path) -> None:
     py = tmp_path / "net.py"
-    py.write_text(textwrap.dedent('''
-        from torch import nn
-
-        class Net(nn.Module):
-            def __init__(self):
-                super().__init__()
-                self.gru = nn.GRU(3, 4, batch_first=True)
-
-            def forward(self, x, lengths):
-                if lengths.max() <= 0:
-                    return x[:, -1, :1].expand(-1, 4)
-                return self.gru(x)[0][:, -1] * lengths.unsqueeze(-1)
-
-        def build():
-            return Net()
-    '''))
+    py.write_text(RANGE_GUARDED_NET_SOURCE)
     out = tmp_path / "net.onnx"
     r = CliRunner().invoke(app, ["export", f"{py}:build", "--untrained", "-o", str(out), "--input",
                                  "x:batch,time,3", "--input", "lengths:batch:int64=1..time"])
     assert r.exit_code == 0, r.output
     assert ("note: branch decided by the declared value ranges (lengths in 1..time: the value it tests "
             "is False for every input in them; the ONNX file is right only inside them): "
-            "net.py:10: `if lengths.max() <= 0:`") in r.output, r.output
+            "net.py:11: `if lengths.max() <= 0:`") in r.output, r.output

@@ -7,7 +7,6 @@ right for; the expected window and value are worked out by hand from the arrays 
 
 from __future__ import annotations
 
-import textwrap
 from pathlib import Path
 
 import numpy as np
@@ -15,34 +14,17 @@ import pytest
 from typer.testing import CliRunner
 
 from seqgate.cli.app import app
+from torch_range_models import RANGE_GUARDED_NET_SOURCE
 
 pytest.importorskip("torch")
 runner = CliRunner()
 
-NET = textwrap.dedent('''
-    import torch
-    from torch import nn
-
-    class Net(nn.Module):
-        def __init__(self):
-            super().__init__()
-            self.gru = nn.GRU(3, 4, batch_first=True)
-
-        def forward(self, x, lengths):
-            if lengths.max() <= 0:
-                return x[:, -1, :1].expand(-1, 4)
-            return self.gru(x)[0][:, -1] * lengths.unsqueeze(-1)
-
-    def build():
-        torch.manual_seed(5)
-        return Net()
-''')
 
 
 @pytest.fixture(scope="module")
 def exported(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     d = tmp_path_factory.mktemp("ranges")
-    (d / "net.py").write_text(NET)
+    (d / "net.py").write_text(RANGE_GUARDED_NET_SOURCE)
     import importlib.util
 
     import torch
