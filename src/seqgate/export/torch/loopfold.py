@@ -25,6 +25,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from seqgate.errors import Unsupported, UnsupportedModelError
+from seqgate.export.torch.interleave import hand_on
 
 Path = tuple[int, ...]
 
@@ -195,6 +196,8 @@ def fold_loops(gm: Any, values: dict[Any, Any], is_cell: Any, label: str) -> Non
             if not _walks_time(steps, values):
                 continue
             why = _blocker(chain)
+            if why is not None and hand_on(gm, chain.calls, steps[0][1], values, is_cell):  # type: ignore[index]
+                why = _blocker(chain)  # the next layer now reads the collected sequence
             if why is not None:
                 problems.append(Unsupported(_where(gm, chain.calls[0]), why, _HINT))
                 continue
