@@ -1,0 +1,207 @@
+"""Stacked cells stepped inside ONE loop over time (every layer called at each step).
+
+References: PyTorch's own forward of each module below (torch's eager kernels for nn.LSTMCell,
+nn.GRUCell, nn.RNNCell; the torch docs say a missing ``hx`` means zero states), run through
+onnxruntime and, where noted, through onnx's own evaluator ``onnx.reference.ReferenceEvaluator``
+(which runs the ONNX LSTM/GRU/RNN operator equations with their default activations). Tolerance:
+``1e-4 + 1e-4·|ref|`` (the project's float32 rule, ``torch_models.worst``). Lengths T = 1, 2, 9
+at batch sizes 1 to 3 on an export traced at other lengths (the time axis stays dynamic).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import pytest
+import torch
+from onnx.reference import ReferenceEvaluator
+from torch import nn
+
+from seqgate.errors import UnsupportedModelError
+from torch_models import cli_export_verify, export, randomize, run_onnx, torch_outputs, worst
+
+torch.set_num_threads(1)
+IN, H = 3, 5
+LENGTHS = ((1, 1), (2, 2), (3, 9))  # (batch, T)
+CELLS = {"lstm": nn.LSTMCell, "gru": nn.GRUCell, "rnn": nn.RNNCell}
+
+
+def _x(n: int, t: int, seed: int = 0) -> np.ndarray:
+    return np.random.default_rng(seed + 10 * t + n).normal(size=(n, t, IN)).astype(np.float32)
+
+
+def _ops(model: Any) -> list[str]:
+    return [n.op_type for n in model.graph.node]
+
+
+def _same_as_torch(m: nn.Module, model: Any, reference: bool = False) -> None:
+    """onnxruntime (and ``onnx.reference`` when asked) agree with the module's own forward."""
+    for n, t in LENGTHS:
+        x = _x(n, t)
+        want = torch_outputs(m, {"x": x})  # reference: PyTorch's own forward
+        worst(want, run_onnx(model, {"x": x}))
+        if reference:  # reference: onnx's own evaluator on the same file
+            worst(want, ReferenceEvaluator(model).run(None, {"x": x}))
+
+
+def _cells(kind: str, layers: int) -> nn.ModuleList:
+    return nn.ModuleList([CELLS[kind](IN if i == 0 else H, H) for i in range(layers)])
+
+
+class Lists(nn.Module):
+    """``h[l], c[l] = cell(inp, (h[l], c[l])); inp = h[l]`` (``h[l] = cell(inp, h[l])`` for
+    GRU/RNN) from zero states; returns the top layer's sequence and every layer's final h."""
+
+    def __init__(self, kind: str, layers: int) -> None:
+        super().__init__()
+        self.kind = kind
+        self.cells = _cells(kind, layers)
+
+    def forward(self, x: torch.Tensor) -> Any:
+        h = [torch.zeros(x.size(0), H) for _ in self.cells]
+        c = [torch.zeros(x.size(0), H) for _ in self.cells]
+        outs = []
+        for t in range(x.size(1)):
+            inp = x[:, t]
+            for i, cell in enumerate(self.cells):
+                if self.kind == "lstm":
+                    h[i], c[i] = cell(inp, (h[i], c[i]))
+                else:
+                    h[i] = cell(inp, h[i])
+                inp = h[i]
+            outs.append(inp)
+        return torch.stack(outs, 1), torch.stack(h, 0)
+
+
+class States(nn.Module):
+    """``states[l] = cell(inp, states[l]); inp = states[l][0]`` with states starting as None
+    (``start="none"``) or as zero (h, c) tuples (``start="zeros"``)."""
+
+    def __init__(self, layers: int, start: str) -> None:
+        super().__init__()
+        self.start = start
+        self.cells = _cells("lstm", layers)
+
+    def forward(self, x: torch.Tensor) -> Any:
+        states: list[Any] = [None for _ in self.cells]
+        if self.start == "zeros":
+            states = [(torch.zeros(x.size(0), H), torch.zeros(x.size(0), H)) for _ in self.cells]
+        outs = []
+        for t in range(x.size(1)):
+            inp = x[:, t]
+            for i, cell in enumerate(self.cells):
+                states[i] = cell(inp, states[i])
+                inp = states[i][0]
+            outs.append(inp)
+        return torch.stack(outs, 1)
+
+
+@pytest.mark.parametrize("layers", [2, 3])
+def test_lstm_cell_layers_in_one_loop_are_one_lstm_node_per_layer(layers: int) -> None:
+    m = randomize(Lists("lstm", layers), seed=layers)
+    model = export(m)
+    assert _ops(model).count("LSTM") == layers, _ops(model)
+    _same_as_torch(m, model, reference=True)
+
+
+@pytest.mark.parametrize("kind", ["gru", "rnn"])
+def test_gru_and_rnn_cell_layers_in_one_loop(kind: str) -> None:
+    m = randomize(Lists(kind, 2), seed=5)
+    model = export(m)
+    assert _ops(model).count(kind.upper()) == 2, _ops(model)
+    _same_as_torch(m, model, reference=kind == "gru")
+
+
+@pytest.mark.parametrize("start", ["none", "zeros"])
+@pytest.mark.parametrize("layers", [2, 3])
+def test_state_tuples_per_layer_in_one_loop(start: str, layers: int) -> None:
+    m = randomize(States(layers, start), seed=7)
+    model = export(m)
+    assert _ops(model).count("LSTM") == layers, _ops(model)
+    _same_as_torch(m, model)
+
+
+class PreviousAbove(nn.Module):
+    """Layer 1's input mixes layer 0's step output with layer 1's PREVIOUS-step h (read before
+    layer 1 runs): not two consecutive loops."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.cells = _cells("gru", 2)
+
+    def forward(self, x: torch.Tensor) -> Any:
+        h = [torch.zeros(x.size(0), H) for _ in self.cells]
+        outs = []
+        for t in range(x.size(1)):
+            inp = x[:, t]
+            for i, cell in enumerate(self.cells):
+                h[i] = cell(inp, h[i])
+                inp = h[i] + h[i + 1] if i + 1 < len(h) else h[i]
+            outs.append(inp)
+        return torch.stack(outs, 1)
+
+
+def test_a_layer_reading_the_previous_step_of_the_layer_above_is_refused() -> None:
+    with pytest.raises(UnsupportedModelError) as e:
+        export(randomize(PreviousAbove()))
+    assert e.value.exit_code == 3
+    assert "cells.0 (GRUCell)" in str(e.value) and "read by" in str(e.value), str(e.value)
+
+
+FACTORY = """
+import torch
+from torch import nn
+
+
+class Net(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.cells = nn.ModuleList([nn.LSTMCell(3, 5), nn.LSTMCell(5, 5)])
+
+    def forward(self, x):
+        h = [torch.zeros(x.size(0), 5) for _ in self.cells]
+        c = [torch.zeros(x.size(0), 5) for _ in self.cells]
+        outs = []
+        for t in range(x.size(1)):
+            inp = x[:, t]
+            for i, cell in enumerate(self.cells):
+                h[i], c[i] = cell(inp, (h[i], c[i]))
+                inp = h[i]
+            outs.append(inp)
+        return torch.stack(outs, 1)
+
+
+def make():
+    return Net()
+"""
+
+
+def test_cli_export_and_verify_compare_every_layers_step_states(tmp_path: Any) -> None:
+    names = cli_export_verify(tmp_path, FACTORY)
+    want = {f"cells.{i}/forward/{k}" for i in (0, 1) for k in ("hidden_sequence", "hidden_final")}
+    assert want <= names, names
+
+
+class LaggedAbove(nn.Module):
+    """The top layer runs first each step, so it reads layer 0's output of the PREVIOUS step."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.cells = _cells("gru", 2)
+
+    def forward(self, x: torch.Tensor) -> Any:
+        h = [torch.zeros(x.size(0), H) for _ in self.cells]
+        outs = []
+        for t in range(x.size(1)):
+            h[1] = self.cells[1](h[0], h[1])
+            h[0] = self.cells[0](x[:, t], h[0])
+            outs.append(h[1])
+        return torch.stack(outs, 1)
+
+
+def test_a_layer_reading_the_step_before_of_the_layer_below_is_refused() -> None:
+    with pytest.raises(UnsupportedModelError) as e:
+        export(randomize(LaggedAbove()))
+    assert e.value.exit_code == 3
+    assert "cells.0 (GRUCell)" in str(e.value) and "read by cells.1" in str(e.value), str(e.value)
