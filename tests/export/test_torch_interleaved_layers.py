@@ -205,3 +205,46 @@ def test_a_layer_reading_the_step_before_of_the_layer_below_is_refused() -> None
         export(randomize(LaggedAbove()))
     assert e.value.exit_code == 3
     assert "cells.0 (GRUCell)" in str(e.value) and "read by cells.1" in str(e.value), str(e.value)
+
+
+class UserElman(nn.Module):
+    """A user-written cell: h' = tanh(W x + U h) (Elman 1990), times sigmoid(V x) when ``gated``
+    (no published cell: stays an ONNX Scan of the traced step)."""
+
+    def __init__(self, size_in: int, gated: bool) -> None:
+        super().__init__()
+        self.input_size = size_in  # how seqgate infers the loop input's feature size
+        self.gated = gated
+        self.W, self.V = nn.Linear(size_in, H), nn.Linear(size_in, H)
+        self.U = nn.Linear(H, H, bias=False)
+
+    def forward(self, x: torch.Tensor, h: torch.Tensor) -> torch.Tensor:
+        out = torch.tanh(self.W(x) + self.U(h))
+        return out * torch.sigmoid(self.V(x)) if self.gated else out
+
+
+class UserLayers(nn.Module):
+    """Two user cells stepped inside one loop from zero states."""
+
+    def __init__(self, gated: bool) -> None:
+        super().__init__()
+        self.cells = nn.ModuleList([UserElman(IN, gated), UserElman(H, gated)])
+
+    def forward(self, x: torch.Tensor) -> Any:
+        h = [torch.zeros(x.size(0), H) for _ in self.cells]
+        outs = []
+        for t in range(x.size(1)):
+            inp = x[:, t]
+            for i, cell in enumerate(self.cells):
+                h[i] = cell(inp, h[i])
+                inp = h[i]
+            outs.append(inp)
+        return torch.stack(outs, 1)
+
+
+@pytest.mark.parametrize(("gated", "op"), [(False, "RNN"), (True, "Scan")])
+def test_user_cell_layers_in_one_loop(gated: bool, op: str) -> None:
+    m = randomize(UserLayers(gated), seed=9)
+    model = export(m)
+    assert _ops(model).count(op) == 2, _ops(model)
+    _same_as_torch(m, model)

@@ -24,12 +24,37 @@ from typing import Any
 Path = tuple[int, ...]
 
 
+def _is_getitem(n: Any) -> bool:
+    return n.op == "call_function" and n.target is operator.getitem
+
+
+def path_of(n: Any, root: Any) -> Path | None:
+    """Index path from ``root`` to ``n`` through getitem nodes, or None."""
+    path: list[int] = []
+    while n is not root:
+        if not (hasattr(n, "op") and _is_getitem(n) and isinstance(n.args[1], int)):
+            return None
+        path.append(n.args[1])
+        n = n.args[0]
+    return tuple(reversed(path))
+
+
+def readers(n: Any, path: Path = ()) -> list[tuple[Path, Any]]:
+    """(path, node) for every reader of ``n``'s output that is not a getitem into it."""
+    out: list[tuple[Path, Any]] = []
+    for u in n.users:
+        if _is_getitem(u) and u.args[0] is n and isinstance(u.args[1], int):
+            out.extend(readers(u, (*path, u.args[1])))
+        else:
+            out.append((path, u))
+    return out
+
+
 def _node_at(call: Any, path: Path) -> Any:
     """The getitem node reached from ``call`` along ``path`` (``call`` for ``()``), or None."""
     n = call
     for i in path:
-        nxt = [u for u in n.users if u.op == "call_function" and u.target is operator.getitem
-               and u.args[0] is n and u.args[1] == i]
+        nxt = [u for u in n.users if _is_getitem(u) and u.args[0] is n and u.args[1] == i]
         if len(nxt) != 1:
             return None
         n = nxt[0]
@@ -39,12 +64,10 @@ def _node_at(call: Any, path: Path) -> Any:
 def _takers(call: Any, own: str, is_cell: Any, gm: Any) -> list[tuple[Path, Any]]:
     """(path, d) for every call d of another cell module whose input (args[0]) is ``call``'s
     output at path."""
-    from seqgate.export.torch.loopfold import _path_of, _readers
-
     out = []
-    for path, u in _readers(call):
+    for path, u in readers(call):
         if (u.op == "call_module" and str(u.target) != own and is_cell(gm.get_submodule(u.target))
-                and u.args and _path_of(u.args[0], call) == path):
+                and u.args and path_of(u.args[0], call) == path):
             out.append((path, u))
     return out
 

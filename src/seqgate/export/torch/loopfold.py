@@ -25,7 +25,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from seqgate.errors import Unsupported, UnsupportedModelError
-from seqgate.export.torch.interleave import hand_on
+from seqgate.export.torch.interleave import hand_on, path_of, readers
 
 Path = tuple[int, ...]
 
@@ -98,17 +98,6 @@ def _is_getitem(n: Any) -> bool:
     return n.op == "call_function" and n.target is operator.getitem
 
 
-def _path_of(n: Any, root: Any) -> Path | None:
-    """Index path from ``root`` to ``n`` through getitem nodes, or None."""
-    path: list[int] = []
-    while n is not root:
-        if not (hasattr(n, "op") and _is_getitem(n) and isinstance(n.args[1], int)):
-            return None
-        path.append(n.args[1])
-        n = n.args[0]
-    return tuple(reversed(path))
-
-
 def _time_step(n: Any) -> tuple[Any, int, int] | None:
     """(X, axis, k) when ``n`` is step k of X along axis 0 or 1, else None."""
     import torch
@@ -169,7 +158,7 @@ def _chains(calls: list[Any]) -> list[_Chain]:
     for c in calls:
         leaves: list[Any] = []
         shape = _leaves(_state_args(c), leaves)
-        paths = [_path_of(leaf, cur.calls[-1]) for leaf in leaves] if cur else []
+        paths = [path_of(leaf, cur.calls[-1]) for leaf in leaves] if cur else []
         if (cur is not None and leaves and all(p is not None for p in paths)
                 and (len(cur.calls) == 1 or (paths == cur.paths and shape == cur.template_args))):
             if len(cur.calls) == 1:
@@ -237,22 +226,11 @@ def _where(gm: Any, n: Any) -> str:
         f" at {line}" if line else "")
 
 
-def _readers(n: Any, path: Path = ()) -> list[tuple[Path, Any]]:
-    """(path, node) for every reader of ``n``'s output that is not a getitem into it."""
-    out: list[tuple[Path, Any]] = []
-    for u in n.users:
-        if _is_getitem(u) and u.args[0] is n and isinstance(u.args[1], int):
-            out.extend(_readers(u, (*path, u.args[1])))
-        else:
-            out.append((path, u))
-    return out
-
-
 def _collector(chain: _Chain) -> tuple[Any, Path, int, list[Any]] | str | None:
     """The node that collects every step's output: (node, path, dim, unsqueeze nodes)."""
     import torch
 
-    first = [(p, u) for p, u in _readers(chain.calls[0]) if u is not chain.calls[1]]
+    first = [(p, u) for p, u in readers(chain.calls[0]) if u is not chain.calls[1]]
     if not first:
         return None
     if len(first) > 1:
@@ -280,7 +258,7 @@ def _collector(chain: _Chain) -> tuple[Any, Path, int, list[Any]] | str | None:
                 return "a collection that is not every step's output"
             unsq.append(item) if k else None
             node = item.args[0]
-        if _path_of(node, c) != path:
+        if path_of(node, c) != path:
             return "a collection that is not every step's output"
     return u, path, int(dim), unsq
 
@@ -294,7 +272,7 @@ def _blocker(chain: _Chain) -> str | None:
     if col is not None:
         allowed |= {col[0], *col[3]}
     for k, c in enumerate(chain.calls[:-1]):
-        for _, u in _readers(c):
+        for _, u in readers(c):
             if u not in allowed:
                 return f"the state of step {k} is also read by {u.name} ({u.target}) inside the loop"
     return None
