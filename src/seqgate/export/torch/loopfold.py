@@ -25,7 +25,15 @@ from dataclasses import dataclass
 from typing import Any
 
 from seqgate.errors import Unsupported, UnsupportedModelError
-from seqgate.export.torch.interleave import hand_on, path_of, readers
+from seqgate.export.torch.interleave import (
+    hand_on,
+    hand_plan,
+    lift_inputs,
+    lift_stacks,
+    path_of,
+    readers,
+    time_step,
+)
 
 Path = tuple[int, ...]
 
@@ -98,34 +106,6 @@ def _is_getitem(n: Any) -> bool:
     return n.op == "call_function" and n.target is operator.getitem
 
 
-def _time_step(n: Any) -> tuple[Any, int, int] | None:
-    """(X, axis, k) when ``n`` is step k of X along axis 0 or 1, else None."""
-    import torch
-
-    if not hasattr(n, "op"):
-        return None
-    if _is_getitem(n):
-        src, idx = n.args
-        if isinstance(idx, int) and getattr(src, "op", "") in ("call_method", "call_function") and (
-                src.target in ("unbind", torch.unbind)):
-            axis = src.args[1] if len(src.args) > 1 else src.kwargs.get("dim", 0)
-            return (src.args[0], axis, idx) if axis in (0, 1) else None
-        if isinstance(idx, int):
-            return src, 0, idx
-        if isinstance(idx, tuple):
-            full = slice(None, None, None)
-            ints = [(a, i) for a, i in enumerate(idx) if isinstance(i, int)]
-            rest_ok = all(i == full or i is Ellipsis for i in idx if not isinstance(i, int))
-            if len(ints) == 1 and rest_ok and ints[0][0] in (0, 1) and Ellipsis not in idx[:ints[0][0]]:
-                return src, ints[0][0], ints[0][1]
-        return None
-    if n.target in ("select", torch.select) and len(n.args) == 3:
-        _, axis, k = n.args
-        if axis in (0, 1) and isinstance(k, int):
-            return n.args[0], axis, k
-    return None
-
-
 def _leaves(a: Any, out: list[Any]) -> Any:
     """Replace fx nodes in ``a`` by ("leaf", j) and collect them."""
     if hasattr(a, "op"):
@@ -181,11 +161,16 @@ def fold_loops(gm: Any, values: dict[Any, Any], is_cell: Any, label: str) -> Non
     for target, calls in by_target.items():
         folded = 0
         for chain in _chains(calls):
-            steps = [_time_step(c.args[0]) if c.args else None for c in chain.calls]
+            steps = [time_step(c.args[0]) if c.args else None for c in chain.calls]
             if not _walks_time(steps, values):
-                continue
+                if not lift_inputs(gm, chain.calls, values, lambda a, ch=chain: _blocker(ch) is None or (
+                        hand_plan(gm, ch.calls, a, values, is_cell) is not None)):
+                    continue
+                steps = [time_step(c.args[0]) for c in chain.calls]
             why = _blocker(chain)
-            if why is not None and hand_on(gm, chain.calls, steps[0][1], values, is_cell):  # type: ignore[index]
+            plan = None if why is None else hand_plan(gm, chain.calls, steps[0][1], values, is_cell)  # type: ignore[index]
+            if plan is not None:
+                hand_on(gm, plan, values)
                 why = _blocker(chain)  # the next layer now reads the collected sequence
             if why is not None:
                 problems.append(Unsupported(_where(gm, chain.calls[0]), why, _HINT))
@@ -200,6 +185,7 @@ def fold_loops(gm: Any, values: dict[Any, Any], is_cell: Any, label: str) -> Non
             _rewrite(gm, target, chain, steps[0][:2], (before, after), values)  # type: ignore[index]
     if problems:
         raise UnsupportedModelError(label, problems)
+    lift_stacks(gm, values)
     gm.graph.lint()
     gm.recompile()
 
