@@ -248,3 +248,76 @@ def test_user_cell_layers_in_one_loop(gated: bool, op: str) -> None:
     model = export(m)
     assert _ops(model).count(op) == 2, _ops(model)
     _same_as_torch(m, model)
+
+
+class Between(nn.Module):
+    """What sits between layers inside the loop: ``"dropout"`` (nn.Dropout, identity in eval
+    mode per the torch docs), ``"functional"`` (F.dropout with training=False), ``"residual"``
+    (``inp = inp + h[l]``, then ``inp * 0.5``): each only reads values of the same step."""
+
+    def __init__(self, between: str, layers: int) -> None:
+        super().__init__()
+        self.between = between
+        self.cells = nn.ModuleList([nn.LSTMCell(H, H) for _ in range(layers)])
+        self.drop = nn.Dropout(0.3)
+
+    def step_input(self, inp: torch.Tensor, h: torch.Tensor) -> torch.Tensor:
+        if self.between == "dropout":
+            return self.drop(h)
+        if self.between == "functional":
+            return nn.functional.dropout(h, 0.3, self.training)
+        return (inp + h) * 0.5
+
+    def forward(self, x: torch.Tensor) -> Any:
+        h = [torch.zeros(x.size(0), H) for _ in self.cells]
+        c = [torch.zeros(x.size(0), H) for _ in self.cells]
+        outs = []
+        for t in range(x.size(1)):
+            inp = x[:, t]
+            for i, cell in enumerate(self.cells):
+                h[i], c[i] = cell(inp, (h[i], c[i]))
+                inp = self.step_input(inp, h[i])
+            outs.append(inp)
+        return torch.stack(outs, 1)
+
+
+def _xh(n: int, t: int) -> np.ndarray:
+    return np.random.default_rng(10 * t + n).normal(size=(n, t, H)).astype(np.float32)
+
+
+@pytest.mark.parametrize("layers", [2, 3])
+@pytest.mark.parametrize("between", ["dropout", "functional", "residual"])
+def test_same_step_ops_between_layers(between: str, layers: int) -> None:
+    m = randomize(Between(between, layers), seed=11).eval()
+    model = export(m)
+    assert _ops(model).count("LSTM") == layers, _ops(model)
+    for n, t in LENGTHS:
+        x = _xh(n, t)
+        want = torch_outputs(m, {"x": x})  # reference: PyTorch's own forward (eval mode)
+        worst(want, run_onnx(model, {"x": x}))
+        if between == "residual":  # reference: onnx's own evaluator on the same file
+            worst(want, ReferenceEvaluator(model).run(None, {"x": x}))
+
+
+class ResidualFromBefore(Between):
+    """Near miss: the residual adds the PREVIOUS step's input of the layer (kept across steps)."""
+
+    def forward(self, x: torch.Tensor) -> Any:
+        h = [torch.zeros(x.size(0), H) for _ in self.cells]
+        c = [torch.zeros(x.size(0), H) for _ in self.cells]
+        prev = torch.zeros(x.size(0), H)
+        outs = []
+        for t in range(x.size(1)):
+            inp = x[:, t]
+            h[0], c[0] = self.cells[0](inp, (h[0], c[0]))
+            h[1], c[1] = self.cells[1](h[0] + prev, (h[1], c[1]))
+            prev = h[0]
+            outs.append(h[1])
+        return torch.stack(outs, 1)
+
+
+def test_a_residual_from_the_step_before_is_refused() -> None:
+    with pytest.raises(UnsupportedModelError) as e:
+        export(randomize(ResidualFromBefore("residual", 2)).eval())
+    assert e.value.exit_code == 3
+    assert "cells.0 (LSTMCell)" in str(e.value) and "read by" in str(e.value), str(e.value)
