@@ -35,6 +35,17 @@ def _ops(model: Any) -> list[str]:
     return [n.op_type for n in model.graph.node]
 
 
+def _nested_ops(graph: Any) -> list[str]:
+    """Op types of ``graph`` and of every sub-graph in it (If branches, Scan bodies)."""
+    out = []
+    for n in graph.node:
+        out.append(n.op_type)
+        for a in n.attribute:
+            if a.type == a.GRAPH:
+                out.extend(_nested_ops(a.g))
+    return out
+
+
 def _same_as_torch(m: nn.Module, model: Any, reference: bool = False) -> None:
     """onnxruntime (and ``onnx.reference`` when asked) agree with the module's own forward."""
     for n, t in LENGTHS:
@@ -321,3 +332,74 @@ def test_a_residual_from_the_step_before_is_refused() -> None:
         export(randomize(ResidualFromBefore("residual", 2)).eval())
     assert e.value.exit_code == 3
     assert "cells.0 (LSTMCell)" in str(e.value) and "read by" in str(e.value), str(e.value)
+
+
+class TimeMajorGRU(nn.Module):
+    """Time-major input (``x[t]``), GRU states starting as None (zeros per the torch docs), eval
+    F.dropout between the layers, outputs stacked along axis 0 with ``dim=0``."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.cells = _cells("gru", 2)
+
+    def forward(self, x: torch.Tensor) -> Any:
+        h: list[Any] = [None, None]
+        outs = []
+        for t in range(x.size(0)):
+            inp = x[t]
+            for i, cell in enumerate(self.cells):
+                h[i] = cell(inp, h[i])
+                inp = nn.functional.dropout(h[i], 0.2, False)
+            outs.append(inp)
+        return torch.stack(outs, dim=0)
+
+
+def test_time_major_gru_layers_from_none_states() -> None:
+    m = randomize(TimeMajorGRU(), seed=12)
+    model = export(m)
+    assert _ops(model).count("GRU") == 2, _ops(model)
+    for n, t in LENGTHS:
+        x = np.ascontiguousarray(_x(n, t).transpose(1, 0, 2))
+        want = torch_outputs(m, {"x": x})  # reference: PyTorch's own forward
+        worst(want, run_onnx(model, {"x": x}))
+        worst(want, ReferenceEvaluator(model).run(None, {"x": x}))  # reference: onnx's evaluator
+
+
+class PeeledUserCell(nn.Module):
+    """A user cell whose first call has no state: h = tanh(W x + h0); later h' = tanh(W x + U h) ·
+    sigmoid(W x) (no published cell: a Scan after the peeled first step)."""
+
+    def __init__(self, size_in: int) -> None:
+        super().__init__()
+        self.input_size = size_in  # how seqgate infers the loop input's feature size
+        self.W, self.U = nn.Linear(size_in, H), nn.Linear(H, H, bias=False)
+        self.h0 = nn.Parameter(torch.zeros(H))
+
+    def forward(self, x: torch.Tensor, h: torch.Tensor | None = None) -> torch.Tensor:
+        if h is None:
+            return torch.tanh(self.W(x) + self.h0)
+        return torch.tanh(self.W(x) + self.U(h)) * torch.sigmoid(self.W(x))
+
+
+class PeeledLayers(nn.Module):
+    def __init__(self) -> None:
+        super().__init__()
+        self.cells = nn.ModuleList([PeeledUserCell(IN), PeeledUserCell(H)])
+
+    def forward(self, x: torch.Tensor) -> Any:
+        h: list[Any] = [None, None]
+        outs = []
+        for t in range(x.size(1)):
+            inp = x[:, t]
+            for i, cell in enumerate(self.cells):
+                h[i] = cell(inp) if h[i] is None else cell(inp, h[i])
+                inp = h[i]
+            outs.append(inp)
+        return torch.stack(outs, 1)
+
+
+def test_user_cells_with_a_peeled_first_step_in_one_loop() -> None:
+    m = randomize(PeeledLayers(), seed=13)
+    model = export(m)
+    assert _ops(model).count("If") == 2 and _nested_ops(model.graph).count("Scan") == 2, _ops(model)
+    _same_as_torch(m, model)

@@ -269,9 +269,9 @@ def lift_stacks(gm: Any, values: dict[Any, Any]) -> None:
 
     g = gm.graph
     for n in list(g.nodes):
-        if not (n.op == "call_function" and n.target is torch.stack and len(n.args) == 2 and not n.kwargs):
+        if not (n.op == "call_function" and n.target is torch.stack and n.args and set(n.kwargs) <= {"dim"}):
             continue
-        items, axis = n.args
+        items, axis = n.args[0], n.args[1] if len(n.args) > 1 else n.kwargs.get("dim", 0)
         if axis not in (0, 1) or not isinstance(items, list | tuple) or not items or any(
                 not hasattr(i, "op") or time_step(i) is not None for i in items):
             continue
