@@ -403,3 +403,36 @@ def test_user_cells_with_a_peeled_first_step_in_one_loop() -> None:
     model = export(m)
     assert _ops(model).count("If") == 2 and _nested_ops(model.graph).count("Scan") == 2, _ops(model)
     _same_as_torch(m, model)
+
+
+class ScaledSteps(nn.Module):
+    """One cell; each step's collected output is ``h * 2 + x[:, t]`` (same-step elementwise ops),
+    or ``lin(h)`` (a layer inside the loop, ``mode="linear"``: still refused)."""
+
+    def __init__(self, mode: str) -> None:
+        super().__init__()
+        self.mode = mode
+        self.cell, self.lin = nn.GRUCell(H, H), nn.Linear(H, H)
+
+    def forward(self, x: torch.Tensor) -> Any:
+        h = torch.zeros(x.size(0), H)
+        outs = []
+        for t in range(x.size(1)):
+            h = self.cell(x[:, t], h)
+            outs.append(h * 2 + x[:, t] if self.mode == "elementwise" else self.lin(h))
+        return torch.stack(outs, 1)
+
+
+def test_same_step_elementwise_outputs_of_one_cell_fold() -> None:
+    m = randomize(ScaledSteps("elementwise"), seed=14)
+    model = export(m)
+    assert _ops(model).count("GRU") == 1, _ops(model)
+    for n, t in LENGTHS:
+        x = _xh(n, t)
+        worst(torch_outputs(m, {"x": x}), run_onnx(model, {"x": x}))  # reference: PyTorch's forward
+
+
+def test_a_layer_applied_to_each_step_inside_the_loop_is_still_refused() -> None:
+    with pytest.raises(UnsupportedModelError) as e:
+        export(randomize(ScaledSteps("linear")))
+    assert e.value.exit_code == 3 and "read by lin" in str(e.value), str(e.value)
