@@ -142,11 +142,12 @@ class Interleaved(nn.Module):
         return torch.stack(outs, 1)
 
 
-def test_layers_interleaved_in_one_loop_are_refused_naming_the_cell() -> None:
-    with pytest.raises(UnsupportedModelError) as e:
-        export(randomize(Interleaved()))
-    assert e.value.exit_code == 3
-    assert "cells.0 (LSTMCell)" in str(e.value) and "read by cells.1" in str(e.value), str(e.value)
+def test_layers_interleaved_in_one_loop_are_one_lstm_node_each() -> None:
+    # layer 2 at step t reads only its own step t-1 and layer 1's step t: two consecutive loops
+    m = randomize(Interleaved(), seed=4)
+    model = export(m)
+    assert _ops(model.graph).count("LSTM") == 2
+    _same_as_torch(m, model, reference=True)
 
 
 # ----- user cells: the first step is peeled ---------------------------------------------------

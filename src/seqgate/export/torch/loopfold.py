@@ -25,6 +25,15 @@ from dataclasses import dataclass
 from typing import Any
 
 from seqgate.errors import Unsupported, UnsupportedModelError
+from seqgate.export.torch.interleave import (
+    hand_on,
+    hand_plan,
+    lift_inputs,
+    lift_stacks,
+    path_of,
+    readers,
+    time_step,
+)
 
 Path = tuple[int, ...]
 
@@ -97,45 +106,6 @@ def _is_getitem(n: Any) -> bool:
     return n.op == "call_function" and n.target is operator.getitem
 
 
-def _path_of(n: Any, root: Any) -> Path | None:
-    """Index path from ``root`` to ``n`` through getitem nodes, or None."""
-    path: list[int] = []
-    while n is not root:
-        if not (hasattr(n, "op") and _is_getitem(n) and isinstance(n.args[1], int)):
-            return None
-        path.append(n.args[1])
-        n = n.args[0]
-    return tuple(reversed(path))
-
-
-def _time_step(n: Any) -> tuple[Any, int, int] | None:
-    """(X, axis, k) when ``n`` is step k of X along axis 0 or 1, else None."""
-    import torch
-
-    if not hasattr(n, "op"):
-        return None
-    if _is_getitem(n):
-        src, idx = n.args
-        if isinstance(idx, int) and getattr(src, "op", "") in ("call_method", "call_function") and (
-                src.target in ("unbind", torch.unbind)):
-            axis = src.args[1] if len(src.args) > 1 else src.kwargs.get("dim", 0)
-            return (src.args[0], axis, idx) if axis in (0, 1) else None
-        if isinstance(idx, int):
-            return src, 0, idx
-        if isinstance(idx, tuple):
-            full = slice(None, None, None)
-            ints = [(a, i) for a, i in enumerate(idx) if isinstance(i, int)]
-            rest_ok = all(i == full or i is Ellipsis for i in idx if not isinstance(i, int))
-            if len(ints) == 1 and rest_ok and ints[0][0] in (0, 1) and Ellipsis not in idx[:ints[0][0]]:
-                return src, ints[0][0], ints[0][1]
-        return None
-    if n.target in ("select", torch.select) and len(n.args) == 3:
-        _, axis, k = n.args
-        if axis in (0, 1) and isinstance(k, int):
-            return n.args[0], axis, k
-    return None
-
-
 def _leaves(a: Any, out: list[Any]) -> Any:
     """Replace fx nodes in ``a`` by ("leaf", j) and collect them."""
     if hasattr(a, "op"):
@@ -168,7 +138,7 @@ def _chains(calls: list[Any]) -> list[_Chain]:
     for c in calls:
         leaves: list[Any] = []
         shape = _leaves(_state_args(c), leaves)
-        paths = [_path_of(leaf, cur.calls[-1]) for leaf in leaves] if cur else []
+        paths = [path_of(leaf, cur.calls[-1]) for leaf in leaves] if cur else []
         if (cur is not None and leaves and all(p is not None for p in paths)
                 and (len(cur.calls) == 1 or (paths == cur.paths and shape == cur.template_args))):
             if len(cur.calls) == 1:
@@ -191,10 +161,17 @@ def fold_loops(gm: Any, values: dict[Any, Any], is_cell: Any, label: str) -> Non
     for target, calls in by_target.items():
         folded = 0
         for chain in _chains(calls):
-            steps = [_time_step(c.args[0]) if c.args else None for c in chain.calls]
+            steps = [time_step(c.args[0]) if c.args else None for c in chain.calls]
             if not _walks_time(steps, values):
-                continue
+                if not lift_inputs(gm, chain.calls, values, lambda a, ch=chain: _blocker(ch) is None or (
+                        hand_plan(gm, ch.calls, a, values, is_cell) is not None)):
+                    continue
+                steps = [time_step(c.args[0]) for c in chain.calls]
             why = _blocker(chain)
+            plan = None if why is None else hand_plan(gm, chain.calls, steps[0][1], values, is_cell)  # type: ignore[index]
+            if plan is not None:
+                hand_on(gm, plan, values)
+                why = _blocker(chain)  # the next layer now reads the collected sequence
             if why is not None:
                 problems.append(Unsupported(_where(gm, chain.calls[0]), why, _HINT))
                 continue
@@ -208,6 +185,7 @@ def fold_loops(gm: Any, values: dict[Any, Any], is_cell: Any, label: str) -> Non
             _rewrite(gm, target, chain, steps[0][:2], (before, after), values)  # type: ignore[index]
     if problems:
         raise UnsupportedModelError(label, problems)
+    lift_stacks(gm, values)
     gm.graph.lint()
     gm.recompile()
 
@@ -234,22 +212,11 @@ def _where(gm: Any, n: Any) -> str:
         f" at {line}" if line else "")
 
 
-def _readers(n: Any, path: Path = ()) -> list[tuple[Path, Any]]:
-    """(path, node) for every reader of ``n``'s output that is not a getitem into it."""
-    out: list[tuple[Path, Any]] = []
-    for u in n.users:
-        if _is_getitem(u) and u.args[0] is n and isinstance(u.args[1], int):
-            out.extend(_readers(u, (*path, u.args[1])))
-        else:
-            out.append((path, u))
-    return out
-
-
 def _collector(chain: _Chain) -> tuple[Any, Path, int, list[Any]] | str | None:
     """The node that collects every step's output: (node, path, dim, unsqueeze nodes)."""
     import torch
 
-    first = [(p, u) for p, u in _readers(chain.calls[0]) if u is not chain.calls[1]]
+    first = [(p, u) for p, u in readers(chain.calls[0]) if u is not chain.calls[1]]
     if not first:
         return None
     if len(first) > 1:
@@ -277,7 +244,7 @@ def _collector(chain: _Chain) -> tuple[Any, Path, int, list[Any]] | str | None:
                 return "a collection that is not every step's output"
             unsq.append(item) if k else None
             node = item.args[0]
-        if _path_of(node, c) != path:
+        if path_of(node, c) != path:
             return "a collection that is not every step's output"
     return u, path, int(dim), unsq
 
@@ -291,7 +258,7 @@ def _blocker(chain: _Chain) -> str | None:
     if col is not None:
         allowed |= {col[0], *col[3]}
     for k, c in enumerate(chain.calls[:-1]):
-        for _, u in _readers(c):
+        for _, u in readers(c):
             if u not in allowed:
                 return f"the state of step {k} is also read by {u.name} ({u.target}) inside the loop"
     return None
