@@ -146,7 +146,7 @@ def test_layers_interleaved_in_one_loop_are_one_lstm_node_each() -> None:
     # layer 2 at step t reads only its own step t-1 and layer 1's step t: two consecutive loops
     m = randomize(Interleaved(), seed=4)
     model = export(m)
-    assert _ops(model.graph).count("LSTM") == 2
+    assert op_types(model.graph).count("LSTM") == 2
     _same_as_torch(m, model, reference=True)
 
 

@@ -19,7 +19,7 @@ from onnx.reference import ReferenceEvaluator
 from torch import nn
 
 from seqgate.errors import UnsupportedModelError
-from torch_models import cli_export_verify, export, randomize, run_onnx, torch_outputs, worst
+from torch_models import cli_export_verify, export, op_types, randomize, run_onnx, torch_outputs, worst
 
 torch.set_num_threads(1)
 IN, H = 3, 5
@@ -33,17 +33,6 @@ def _x(n: int, t: int, seed: int = 0) -> np.ndarray:
 
 def _ops(model: Any) -> list[str]:
     return [n.op_type for n in model.graph.node]
-
-
-def _nested_ops(graph: Any) -> list[str]:
-    """Op types of ``graph`` and of every sub-graph in it (If branches, Scan bodies)."""
-    out = []
-    for n in graph.node:
-        out.append(n.op_type)
-        for a in n.attribute:
-            if a.type == a.GRAPH:
-                out.extend(_nested_ops(a.g))
-    return out
 
 
 def _same_as_torch(m: nn.Module, model: Any, reference: bool = False) -> None:
@@ -401,7 +390,7 @@ class PeeledLayers(nn.Module):
 def test_user_cells_with_a_peeled_first_step_in_one_loop() -> None:
     m = randomize(PeeledLayers(), seed=13)
     model = export(m)
-    assert _ops(model).count("If") == 2 and _nested_ops(model.graph).count("Scan") == 2, _ops(model)
+    assert _ops(model).count("If") == 2 and op_types(model.graph).count("Scan") == 2, _ops(model)
     _same_as_torch(m, model)
 
 
