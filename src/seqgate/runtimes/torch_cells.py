@@ -50,6 +50,8 @@ def cell_probe_value(p: Probe, calls: list[tuple[Any, Any, Any]]) -> np.ndarray[
         raise UnsupportedModelError(name, [Unsupported(
             name, "the cell was not called in forward as the probe map says", "export the model again")])
     if p.kind == "hidden_sequence":
+        if src.get("calls_reversed"):  # a loop from the last step to the first: time order
+            outs = outs[::-1]
         return torch.stack([_at(o, h_path) for o in outs], 1).unsqueeze(2).numpy()
     path = c_path if p.kind == "cell_final" else h_path
     return _at(outs[-1], path).unsqueeze(1).numpy()

@@ -78,8 +78,9 @@ def _unsq(b: GraphBuilder, v: TV | None) -> str:
     return b.unsqueeze(v.name, [0])
 
 
-def _call(cell: Any, kind: str, name: str, prefix: str, source: dict[str, Any]) -> RecurrentCall:
-    return RecurrentCall(kind=kind, hidden=int(cell.hidden_size), direction="forward",
+def _call(cell: Any, kind: str, name: str, prefix: str, source: dict[str, Any],
+          direction: str = "forward") -> RecurrentCall:
+    return RecurrentCall(kind=kind, hidden=int(cell.hidden_size), direction=direction,
                          packed=pack_cell(cell, kind), activations=_slots(cell, kind), layer=name,
                          probe_prefix=prefix,
                          source={"framework": "torch", "module": name, "module_type": _TYPE[kind], **source})
@@ -133,14 +134,21 @@ def cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
 
     hx = fill_dims(m.template["first"], init, None)
     h0, c0 = _state(kind, hx[0] if hx else None)
-    rc = _call(m.cell, kind, m.cell_name, m.cell_name, {"cell_calls": list(m.calls)})
+    # a loop from the last step to the first is ONNX's reverse direction (Y stays in time order);
+    # the source's calls then run in reverse time order, which the probe's source records
+    reverse = bool(getattr(m, "reverse", False))
+    rc = _call(m.cell, kind, m.cell_name, m.cell_name,
+               {"cell_calls": list(m.calls), **({"calls_reversed": True} if reverse else {})},
+               "reverse" if reverse else "forward")
     xt = b.transpose(x.name, [1, 0, 2]) if m.axis == 1 else x.name
     need_y = call.uses(0)
     out = emit_recurrent(b, rc, xt, _unsq(b, h0), _unsq(b, c0), need_y=need_y, need_h=True,
                          need_c=kind == "lstm")
     seq = None
     if need_y:
-        y = b.squeeze(out.y, [1])  # [T, N, H]
+        y = b.squeeze(out.y, [1])  # [T, N, H], time order
+        if reverse != bool(getattr(m, "flipped", False)):  # collected in the loop's call order
+            y = b.reverse_time(y, 0)
         seq = b.transpose(y, [1, 0, 2]) if m.seq_dim == 1 else y
     h = b.squeeze(out.y_h, [0])
     last = (h, b.squeeze(out.y_c, [0])) if kind == "lstm" else h

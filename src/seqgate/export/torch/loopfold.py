@@ -6,11 +6,13 @@ cell(x_t, (h, c))`` reads paths (0,) and (1,); ``h = cell(x_t, h)`` reads path (
 a loop over time, and is folded, when all of this holds:
 
 - ``c_k``'s input is step k of one tensor X along axis a ∈ {0, 1}: ``X[:, k]``, ``X[k]``,
-  ``X.select(a, k)`` or element k of ``X.unbind(a)``, for k = 0 … K−1 in order, and K is X's size
-  along a in the traced sample;
+  ``X.select(a, k)`` or element k of ``X.unbind(a)``, for k = 0 … K−1 in order — or step K−1−k
+  for every k (``for t in reversed(range(T))``: ``CellLoop.reverse``, ONNX's reverse direction) —
+  and K is X's size along a in the traced sample;
 - the outputs of ``c_k`` (k < K−1) are read only by ``c_{k+1}`` and by one collector of every
   step's output: ``torch.stack([o_0 … o_{K−1}], dim)`` or ``torch.cat([o_k.unsqueeze(d) …], d)``
-  (o_k the same index path of every ``c_k``); ``c_{K−1}``'s outputs may be read by anything.
+  (o_k the same index path of every ``c_k``), or the same items in reverse call order
+  (``outs.reverse()``: ``CellLoop.flipped``); ``c_{K−1}``'s outputs may be read by anything.
 
 The chain becomes ``loop = CellLoop(cell)(X, *initial state leaves)``; ``loop[0]`` replaces the
 collector and ``loop[1]`` the last call's output (same structure as the cell's output). A chain
@@ -51,8 +53,11 @@ def _cell_loop_class() -> type:
         """
 
         def __init__(self, cell: Any, cell_name: str, axis: int, template: Any, seq_path: Path | None,
-                     seq_dim: int, calls: tuple[int, int]) -> None:
+                     seq_dim: int, calls: tuple[int, int], reverse: bool = False,
+                     flipped: bool = False) -> None:
             super().__init__()
+            self.reverse = reverse  # the loop runs from the last step to the first
+            self.flipped = flipped  # the collected outputs are stacked in reverse call order
             self.cell = cell
             self.cell_name = cell_name
             self.axis = axis
@@ -64,11 +69,14 @@ def _cell_loop_class() -> type:
         def forward(self, x: Any, *init: Any) -> Any:
             out: Any = None
             seq = []
-            for t in range(x.size(self.axis)):
-                state = fill_dims(self.template["first" if t == 0 else "later"], init, out)
+            steps = range(x.size(self.axis))
+            for k, t in enumerate(reversed(steps) if self.reverse else steps):
+                state = fill_dims(self.template["first" if k == 0 else "later"], init, out)
                 out = self.cell(x.select(self.axis, t), *state)
                 if self.seq_path is not None:
                     seq.append(_at(out, self.seq_path))
+            if self.flipped:
+                seq.reverse()
             return (torch.stack(seq, self.seq_dim) if seq else None), out
 
     return CellLoop
@@ -162,11 +170,12 @@ def fold_loops(gm: Any, values: dict[Any, Any], is_cell: Any, label: str) -> Non
         folded = 0
         for chain in _chains(calls):
             steps = [time_step(c.args[0]) if c.args else None for c in chain.calls]
-            if not _walks_time(steps, values):
+            order = _walks_time(steps, values)
+            if order is None:
                 if not lift_inputs(gm, chain.calls, values, lambda a, ch=chain: _blocker(ch) is None or (
                         hand_plan(gm, ch.calls, a, values, is_cell) is not None)):
                     continue
-                steps = [time_step(c.args[0]) for c in chain.calls]
+                steps, order = [time_step(c.args[0]) for c in chain.calls], "forward"
             why = _blocker(chain)
             plan = None if why is None else hand_plan(gm, chain.calls, steps[0][1], values, is_cell)  # type: ignore[index]
             if plan is not None:
@@ -182,7 +191,7 @@ def fold_loops(gm: Any, values: dict[Any, Any], is_cell: Any, label: str) -> Non
                 continue
             before = calls.index(chain.calls[0])
             after = len(calls) - 1 - calls.index(chain.calls[-1])
-            _rewrite(gm, target, chain, steps[0][:2], (before, after), values)  # type: ignore[index]
+            _rewrite(gm, target, chain, (*steps[0][:2], order), (before, after), values)  # type: ignore[index]
     if problems:
         raise UnsupportedModelError(label, problems)
     lift_stacks(gm, values)
@@ -194,14 +203,20 @@ _HINT = ("write the step as `h, c = cell(x[:, t], (h, c))` (or `h = cell(x[:, t]
          "outputs with `outs.append(h)` and `torch.stack(outs, 1)`, and apply other layers after the loop")
 
 
-def _walks_time(steps: list[Any], values: dict[Any, Any]) -> bool:
+def _walks_time(steps: list[Any], values: dict[Any, Any]) -> str | None:
+    """"forward" when call k reads step k of one tensor's time axis, "reverse" when it reads step
+    T−1−k (``for t in reversed(range(T))``), each of the T steps once; else None."""
     if len(steps) < 2 or any(s is None for s in steps):
-        return False
-    x, axis = steps[0][0], steps[0][1]
-    if any(s[0] is not x or s[1] != axis or s[2] != k for k, s in enumerate(steps)):
-        return False
+        return None
+    x, axis, n = steps[0][0], steps[0][1], len(steps)
+    if any(s[0] is not x or s[1] != axis for s in steps):
+        return None
     v = values.get(x)
-    return v is not None and hasattr(v, "shape") and v.dim() >= 2 and int(v.shape[axis]) == len(steps)
+    if v is None or not hasattr(v, "shape") or v.dim() < 2 or int(v.shape[axis]) != n:
+        return None
+    if all(s[2] == k for k, s in enumerate(steps)):
+        return "forward"
+    return "reverse" if all(s[2] == n - 1 - k for k, s in enumerate(steps)) else None
 
 
 def _where(gm: Any, n: Any) -> str:
@@ -212,8 +227,9 @@ def _where(gm: Any, n: Any) -> str:
         f" at {line}" if line else "")
 
 
-def _collector(chain: _Chain) -> tuple[Any, Path, int, list[Any]] | str | None:
-    """The node that collects every step's output: (node, path, dim, unsqueeze nodes)."""
+def _collector(chain: _Chain) -> tuple[Any, Path, int, list[Any], bool] | str | None:
+    """The node that collects every step's output: (node, path, dim, unsqueeze nodes, whether the
+    items are in reverse call order — a reverse loop's list turned back with ``outs.reverse()``)."""
     import torch
 
     first = [(p, u) for p, u in readers(chain.calls[0]) if u is not chain.calls[1]]
@@ -237,16 +253,25 @@ def _collector(chain: _Chain) -> tuple[Any, Path, int, list[Any]] | str | None:
     dim = u.args[1] if len(u.args) > 1 else u.kwargs.get("dim", 0)
     if not isinstance(items, list | tuple) or len(items) != len(chain.calls) or (d is not None and d != dim):
         return "a collection that is not every step's output"
-    for k, (item, c) in enumerate(zip(items, chain.calls, strict=True)):
+    flipped = len(items) > 1 and _item_call(items[0], d) is chain.calls[-1]
+    calls = list(reversed(chain.calls)) if flipped else chain.calls
+    for item, c in zip(items, calls, strict=True):
         node = item
         if d is not None:
             if not (hasattr(item, "op") and item.args and d in (*item.args[1:2], item.kwargs.get("dim"))):
                 return "a collection that is not every step's output"
-            unsq.append(item) if k else None
             node = item.args[0]
         if path_of(node, c) != path:
             return "a collection that is not every step's output"
-    return u, path, int(dim), unsq
+    return u, path, int(dim), list(items) if d is not None else unsq, flipped
+
+
+def _item_call(item: Any, d: Any) -> Any:
+    """The cell call an item of the collection comes from (through its getitem/unsqueeze)."""
+    node = item.args[0] if d is not None and hasattr(item, "args") and item.args else item
+    while hasattr(node, "op") and _is_getitem(node):
+        node = node.args[0]
+    return node
 
 
 def _blocker(chain: _Chain) -> str | None:
@@ -264,20 +289,22 @@ def _blocker(chain: _Chain) -> str | None:
     return None
 
 
-def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int], calls: tuple[int, int],
+def _rewrite(gm: Any, target: str, chain: _Chain, x_axis: tuple[Any, int, str], calls: tuple[int, int],
              values: dict[Any, Any]) -> None:
     """Replace the chain by the loop leaf; the leaf's items take the sample values of what they
     replace, so a later loop over the collected sequence (a second layer) is recognised too."""
-    x, axis = x_axis
+    x, axis, order = x_axis
     c0, last = chain.calls[0], chain.calls[-1]
     init: list[Any] = []
     template0 = _leaves(_state_args(c0), init)
     template = _template(template0, chain, values.get(c0))
     col = _collector(chain)
     seq_path, seq_dim = (col[1], col[2]) if isinstance(col, tuple) else (None, 0)
+    flipped = isinstance(col, tuple) and col[4]
     cls = cell_loop_class()
     name = f"{target.replace('.', '_')}_loop"
-    gm.add_submodule(name, cls(gm.get_submodule(target), target, axis, template, seq_path, seq_dim, calls))
+    gm.add_submodule(name, cls(gm.get_submodule(target), target, axis, template, seq_path, seq_dim, calls,
+                               order == "reverse", flipped))
     g = gm.graph
     with g.inserting_before(c0):
         loop = g.call_module(name, (x, *init))

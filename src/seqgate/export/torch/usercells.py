@@ -89,6 +89,9 @@ def user_cell_loop(b: GraphBuilder, call: TorchCall) -> Any:
     structure). A first call that differs from later calls is peeled (:func:`peeled_loop`)."""
     m = call.module
     x = want_tensor(call.args[0], "input")
+    if m.reverse or m.flipped:
+        raise Refusal("a loop over a user cell from the last step to the first, or collected in reverse",
+                      "run the loop forward over torch.flip(x, [1]) and flip the stacked outputs back")
     carried, peel = _carried(m)
     if x.rank != 3:
         raise Refusal("a user cell over tensors other than [batch, time, I] with [batch, H] states")
