@@ -12,10 +12,11 @@ from __future__ import annotations
 from typing import Any
 
 
-def prefix_names(graph: Any, prefix: str) -> None:
-    """Prefix every value, initializer and node name of ``graph`` (a ``GraphProto``) in place."""
+def prefix_names(graph: Any, prefix: str, local: set[str] | None = None) -> None:
+    """Prefix every value, initializer and node name of ``graph`` (a ``GraphProto``) in place;
+    with ``local``, only those value names (a sub-graph's own), so outer values it reads keep theirs."""
     def p(n: str) -> str:
-        return prefix + n if n else n
+        return prefix + n if n and (local is None or n in local) else n
 
     for vi in [*graph.input, *graph.output, *graph.value_info]:
         vi.name = p(vi.name)

@@ -23,6 +23,7 @@ from typing import Any
 
 from seqgate.errors import Refusal
 from seqgate.export.core.builder import FLOAT, GraphBuilder
+from seqgate.export.core.scanbody import prefix_names
 from seqgate.export.torch.values import TV
 
 Path = tuple[int, ...]
@@ -120,9 +121,7 @@ def first_step(b: GraphBuilder, capture: Any, m: Any, x0: TV, init: list[Any],
         raise Refusal("; ".join(p.line() for p in dict.fromkeys(walk.problems)))
     outs = []
     for k, path in enumerate(out_paths):
-        v = result
-        for i in path:
-            v = v[i] if isinstance(v, tuple | list) and i < len(v) else None
+        v = leaf_at(result, path)
         if not isinstance(v, TV) or v.rank != 2:
             raise Refusal(f"the first call of {m.cell_name} returns a structure other than later calls'",
                           "return the same (h, c) / h structure on every call")
@@ -130,6 +129,14 @@ def first_step(b: GraphBuilder, capture: Any, m: Any, x0: TV, init: list[Any],
         outs.append(v)
     names = inline(b, sub.build({}, check=False).graph, feeds)
     return [TV(n, v.shape, v.dtype) for n, v in zip(names, outs, strict=True)]
+
+
+def leaf_at(result: Any, path: Path) -> Any:
+    """What a cell returned, at an index path (None where the structure has no such place)."""
+    v = result
+    for i in path:
+        v = v[i] if isinstance(v, tuple | list) and i < len(v) else None
+    return v
 
 
 def inline(b: GraphBuilder, graph: Any, feeds: dict[str, str]) -> list[str]:
@@ -156,17 +163,6 @@ def branch_graph(sub: GraphBuilder, outs: list[tuple[str, int]], prefix: str) ->
     for k, (value, rank) in enumerate(outs):
         sub.output(value, f"out_{k}", FLOAT, [None] * rank)
     graph = sub.build({}, check=False).graph
-    local = {o for n in graph.node for o in n.output if o} | {i.name for i in graph.initializer}
-
-    def p(n: str) -> str:
-        return prefix + n if n in local else n
-
-    for vi in [*graph.output, *graph.value_info]:
-        vi.name = p(vi.name)
-    for init in graph.initializer:
-        init.name = p(init.name)
-    for node in graph.node:
-        node.name = prefix + node.name
-        node.input[:] = [p(i) for i in node.input]
-        node.output[:] = [p(o) for o in node.output]
+    own = {o for n in graph.node for o in n.output if o} | {i.name for i in graph.initializer}
+    prefix_names(graph, prefix, own)
     return graph

@@ -244,9 +244,9 @@ def _body(b: GraphBuilder, capture: Any, m: Any, x: TV, states: list[TV],
 
 
 def _leaf(result: Any, path: Path) -> TV:
-    v = result
-    for i in path:
-        v = v[i]
+    from seqgate.export.torch.firststep import leaf_at
+
+    v = leaf_at(result, path)
     if not isinstance(v, TV):
         raise Refusal("the cell returns something other than tensors")
     return v
